@@ -1,0 +1,1092 @@
+"""Achieved PFDavg of a SIF from its recorded life (proof tests, repairs, bypasses).
+
+The design calculation assumes tests exactly every T1. This module instead takes
+what actually happened — the dates of full and partial tests, tests that found a
+dangerous failure, bypasses — and computes the time-dependent probability of
+failure on demand PFD(t) and its average over a window (the "achieved PFDavg").
+
+The engine never reads the clock: every date is a parameter.
+
+Model (all rates per hour, times in hours, 1 year = 8760 h)
+------------------------------------------------------------
+Channel, dangerous undetected failures (rate lambda_DU):
+
+* The rate is split by how deep a test must go to reveal the failure. Tests are
+  nested: a test with coverage c reveals the share c of lambda_DU, and that
+  share includes everything a less thorough test reveals. With the channel's
+  partial-test coverage theta and full-test coverage PTC (theta <= PTC):
+
+    - theta * lDU           revealed by partial AND full tests;
+    - (PTC - theta) * lDU   revealed by full tests only;
+    - (1 - PTC) * lDU       revealed by no test; only an overhaul (or putting
+                            the channel into service) renews it.
+
+  A test record may state its own coverage; the split then gets one more
+  boundary so that the record reveals exactly the share it states.
+* Each share j is a hidden state with probability 1 - exp(-lambda_j * age_j(t)),
+  where age_j is the time since that share was last renewed (in service,
+  overhaul, a test of coverage >= the share's upper boundary).
+* A test that found a dangerous failure makes the channel unavailable (q = 1)
+  for restore_hours (default: the channel's MRT); at the end of the repair the
+  channel is as new (every share renewed).
+* Dangerous detected failures add a constant (1 - beta_D) * lambda_DD * MTTR.
+* q_channel(t) = 1 - (1 - q_DD) * prod_j (1 - q_j(t)).
+
+Group (MooN): the channels' independent parts use (1 - beta) * lambda_DU. The
+common-cause share beta * lambda_DU is ONE hidden state of the group, split the
+same way by coverage and renewed by a test of ANY channel that reaches its
+depth (the first channel tested reveals a failure common to all). Common
+detected failures add beta_D * lambda_DD * MTTR at group level. For
+non-identical channels the common-cause rates use the geometric mean of the
+channels' rates (a stated choice). A 1-channel group ignores beta and beta_D.
+
+    Q_indep(t) = P(at least N - M + 1 channels failed)   (Poisson-binomial)
+    Q_group(t) = 1 - (1 - Q_ccf(t)) * (1 - Q_indep(t))
+    Q_sif(t)   = 1 - prod_groups (1 - Q_group(t)), and 1 during a bypass.
+
+Achieved PFDavg = time average of Q_sif over the window. Between two events
+(any renewal, repair start/end, bypass start/end) Q_sif is smooth, so each such
+piece (split further into pieces of at most ``max_piece_hours``) is integrated
+with Gauss-Legendre quadrature; the result is exact to well below 1e-6 relative.
+
+Dates: ``date`` or ``datetime``; timezone-aware values are converted to UTC,
+naive values are taken as UTC. Returned datetimes are naive UTC, or aware UTC
+when the window end passed in was aware.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import date, datetime, timedelta, timezone
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+
+from .errors import InputError
+from .voting import parse_voting
+
+HOURS_PER_YEAR = 8760.0
+TEST_KINDS = ("full", "partial", "demand")
+
+#: Relative difference between the history model run on a perfect schedule and
+#: a design PFDavg above which :func:`planned_schedule_check` flags the pair.
+#: Justification: the simplified (Annex B / ISA) equations are linearised and
+#: conservative — for lambda*T1 <= 0.1 they exceed the exact time-dependent
+#: average by up to +6.7 % (check-values S7.5, independent 1oo2) — and they add
+#: MRT terms (about 2*MRT/T1, 0.2 % for 8 h and one year) that this model only
+#: counts when a test actually finds a failure. 15 % leaves room for these
+#: known, explained differences; anything larger means the design calculation
+#: and the register do not describe the same function (interval, rates,
+#: voting or coverage differ).
+DEFAULT_SCHEDULE_TOLERANCE = 0.15
+
+_EPOCH = datetime(1970, 1, 1)
+_GL_CACHE: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+
+
+# --------------------------------------------------------------------------
+# dates
+
+
+def _as_utc_naive(value: Any, field_name: str) -> datetime:
+    if isinstance(value, datetime):
+        dt = value
+    elif isinstance(value, date):
+        dt = datetime(value.year, value.month, value.day)
+    else:
+        raise InputError(field_name, f"must be a date or datetime, got {value!r}")
+    if dt.tzinfo is not None:
+        dt = dt.astimezone(timezone.utc).replace(tzinfo=None)
+    return dt
+
+
+def _hours(value: Any, field_name: str) -> float:
+    return (_as_utc_naive(value, field_name) - _EPOCH) / timedelta(hours=1)
+
+
+def _is_aware(value: Any) -> bool:
+    return isinstance(value, datetime) and value.tzinfo is not None
+
+
+def _to_dt(hours: float, aware: bool = False) -> datetime:
+    dt = _EPOCH + timedelta(hours=float(hours))
+    # round to the microsecond grid to avoid 23:59:59.999999 artefacts
+    dt = dt.replace(microsecond=0) + timedelta(seconds=round(dt.microsecond / 1e6))
+    return dt.replace(tzinfo=timezone.utc) if aware else dt
+
+
+def _fmt(hours: float) -> str:
+    dt = _to_dt(hours)
+    return dt.date().isoformat() if dt.time() == datetime.min.time() else dt.isoformat()
+
+
+def one_year_before(value: datetime) -> datetime:
+    """The same calendar date one year earlier (29 February -> 28 February)."""
+    try:
+        return value.replace(year=value.year - 1)
+    except ValueError:
+        return value.replace(year=value.year - 1, day=28)
+
+
+# --------------------------------------------------------------------------
+# validation helpers
+
+
+def _num(value: Any, field_name: str, lo: float = 0.0, hi: float | None = None) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise InputError(field_name, f"must be a number, got {value!r}")
+    x = float(value)
+    if not math.isfinite(x):
+        raise InputError(field_name, f"must be a finite number, got {value!r}")
+    if x < lo:
+        raise InputError(field_name, f"must be at least {lo:g}, got {x:g}")
+    if hi is not None and x > hi:
+        raise InputError(field_name, f"must be at most {hi:g}, got {x:g}")
+    return x
+
+
+# --------------------------------------------------------------------------
+# inputs
+
+
+@dataclass(frozen=True, kw_only=True)
+class TestEvent:
+    """One recorded test (or real demand) of a channel.
+
+    ``coverage`` is the share of the channel's lambda_DU this event reveals;
+    None means the channel default: its proof-test coverage for a full test,
+    its partial-test coverage for a partial test, 0 for a demand (a real demand
+    counts as a test only for the coverage recorded with it).
+    ``failed``: a dangerous failure was found. ``restore_hours``: downtime after
+    a failure found (None = the channel's MRT).
+    """
+
+    __test__ = False  # not a pytest test class
+
+    at: datetime
+    kind: str = "full"
+    coverage: float | None = None
+    failed: bool = False
+    restore_hours: float | None = None
+
+    def __post_init__(self) -> None:
+        _as_utc_naive(self.at, "at")
+        if self.kind not in TEST_KINDS:
+            raise InputError("kind", f"must be one of {', '.join(TEST_KINDS)}, got {self.kind!r}")
+        if self.coverage is not None:
+            _num(self.coverage, "coverage", 0.0, 1.0)
+        if not isinstance(self.failed, bool):
+            raise InputError("failed", f"must be true or false, got {self.failed!r}")
+        if self.restore_hours is not None:
+            _num(self.restore_hours, "restore_hours")
+
+
+@dataclass(frozen=True, kw_only=True)
+class Channel:
+    """One channel (device) of a voted group and its recorded tests."""
+
+    lambda_du: float
+    in_service: datetime
+    lambda_dd: float = 0.0
+    mttr_hours: float = 8.0
+    mrt_hours: float | None = None
+    proof_test_coverage: float = 1.0
+    partial_test_coverage: float = 0.0
+    overhaul_at: datetime | None = None
+    tests: tuple[TestEvent, ...] = ()
+
+    def __post_init__(self) -> None:
+        _num(self.lambda_du, "lambda_du", 0.0, 1.0)
+        _num(self.lambda_dd, "lambda_dd", 0.0, 1.0)
+        _num(self.mttr_hours, "mttr_hours")
+        if self.mrt_hours is not None:
+            _num(self.mrt_hours, "mrt_hours")
+        ptc = _num(self.proof_test_coverage, "proof_test_coverage", 0.0, 1.0)
+        theta = _num(self.partial_test_coverage, "partial_test_coverage", 0.0, 1.0)
+        if theta > ptc:
+            raise InputError(
+                "partial_test_coverage",
+                f"{theta:g} exceeds the full proof-test coverage {ptc:g}; a partial test "
+                "cannot reveal more than a full test",
+            )
+        _as_utc_naive(self.in_service, "in_service")
+        if self.overhaul_at is not None:
+            _as_utc_naive(self.overhaul_at, "overhaul_at")
+        tests = tuple(self.tests)
+        for i, t in enumerate(tests):
+            if not isinstance(t, TestEvent):
+                raise InputError(f"tests[{i}]", f"must be a TestEvent, got {type(t).__name__}")
+        object.__setattr__(self, "tests", tests)
+
+    @property
+    def mrt(self) -> float:
+        return float(self.mttr_hours if self.mrt_hours is None else self.mrt_hours)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Group:
+    """A voted group (subsystem) of channels, e.g. two transmitters 1oo2."""
+
+    name: str
+    voting: str
+    channels: tuple[Channel, ...]
+    beta: float = 0.0
+    beta_d: float = 0.0
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.name, str) or not self.name.strip():
+            raise InputError("name", "must be a non-empty text")
+        v = parse_voting(self.voting, "voting")
+        _num(self.beta, "beta", 0.0, 1.0)
+        _num(self.beta_d, "beta_d", 0.0, 1.0)
+        chans = tuple(self.channels)
+        for i, c in enumerate(chans):
+            if not isinstance(c, Channel):
+                raise InputError(f"channels[{i}]", f"must be a Channel, got {type(c).__name__}")
+        if len(chans) != v.n:
+            raise InputError(
+                "channels", f"voting {v} needs {v.n} channels, {len(chans)} given"
+            )
+        object.__setattr__(self, "channels", chans)
+
+
+@dataclass(frozen=True, kw_only=True)
+class SifHistory:
+    """A SIF: groups in series, plus its bypass periods.
+
+    ``bypasses`` are (start, end) pairs; end None means still bypassed at the
+    evaluation date. During a bypass the SIF counts as unavailable (PFD = 1, no
+    compensating measure credited).
+    """
+
+    groups: tuple[Group, ...]
+    bypasses: tuple[tuple[datetime, datetime | None], ...] = ()
+    name: str = ""
+
+    def __post_init__(self) -> None:
+        groups = tuple(self.groups)
+        if not groups:
+            raise InputError("groups", "at least one group is needed")
+        names = set()
+        for i, g in enumerate(groups):
+            if not isinstance(g, Group):
+                raise InputError(f"groups[{i}]", f"must be a Group, got {type(g).__name__}")
+            if g.name in names:
+                raise InputError(f"groups[{i}].name", f"'{g.name}' is used twice")
+            names.add(g.name)
+        byp = tuple(tuple(b) for b in self.bypasses)
+        for i, b in enumerate(byp):
+            if len(b) != 2:
+                raise InputError(f"bypasses[{i}]", "must be a (start, end) pair")
+            _as_utc_naive(b[0], f"bypasses[{i}].start")
+            if b[1] is not None:
+                _as_utc_naive(b[1], f"bypasses[{i}].end")
+        object.__setattr__(self, "groups", groups)
+        object.__setattr__(self, "bypasses", byp)
+
+
+# --------------------------------------------------------------------------
+# results
+
+
+@dataclass(frozen=True)
+class HistoryResult:
+    """Achieved PFDavg over a window."""
+
+    pfd_avg: float
+    window_start: datetime
+    window_end: datetime
+    hours: float
+    groups: dict[str, float]
+    bypass_hours: float
+    pfd_at_end: float
+    flags: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class ScheduleCheck:
+    """History model on a perfect schedule compared with a design PFDavg."""
+
+    model_pfd_avg: float
+    design_pfd_avg: float
+    relative_difference: float
+    tolerance: float
+    within_tolerance: bool
+    horizon_hours: float
+    message: str
+
+
+@dataclass(frozen=True)
+class DeferralComparison:
+    """PFDavg over the same horizon with the next test on its due date or later."""
+
+    on_due_date: HistoryResult
+    deferred: HistoryResult
+    increase: float
+    relative_increase: float
+
+
+# --------------------------------------------------------------------------
+# compiled form
+
+
+@dataclass
+class _CChannel:
+    segs: list[tuple[float, np.ndarray]]
+    log_surv_dd: float
+    out_s: np.ndarray
+    out_e: np.ndarray
+
+
+@dataclass
+class _CGroup:
+    name: str
+    m: int
+    n: int
+    channels: list[_CChannel]
+    ccf_segs: list[tuple[float, np.ndarray]]
+    log_surv_dd_ccf: float
+
+
+@dataclass
+class _Compiled:
+    groups: list[_CGroup]
+    byp_s: np.ndarray
+    byp_e: np.ndarray
+    events: np.ndarray
+    start_h: float  # all channels in service from here
+    test_hours: np.ndarray  # every kept test time (for "after evaluation date" checks)
+    flags: list[str] = field(default_factory=list)
+
+
+def _merge(starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+    """Merge intervals; return merged starts, ends and how many overlaps were joined."""
+    if starts.size == 0:
+        return starts, ends, 0
+    order = np.argsort(starts, kind="stable")
+    s, e = starts[order], ends[order]
+    ms, me = [s[0]], [e[0]]
+    overlaps = 0
+    for a, b in zip(s[1:], e[1:]):
+        if a < me[-1]:
+            overlaps += 1
+            if b > me[-1]:
+                me[-1] = b
+        elif a == me[-1]:
+            me[-1] = max(me[-1], b)
+        else:
+            ms.append(a)
+            me.append(b)
+    return np.array(ms), np.array(me), overlaps
+
+
+def _geo_mean(values: Sequence[float]) -> float:
+    if any(v <= 0 for v in values):
+        return 0.0
+    return float(math.exp(sum(math.log(v) for v in values) / len(values)))
+
+
+def _default_cov(ch: Channel, kind: str) -> float:
+    if kind == "full":
+        return ch.proof_test_coverage
+    if kind == "partial":
+        return ch.partial_test_coverage
+    return 0.0
+
+
+def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None,
+             extra: dict[int, list[tuple[float, float]]] | None = None) -> _Compiled:
+    """Turn a SifHistory into arrays of renewal times.
+
+    ``cutoff_h``: records after it are not used (counted in a flag).
+    ``end_h``: open bypasses run to here. ``extra``: planned (time, coverage)
+    full tests per group index added to every channel of that group.
+    """
+    flags: list[str] = []
+    cgroups: list[_CGroup] = []
+    events: list[float] = []
+    all_tests: list[float] = []
+    start_h = -math.inf
+    after = 0
+    for gi, g in enumerate(sif.groups):
+        v = parse_voting(g.voting)
+        single = v.n == 1
+        beta = 0.0 if single else float(g.beta)
+        beta_d = 0.0 if single else float(g.beta_d)
+        cchans: list[_CChannel] = []
+        group_bounds: set[float] = {0.0, 1.0}
+        group_tests: list[tuple[float, float]] = []  # (time, coverage) of any channel
+        group_renew_all: list[float] = []
+        same = all(c is g.channels[0] for c in g.channels)
+        for ci, ch in enumerate(g.channels):
+            label = f"{g.name} channel {ci + 1}" if v.n > 1 and not same else g.name
+            ins = _hours(ch.in_service, "in_service")
+            start_h = max(start_h, ins)
+            renew_all = [ins]
+            if ch.overhaul_at is not None:
+                oh = _hours(ch.overhaul_at, "overhaul_at")
+                if oh < ins:
+                    flags.append(f"{label}: overhaul on {_fmt(oh)} is before the channel went "
+                                 f"into service ({_fmt(ins)}); ignored")
+                elif cutoff_h is None or oh <= cutoff_h:
+                    renew_all.append(oh)
+                    group_renew_all.append(oh)
+            bounds = {0.0, 1.0, float(ch.partial_test_coverage), float(ch.proof_test_coverage)}
+            kept: list[tuple[float, float]] = []
+            out_s: list[float] = []
+            out_e: list[float] = []
+            for t in ch.tests:
+                th = _hours(t.at, "at")
+                if th < ins:
+                    flags.append(f"{label}: {t.kind} test on {_fmt(th)} is before the channel "
+                                 f"went into service ({_fmt(ins)}); ignored")
+                    continue
+                if cutoff_h is not None and th > cutoff_h:
+                    after += 1
+                    continue
+                cov = float(_default_cov(ch, t.kind) if t.coverage is None else t.coverage)
+                bounds.add(cov)
+                all_tests.append(th)
+                group_tests.append((th, cov))
+                if t.failed:
+                    rest = ch.mrt if t.restore_hours is None else float(t.restore_hours)
+                    if rest > 0:
+                        out_s.append(th)
+                        out_e.append(th + rest)
+                    renew_all.append(th + rest)
+                else:
+                    kept.append((th, cov))
+            if extra and gi in extra:
+                for th, cov in extra[gi]:
+                    bounds.add(cov)
+                    kept.append((th, cov))
+                    group_tests.append((th, cov))
+            group_bounds |= bounds
+            b = sorted(bounds)
+            lam = (1.0 - beta) * float(ch.lambda_du)
+            kept_t = np.array([k[0] for k in kept], dtype=float)
+            kept_c = np.array([k[1] for k in kept], dtype=float)
+            ra = np.array(renew_all, dtype=float)
+            segs = []
+            for lo, hi in zip(b[:-1], b[1:]):
+                rate = lam * (hi - lo)
+                if rate <= 0.0:
+                    continue
+                r = np.unique(np.concatenate([ra, kept_t[kept_c >= hi - 1e-12]]))
+                segs.append((rate, r))
+                events.extend(r.tolist())
+            ms, me, _ = _merge(np.array(out_s, dtype=float), np.array(out_e, dtype=float))
+            events.extend(ms.tolist())
+            events.extend(me.tolist())
+            qdd = min(1.0, (1.0 - beta_d) * float(ch.lambda_dd) * float(ch.mttr_hours))
+            cchans.append(_CChannel(segs, math.log1p(-qdd) if qdd < 1 else -math.inf, ms, me))
+        # common-cause part
+        ccf_segs = []
+        log_dd_ccf = 0.0
+        if not single:
+            lam_g = beta * _geo_mean([float(c.lambda_du) for c in g.channels])
+            ins_g = min(_hours(c.in_service, "in_service") for c in g.channels)
+            gt = np.array([x[0] for x in group_tests], dtype=float)
+            gc = np.array([x[1] for x in group_tests], dtype=float)
+            base = np.array([ins_g] + group_renew_all, dtype=float)
+            b = sorted(group_bounds)
+            for lo, hi in zip(b[:-1], b[1:]):
+                rate = lam_g * (hi - lo)
+                if rate <= 0.0:
+                    continue
+                r = np.unique(np.concatenate([base, gt[gc >= hi - 1e-12]]))
+                ccf_segs.append((rate, r))
+                events.extend(r.tolist())
+            mttr_g = sum(float(c.mttr_hours) for c in g.channels) / v.n
+            qdd_c = min(1.0, beta_d * _geo_mean([float(c.lambda_dd) for c in g.channels]) * mttr_g)
+            log_dd_ccf = math.log1p(-qdd_c) if qdd_c < 1 else -math.inf
+        cgroups.append(_CGroup(g.name, v.m, v.n, cchans, ccf_segs, log_dd_ccf))
+
+    if after:
+        flags.append(f"{after} test record(s) dated after the evaluation date "
+                     f"({_fmt(cutoff_h)}) are not used")
+
+    # bypasses
+    bs, be = [], []
+    for i, (s, e) in enumerate(sif.bypasses):
+        sh = _hours(s, f"bypasses[{i}].start")
+        if e is None:
+            if end_h is None:
+                flags.append(f"bypass from {_fmt(sh)} has no end; ignored")
+                continue
+            flags.append(f"bypass from {_fmt(sh)} has no end; counted as still active")
+            eh = max(end_h, sh)
+        else:
+            eh = _hours(e, f"bypasses[{i}].end")
+        if eh < sh:
+            flags.append(f"bypass from {_fmt(sh)} ends before it starts ({_fmt(eh)}); ignored")
+            continue
+        if eh == sh:
+            continue
+        bs.append(sh)
+        be.append(eh)
+    ms, me, overlaps = _merge(np.array(bs, dtype=float), np.array(be, dtype=float))
+    if overlaps:
+        flags.append(f"{overlaps} overlapping bypass record(s) merged; "
+                     "the overlapping time is counted once")
+    events.extend(ms.tolist())
+    events.extend(me.tolist())
+    return _Compiled(cgroups, ms, me, np.unique(np.array(events, dtype=float)), start_h,
+                     np.array(all_tests, dtype=float), list(dict.fromkeys(flags)))
+
+
+# --------------------------------------------------------------------------
+# evaluation
+
+
+def _in_intervals(t: np.ndarray, s: np.ndarray, e: np.ndarray, left: bool) -> np.ndarray:
+    if s.size == 0:
+        return np.zeros(t.shape, dtype=bool)
+    if left:  # left limit: inside (s, e]
+        idx = np.searchsorted(s, t, "left") - 1
+        ok = idx >= 0
+        return ok & (t <= e[np.maximum(idx, 0)])
+    idx = np.searchsorted(s, t, "right") - 1
+    ok = idx >= 0
+    return ok & (t < e[np.maximum(idx, 0)])
+
+
+def _exposure(segs: list[tuple[float, np.ndarray]], t: np.ndarray, side: str) -> np.ndarray:
+    s = np.zeros(t.shape)
+    for rate, r in segs:
+        idx = np.searchsorted(r, t, side) - 1
+        np.maximum(idx, 0, out=idx)
+        age = t - r[idx]
+        np.maximum(age, 0.0, out=age)
+        s += rate * age
+    return s
+
+
+def _log_group_survival(g: _CGroup, t: np.ndarray, left: bool) -> np.ndarray:
+    """log(1 - Q_group(t))."""
+    side = "left" if left else "right"
+    logs = []
+    for ch in g.channels:
+        ls = ch.log_surv_dd - _exposure(ch.segs, t, side)
+        if ch.out_s.size:
+            ls[_in_intervals(t, ch.out_s, ch.out_e, left)] = -np.inf
+        logs.append(ls)
+    f = g.n - g.m + 1  # failed channels that fail the group
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if f == 1:
+            log_ind = np.sum(logs, axis=0)
+        else:
+            qs = [-np.expm1(ls) for ls in logs]
+            if f == g.n:
+                q_ind = np.prod(qs, axis=0)
+            else:
+                dist = np.zeros((g.n + 1, t.size))
+                dist[0] = 1.0
+                for i, q in enumerate(qs):
+                    p = 1.0 - q
+                    dist[1:i + 2] = dist[1:i + 2] * p + dist[0:i + 1] * q
+                    dist[0] *= p
+                q_ind = dist[f:].sum(axis=0)
+            log_ind = np.log1p(-np.minimum(q_ind, 1.0))
+        log_ccf = g.log_surv_dd_ccf - _exposure(g.ccf_segs, t, side) if g.ccf_segs else (
+            np.full(t.shape, g.log_surv_dd_ccf))
+    return log_ind + log_ccf
+
+
+def _evaluate(c: _Compiled, t: np.ndarray, left: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Return (Q_sif(t), Q_group(t) as (G, P) array)."""
+    logs = np.array([_log_group_survival(g, t, left) for g in c.groups])
+    with np.errstate(invalid="ignore"):
+        q_groups = -np.expm1(logs)
+        q_sif = -np.expm1(logs.sum(axis=0))
+    if c.byp_s.size:
+        q_sif[_in_intervals(t, c.byp_s, c.byp_e, left)] = 1.0
+    return q_sif, q_groups
+
+
+def _gauss(order: int) -> tuple[np.ndarray, np.ndarray]:
+    if order not in _GL_CACHE:
+        _GL_CACHE[order] = np.polynomial.legendre.leggauss(order)
+    return _GL_CACHE[order]
+
+
+def _nodes(events: np.ndarray, a: float, b: float, order: int,
+           max_piece: float) -> tuple[np.ndarray, np.ndarray]:
+    inner = events[(events > a) & (events < b)]
+    edges = np.concatenate([[a], inner, [b]])
+    lengths = np.diff(edges)
+    nsub = np.maximum(1, np.ceil(lengths / max_piece).astype(int))
+    if np.any(nsub > 1):
+        starts = np.repeat(edges[:-1], nsub)
+        sub = np.repeat(lengths / nsub, nsub)
+        k = np.arange(nsub.sum()) - np.repeat(np.cumsum(nsub) - nsub, nsub)
+        lo = starts + k * sub
+        half = sub / 2.0
+    else:
+        lo = edges[:-1]
+        half = lengths / 2.0
+    x, w = _gauss(order)
+    mid = lo + half
+    t = (mid[:, None] + half[:, None] * x[None, :]).ravel()
+    wt = (half[:, None] * w[None, :]).ravel()
+    return t, wt
+
+
+def _bypass_hours(c: _Compiled, a: float, b: float) -> float:
+    if c.byp_s.size == 0:
+        return 0.0
+    return float(np.sum(np.clip(np.minimum(c.byp_e, b) - np.maximum(c.byp_s, a), 0.0, None)))
+
+
+def _window(c: _Compiled, a: float, b: float, flags: list[str]) -> tuple[float, float]:
+    if not b > a:
+        raise InputError("window", f"the window end ({_fmt(b)}) must be after its start "
+                                   f"({_fmt(a)})")
+    if b <= c.start_h:
+        raise InputError("window", f"the window ends ({_fmt(b)}) before every channel is in "
+                                   f"service ({_fmt(c.start_h)})")
+    if a < c.start_h:
+        flags.append(f"window start {_fmt(a)} is before every channel is in service; "
+                     f"counted from {_fmt(c.start_h)}")
+        a = c.start_h
+    return a, b
+
+
+def _average(c: _Compiled, a: float, b: float, order: int, max_piece: float,
+             aware: bool, flags: list[str]) -> HistoryResult:
+    a, b = _window(c, a, b, flags)
+    t, w = _nodes(c.events, a, b, order, max_piece)
+    q_sif, q_groups = _evaluate(c, t)
+    span = b - a
+    avg = float(np.dot(w, q_sif) / span)
+    gavg = {g.name: float(np.dot(w, q_groups[i]) / span) for i, g in enumerate(c.groups)}
+    end_q, _ = _evaluate(c, np.array([b]), left=True)
+    return HistoryResult(
+        pfd_avg=avg,
+        window_start=_to_dt(a, aware),
+        window_end=_to_dt(b, aware),
+        hours=span,
+        groups=gavg,
+        bypass_hours=_bypass_hours(c, a, b),
+        pfd_at_end=float(end_q[0]),
+        flags=tuple(flags),
+    )
+
+
+def _resolve_start(sif_c: _Compiled, window_start: Any, end_dt: datetime) -> float:
+    if window_start is None:
+        return _hours(one_year_before(end_dt), "window_start")
+    if isinstance(window_start, str):
+        if window_start != "in_service":
+            raise InputError("window_start", "must be a date, None (12 months) or 'in_service'")
+        return sif_c.start_h
+    return _hours(window_start, "window_start")
+
+
+# --------------------------------------------------------------------------
+# public functions
+
+
+def achieved_pfd(sif: SifHistory, window_start: Any = None, window_end: Any = None, *,
+                 as_of: Any = None, order: int = 8,
+                 max_piece_hours: float = 2190.0) -> HistoryResult:
+    """Achieved PFDavg of ``sif`` over [window_start, window_end].
+
+    ``window_end`` is required (the engine never reads the clock).
+    ``window_start``: a date; None = the same calendar date 12 months before
+    the end; "in_service" = from the date every channel is in service.
+    ``as_of`` (default: window_end) is the evaluation date; records dated after
+    it are not used and are flagged. ``order`` (Gauss-Legendre points per
+    piece) and ``max_piece_hours`` set the integration grid.
+    """
+    if window_end is None:
+        raise InputError("window_end", "an evaluation date is required")
+    end_h = _hours(window_end, "window_end")
+    cut_h = end_h if as_of is None else _hours(as_of, "as_of")
+    c = _compile(sif, cut_h, end_h)
+    a = _resolve_start(c, window_start, _as_utc_naive(window_end, "window_end"))
+    return _average(c, a, end_h, int(order), float(max_piece_hours), _is_aware(window_end),
+                    list(c.flags))
+
+
+def achieved_pfd_windows(sif: SifHistory, windows: Sequence[tuple[Any, Any]], *,
+                         as_of: Any, order: int = 8,
+                         max_piece_hours: float = 2190.0) -> list[HistoryResult]:
+    """Several windows of one SIF sharing one evaluation date (prepared once)."""
+    cut_h = _hours(as_of, "as_of")
+    c = _compile(sif, cut_h, cut_h)
+    out = []
+    for start, end in windows:
+        end_h = _hours(end, "window_end")
+        a = _resolve_start(c, start, _as_utc_naive(end, "window_end"))
+        out.append(_average(c, a, end_h, int(order), float(max_piece_hours), _is_aware(end),
+                            list(c.flags)))
+    return out
+
+
+def pfd_series(sif: SifHistory, start: Any, end: Any, points: int = 500, *,
+               as_of: Any = None) -> tuple[list[datetime], np.ndarray]:
+    """PFD(t) for plotting: ``points`` evenly spaced samples, plus at every
+    event time the value just before and just after it (same timestamp twice)
+    so the sawtooth drops are drawn vertically."""
+    if isinstance(points, bool) or not isinstance(points, int) or points < 2:
+        raise InputError("points", "must be an integer of at least 2")
+    end_h = _hours(end, "end")
+    cut_h = end_h if as_of is None else _hours(as_of, "as_of")
+    c = _compile(sif, cut_h, end_h)
+    a, b = _window(c, _hours(start, "start"), end_h, [])
+    uni = np.linspace(a, b, points)
+    ev = c.events[(c.events > a) & (c.events < b)]
+    times = np.concatenate([uni, ev, ev])
+    left = np.concatenate([np.zeros(uni.size, bool), np.ones(ev.size, bool),
+                           np.zeros(ev.size, bool)])
+    left[points - 1] = True  # the end point: value just before the end
+    order = np.lexsort((~left, times))
+    times, left = times[order], left[order]
+    vals = np.empty(times.size)
+    vals[left], _ = _evaluate(c, times[left], left=True)
+    vals[~left], _ = _evaluate(c, times[~left], left=False)
+    aware = _is_aware(end)
+    return [_to_dt(h, aware) for h in times], vals
+
+
+def projection(sif: SifHistory, as_of: Any, next_test_at: Any, horizon_end: Any = None, *,
+               interval_hours: float | None = None, coverage: float | None = None,
+               order: int = 8, max_piece_hours: float = 2190.0) -> HistoryResult:
+    """PFDavg over [as_of, horizon_end] if every channel gets its next full test
+    at ``next_test_at`` (and then every ``interval_hours``, if given), all passing.
+
+    Records after ``as_of`` are not used. ``coverage``: coverage of the planned
+    tests (None = each channel's proof-test coverage). Partial tests are not
+    projected (conservative). ``horizon_end`` defaults to next_test_at +
+    interval_hours. Compare a due date with a proposed later date over the same
+    horizon (see :func:`compare_deferral`).
+    """
+    as_h = _hours(as_of, "as_of")
+    nt_h = _hours(next_test_at, "next_test_at")
+    if nt_h < as_h:
+        raise InputError("next_test_at", f"{_fmt(nt_h)} is before the as-of date {_fmt(as_h)}")
+    if interval_hours is not None:
+        interval_hours = _num(interval_hours, "interval_hours")
+        if interval_hours <= 0:
+            raise InputError("interval_hours", "must be greater than 0")
+    if coverage is not None:
+        _num(coverage, "coverage", 0.0, 1.0)
+    if horizon_end is None:
+        if interval_hours is None:
+            raise InputError("horizon_end", "give a horizon end or a test interval")
+        hz_h = nt_h + interval_hours
+        aware = _is_aware(next_test_at)
+    else:
+        hz_h = _hours(horizon_end, "horizon_end")
+        aware = _is_aware(horizon_end)
+    if hz_h <= as_h:
+        raise InputError("horizon_end", "must be after the as-of date")
+    planned_t = [nt_h]
+    if interval_hours:
+        k = nt_h + interval_hours
+        while k < hz_h:
+            planned_t.append(k)
+            k += interval_hours
+    extra = {}
+    for gi, g in enumerate(sif.groups):
+        cov = (g.channels[0].proof_test_coverage if coverage is None else float(coverage))
+        extra[gi] = [(t, cov) for t in planned_t]
+    # per-channel coverage when channels differ: use each group's first channel
+    c = _compile(sif, as_h, hz_h, extra)
+    flags = list(c.flags)
+    if nt_h >= hz_h:
+        flags.append(f"the next test ({_fmt(nt_h)}) falls after the horizon end; "
+                     "it does not affect this projection")
+    return _average(c, as_h, hz_h, int(order), float(max_piece_hours), aware, flags)
+
+
+def compare_deferral(sif: SifHistory, as_of: Any, due_at: Any, proposed_at: Any,
+                     horizon_end: Any, *, interval_hours: float | None = None) -> DeferralComparison:
+    """Projected PFDavg over [as_of, horizon_end] with the next full test on its
+    due date versus on a proposed later date."""
+    on_due = projection(sif, as_of, due_at, horizon_end, interval_hours=interval_hours)
+    later = projection(sif, as_of, proposed_at, horizon_end, interval_hours=interval_hours)
+    inc = later.pfd_avg - on_due.pfd_avg
+    rel = inc / on_due.pfd_avg if on_due.pfd_avg > 0 else math.inf if inc > 0 else 0.0
+    return DeferralComparison(on_due, later, inc, rel)
+
+
+# --------------------------------------------------------------------------
+# perfect schedule versus design figure
+
+
+@dataclass(frozen=True, kw_only=True)
+class PlannedGroup:
+    """Design inputs of one group for :func:`planned_schedule_check`."""
+
+    name: str = "group"
+    voting: str = "1oo1"
+    lambda_du: float
+    proof_test_interval_hours: float
+    lambda_dd: float = 0.0
+    beta: float = 0.0
+    beta_d: float = 0.0
+    mttr_hours: float = 8.0
+    mrt_hours: float | None = None
+    proof_test_coverage: float = 1.0
+    partial_test_interval_hours: float | None = None
+    partial_test_coverage: float = 0.0
+    mission_time_hours: float | None = None
+
+
+def planned_history(groups: Sequence[PlannedGroup], horizon_hours: float,
+                    in_service: datetime = datetime(2000, 1, 1)) -> SifHistory:
+    """A SifHistory with every test exactly on schedule and never a failure found.
+
+    Full tests every T1 from in_service, partial tests every partial interval
+    (skipped where a full test falls at the same time); an overhaul at the
+    mission time when it lies inside the horizon.
+    """
+    out = []
+    for i, p in enumerate(groups):
+        t1 = _num(p.proof_test_interval_hours, f"groups[{i}].proof_test_interval_hours")
+        if t1 <= 0:
+            raise InputError(f"groups[{i}].proof_test_interval_hours", "must be greater than 0")
+        v = parse_voting(p.voting, f"groups[{i}].voting")
+        times: list[tuple[float, str]] = []
+        k = 1
+        while k * t1 <= horizon_hours + 1e-9:
+            times.append((k * t1, "full"))
+            k += 1
+        if p.partial_test_interval_hours:
+            tp = _num(p.partial_test_interval_hours, f"groups[{i}].partial_test_interval_hours")
+            if tp > 0:
+                k = 1
+                while k * tp <= horizon_hours + 1e-9:
+                    tt = k * tp
+                    if abs(tt / t1 - round(tt / t1)) > 1e-9:
+                        times.append((tt, "partial"))
+                    k += 1
+        times.sort()
+        tests = tuple(TestEvent(at=in_service + timedelta(hours=h), kind=kd) for h, kd in times)
+        overhaul = None
+        if p.mission_time_hours and p.mission_time_hours < horizon_hours:
+            overhaul = in_service + timedelta(hours=float(p.mission_time_hours))
+        try:
+            ch = Channel(lambda_du=p.lambda_du, lambda_dd=p.lambda_dd, mttr_hours=p.mttr_hours,
+                         mrt_hours=p.mrt_hours, proof_test_coverage=p.proof_test_coverage,
+                         partial_test_coverage=p.partial_test_coverage, in_service=in_service,
+                         overhaul_at=overhaul, tests=tests)
+            out.append(Group(name=p.name, voting=p.voting, beta=p.beta, beta_d=p.beta_d,
+                             channels=(ch,) * v.n))
+        except InputError as e:
+            raise InputError(f"groups[{i}].{e.field}", e.message) from None
+    return SifHistory(groups=tuple(out))
+
+
+def planned_schedule_check(groups: Sequence[PlannedGroup], design_pfd_avg: float, *,
+                           horizon_hours: float | None = None,
+                           tolerance: float = DEFAULT_SCHEDULE_TOLERANCE) -> ScheduleCheck:
+    """Run the history model with every test exactly on schedule and compare
+    with a design PFDavg.
+
+    Horizon: ``horizon_hours`` if given, else the longest mission time, else
+    ten times the longest proof-test interval. The pair is flagged when
+    |model/design - 1| > ``tolerance`` (see DEFAULT_SCHEDULE_TOLERANCE).
+    """
+    groups = list(groups)
+    if not groups:
+        raise InputError("groups", "at least one group is needed")
+    design = _num(design_pfd_avg, "design_pfd_avg", 0.0, 1.0)
+    if design <= 0:
+        raise InputError("design_pfd_avg", "must be greater than 0")
+    tol = _num(tolerance, "tolerance")
+    if horizon_hours is None:
+        mts = [float(p.mission_time_hours) for p in groups if p.mission_time_hours]
+        horizon_hours = max(mts) if mts else 10.0 * max(float(p.proof_test_interval_hours)
+                                                        for p in groups)
+    horizon_hours = _num(horizon_hours, "horizon_hours")
+    if horizon_hours <= 0:
+        raise InputError("horizon_hours", "must be greater than 0")
+    origin = datetime(2000, 1, 1)
+    sif = planned_history(groups, horizon_hours, origin)
+    res = achieved_pfd(sif, origin, origin + timedelta(hours=horizon_hours))
+    rel = res.pfd_avg / design - 1.0
+    ok = abs(rel) <= tol
+    if ok:
+        msg = (f"on a perfect schedule the history model gives {res.pfd_avg:.4g}, "
+               f"{rel:+.1%} from the design figure {design:.4g} (within ±{tol:.0%})")
+    elif rel > 0:
+        msg = (f"on a perfect schedule the history model gives {res.pfd_avg:.4g}, "
+               f"{rel:+.1%} above the design figure {design:.4g}: the design calculation "
+               "looks optimistic or uses other inputs than the register")
+    else:
+        msg = (f"on a perfect schedule the history model gives {res.pfd_avg:.4g}, "
+               f"{rel:+.1%} below the design figure {design:.4g}: the design figure "
+               "and the register inputs do not describe the same function")
+    return ScheduleCheck(res.pfd_avg, design, rel, tol, ok, horizon_hours, msg)
+
+
+# --------------------------------------------------------------------------
+# JSON case
+
+
+def _parse_when(value: Any, field_name: str) -> datetime:
+    if isinstance(value, (datetime, date)):
+        return _as_utc_naive(value, field_name)
+    if not isinstance(value, str):
+        raise InputError(field_name, f"must be an ISO date such as 2024-03-31, got {value!r}")
+    try:
+        dt = datetime.fromisoformat(value.strip())
+    except ValueError:
+        raise InputError(field_name, f"'{value}' is not an ISO date such as 2024-03-31") from None
+    return _as_utc_naive(dt, field_name)
+
+
+def _get_num(d: dict, key: str, path: str, default: Any = None, lo: float = 0.0,
+             hi: float | None = None, required: bool = False) -> float | None:
+    if key not in d or d[key] is None:
+        if required:
+            raise InputError(f"{path}.{key}" if path else key, "is required")
+        return default
+    return _num(d[key], f"{path}.{key}" if path else key, lo, hi)
+
+
+def evaluate_case_history(data: dict) -> dict:
+    """Achieved PFDavg of a JSON case (the design-case format plus dates).
+
+    Each subsystem gets N identical channels (N from its voting); its "tests"
+    apply to every channel. "in_service" (ISO date) is required. Window: the
+    given "window" {"start","end"}; the end defaults to "as_of", else to the
+    latest date in the case (tests, bypasses, in service); the start defaults
+    to 12 calendar months before the end (clipped to in service, flagged).
+    Flags also list full tests later than the subsystem's proof-test interval
+    and a full test overdue at the window end.
+    """
+    if not isinstance(data, dict):
+        raise InputError("case", "must be a JSON object")
+    flags: list[str] = []
+    if "in_service" not in data or data["in_service"] in (None, ""):
+        raise InputError("in_service", "the date the SIF went into service is required")
+    ins = _parse_when(data["in_service"], "in_service")
+    mode = data.get("demand_mode", "low")
+    if mode not in (None, "low"):
+        flags.append("achieved PFDavg is a low-demand measure; for a high-demand or continuous "
+                     "function use the PFH of the design calculation")
+    subs = data.get("subsystems")
+    if not isinstance(subs, list) or not subs:
+        raise InputError("subsystems", "must be a non-empty list")
+    latest = ins
+    groups: list[Group] = []
+    schedule: list[tuple[str, float, list[datetime]]] = []
+    for i, s in enumerate(subs):
+        p = f"subsystems[{i}]"
+        if not isinstance(s, dict):
+            raise InputError(p, "must be an object")
+        name = s.get("name", f"subsystem {i + 1}")
+        if not isinstance(name, str) or not name.strip():
+            raise InputError(f"{p}.name", "must be a non-empty text")
+        v = parse_voting(s.get("voting", "1oo1"), f"{p}.voting")
+        ldu = _get_num(s, "lambda_du_per_hour", p, required=True, hi=1.0)
+        ldd = _get_num(s, "lambda_dd_per_hour", p, 0.0, hi=1.0)
+        beta = _get_num(s, "beta", p, 0.0, hi=1.0)
+        beta_d = _get_num(s, "beta_d", p, 0.0, hi=1.0)
+        mttr = _get_num(s, "mttr_hours", p, 8.0)
+        mrt = _get_num(s, "mrt_hours", p, mttr)
+        t1 = _get_num(s, "proof_test_interval_hours", p, None)
+        ptc = _get_num(s, "proof_test_coverage", p, 1.0, hi=1.0)
+        theta = _get_num(s, "partial_test_coverage", p, 0.0, hi=1.0)
+        mt = _get_num(s, "mission_time_hours", p, None)
+        if theta > ptc:
+            raise InputError(f"{p}.partial_test_coverage",
+                             f"{theta:g} exceeds the proof-test coverage {ptc:g}")
+        raw_tests = s.get("tests", [])
+        if raw_tests is None:
+            raw_tests = []
+        if not isinstance(raw_tests, list):
+            raise InputError(f"{p}.tests", "must be a list")
+        events = []
+        full_dates = []
+        for j, t in enumerate(raw_tests):
+            tp = f"{p}.tests[{j}]"
+            if not isinstance(t, dict):
+                raise InputError(tp, "must be an object")
+            if "date" not in t:
+                raise InputError(f"{tp}.date", "is required")
+            when = _parse_when(t["date"], f"{tp}.date")
+            kind = t.get("kind", "full")
+            if kind not in TEST_KINDS:
+                raise InputError(f"{tp}.kind", f"must be one of {', '.join(TEST_KINDS)}")
+            cov = _get_num(t, "coverage", tp, None, hi=1.0)
+            failed = t.get("failed", False)
+            if not isinstance(failed, bool):
+                raise InputError(f"{tp}.failed", "must be true or false")
+            rest = _get_num(t, "restore_hours", tp, None)
+            events.append(TestEvent(at=when, kind=kind, coverage=cov, failed=failed,
+                                    restore_hours=rest))
+            latest = max(latest, when)
+            if kind == "full" and when >= ins:
+                full_dates.append(when)
+        overhaul = None
+        if s.get("overhaul_date") is not None:
+            overhaul = _parse_when(s["overhaul_date"], f"{p}.overhaul_date")
+        try:
+            ch = Channel(lambda_du=ldu, lambda_dd=ldd, mttr_hours=mttr, mrt_hours=mrt,
+                         proof_test_coverage=ptc, partial_test_coverage=theta,
+                         in_service=ins, overhaul_at=overhaul, tests=tuple(events))
+            groups.append(Group(name=name, voting=str(v), beta=beta, beta_d=beta_d,
+                                channels=(ch,) * v.n))
+        except InputError as e:
+            raise InputError(f"{p}.{e.field}", e.message) from None
+        if t1:
+            schedule.append((name, t1, sorted(full_dates)))
+        if mt and ptc < 1.0:
+            schedule.append((name, -mt, []))  # marker for the mission-time check
+    bypasses = []
+    for i, b in enumerate(data.get("bypasses") or []):
+        bp = f"bypasses[{i}]"
+        if not isinstance(b, dict) or "start" not in b:
+            raise InputError(f"{bp}.start", "is required")
+        bs = _parse_when(b["start"], f"{bp}.start")
+        be = None if b.get("end") in (None, "") else _parse_when(b["end"], f"{bp}.end")
+        bypasses.append((bs, be))
+        latest = max([latest, bs] + ([be] if be else []))
+    as_of = None if data.get("as_of") in (None, "") else _parse_when(data["as_of"], "as_of")
+    win = data.get("window") or {}
+    if not isinstance(win, dict):
+        raise InputError("window", "must be an object with start and end")
+    if win.get("end"):
+        end = _parse_when(win["end"], "window.end")
+    else:
+        end = as_of if as_of is not None else latest
+    start = _parse_when(win["start"], "window.start") if win.get("start") else one_year_before(end)
+    sif = SifHistory(groups=tuple(groups), bypasses=tuple(bypasses))
+    res = achieved_pfd(sif, start, end, as_of=as_of if as_of is not None else end)
+    flags.extend(res.flags)
+    end_h = _hours(end, "window.end")
+    for name, t1, dates in schedule:
+        if t1 < 0:
+            mt = -t1
+            if end_h - _hours(ins, "in_service") > mt:
+                flags.append(f"{name}: in service longer than its mission time "
+                             f"({mt:g} h); failures no proof test reveals keep accumulating")
+            continue
+        prev = ins
+        for d in dates:
+            if d > end:
+                break
+            gap = (d - prev) / timedelta(hours=1)
+            if gap > t1 + 24.0:
+                flags.append(f"{name}: full test on {d.date().isoformat()} came "
+                             f"{(gap - t1) / 24.0:.0f} days after it was due")
+            prev = max(prev, d)
+        due = _hours(prev, "date") + t1
+        if end_h > due + 24.0:
+            flags.append(f"{name}: full test overdue at {_fmt(end_h)} "
+                         f"(due {_fmt(due)}, {(end_h - due) / 24.0:.0f} days late)")
+    return {
+        "achieved_pfd_avg": res.pfd_avg,
+        "window": {"start": res.window_start.isoformat(), "end": res.window_end.isoformat()},
+        "hours": res.hours,
+        "bypass_hours": res.bypass_hours,
+        "pfd_at_window_end": res.pfd_at_end,
+        "flags": flags,
+        "subsystems": {k: {"achieved_pfd_avg": val} for k, val in res.groups.items()},
+    }

@@ -1,0 +1,182 @@
+"""Settings shared by every environment; everything site-specific comes from the environment.
+
+Defaults give a working demo on one machine: SQLite in ``var/`` and Celery on a
+filesystem broker (no Redis needed). Set ``DATABASE_URL`` and
+``CELERY_BROKER_URL`` to use PostgreSQL and Redis.
+"""
+
+from pathlib import Path
+
+import dj_database_url
+
+from .env import env_bool, env_int, env_list, env_str
+
+BASE_DIR = Path(__file__).resolve().parent.parent.parent
+VAR_DIR = Path(env_str("SIF_LEDGER_VAR_DIR", str(BASE_DIR / "var")))
+VAR_DIR.mkdir(parents=True, exist_ok=True)
+
+SECRET_KEY = env_str("SECRET_KEY", "dev-only-insecure-key-change-me")
+DEBUG = env_bool("DEBUG", True)
+ALLOWED_HOSTS = env_list("ALLOWED_HOSTS", "localhost,127.0.0.1,[::1],testserver")
+CSRF_TRUSTED_ORIGINS = env_list("CSRF_TRUSTED_ORIGINS")
+
+INSTALLED_APPS = [
+    "django.contrib.admin",
+    "django.contrib.auth",
+    "django.contrib.contenttypes",
+    "django.contrib.sessions",
+    "django.contrib.messages",
+    "django.contrib.staticfiles",
+    "django.contrib.humanize",
+    "rest_framework",
+    "rest_framework.authtoken",
+    "django_filters",
+    "drf_spectacular",
+    "django_htmx",
+    "simple_history",
+    "register",
+    "calcs",
+]
+
+MIDDLEWARE = [
+    "django.middleware.security.SecurityMiddleware",
+    "whitenoise.middleware.WhiteNoiseMiddleware",
+    "django.contrib.sessions.middleware.SessionMiddleware",
+    "django.middleware.common.CommonMiddleware",
+    "django.middleware.csrf.CsrfViewMiddleware",
+    "django.contrib.auth.middleware.AuthenticationMiddleware",
+    "django.contrib.messages.middleware.MessageMiddleware",
+    "django.middleware.clickjacking.XFrameOptionsMiddleware",
+    "django_htmx.middleware.HtmxMiddleware",
+    "simple_history.middleware.HistoryRequestMiddleware",
+]
+
+ROOT_URLCONF = "config.urls"
+WSGI_APPLICATION = "config.wsgi.application"
+
+TEMPLATES = [
+    {
+        "BACKEND": "django.template.backends.django.DjangoTemplates",
+        "DIRS": [BASE_DIR / "templates"],
+        "APP_DIRS": True,
+        "OPTIONS": {
+            "context_processors": [
+                "django.template.context_processors.request",
+                "django.contrib.auth.context_processors.auth",
+                "django.contrib.messages.context_processors.messages",
+            ],
+        },
+    },
+]
+
+DATABASES = {
+    "default": dj_database_url.parse(
+        env_str("DATABASE_URL", f"sqlite:///{VAR_DIR / 'sif_ledger.sqlite3'}"),
+        conn_max_age=env_int("DB_CONN_MAX_AGE", 0),
+    )
+}
+if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
+    # Wait for a lock instead of failing at once; take the write lock at BEGIN so two
+    # writers never deadlock on lock upgrade.
+    DATABASES["default"]["OPTIONS"] = {"timeout": 20, "transaction_mode": "IMMEDIATE"}
+
+DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
+
+AUTH_PASSWORD_VALIDATORS = [
+    {"NAME": "django.contrib.auth.password_validation.UserAttributeSimilarityValidator"},
+    {"NAME": "django.contrib.auth.password_validation.MinimumLengthValidator"},
+    {"NAME": "django.contrib.auth.password_validation.CommonPasswordValidator"},
+    {"NAME": "django.contrib.auth.password_validation.NumericPasswordValidator"},
+]
+LOGIN_URL = "login"
+LOGIN_REDIRECT_URL = "/"
+LOGOUT_REDIRECT_URL = "login"
+
+LANGUAGE_CODE = "en-gb"
+TIME_ZONE = env_str("TIME_ZONE", "UTC")
+USE_I18N = True
+USE_TZ = True
+
+STATIC_URL = "static/"
+STATIC_ROOT = VAR_DIR / "static"
+STATICFILES_DIRS = [BASE_DIR / "static"]
+MEDIA_URL = "media/"
+MEDIA_ROOT = Path(env_str("MEDIA_ROOT", str(VAR_DIR / "media")))
+STORAGES = {
+    "default": {"BACKEND": "django.core.files.storage.FileSystemStorage"},
+    "staticfiles": {"BACKEND": "whitenoise.storage.CompressedStaticFilesStorage"},
+}
+# Attachments (photos, scans) uploaded with test records.
+ATTACHMENT_MAX_BYTES = env_int("ATTACHMENT_MAX_BYTES", 10 * 1024 * 1024)
+DATA_UPLOAD_MAX_MEMORY_SIZE = 12 * 1024 * 1024
+
+EMAIL_BACKEND = env_str("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
+DEFAULT_FROM_EMAIL = env_str("DEFAULT_FROM_EMAIL", "sif-ledger@localhost")
+
+# --- Celery -------------------------------------------------------------------------
+CELERY_BROKER_URL = env_str("CELERY_BROKER_URL", "filesystem://")
+CELERY_RESULT_BACKEND = env_str("CELERY_RESULT_BACKEND", None)
+CELERY_TASK_ALWAYS_EAGER = env_bool("CELERY_TASK_ALWAYS_EAGER", CELERY_BROKER_URL == "filesystem://")
+CELERY_TASK_EAGER_PROPAGATES = False
+CELERY_TASK_SERIALIZER = "json"
+CELERY_ACCEPT_CONTENT = ["json"]
+CELERY_TASK_ACKS_LATE = True
+CELERY_WORKER_PREFETCH_MULTIPLIER = 1
+CELERY_TIMEZONE = TIME_ZONE
+CELERY_BEAT_SCHEDULE_FILENAME = str(VAR_DIR / "celerybeat-schedule")
+_broker_dir = VAR_DIR / "broker"
+CELERY_BROKER_TRANSPORT_OPTIONS = (
+    {
+        "data_folder_in": str(_broker_dir / "queue"),
+        "data_folder_out": str(_broker_dir / "queue"),
+        "control_folder": str(_broker_dir / "control"),
+        "processed_folder": str(_broker_dir / "processed"),
+        "store_processed": False,
+    }
+    if CELERY_BROKER_URL.startswith("filesystem")
+    else {}
+)
+# Periodic work: the due-date scan and the nightly recompute. Periods in seconds,
+# overridable from the environment.
+SCAN_PERIOD_SECONDS = env_int("SCAN_PERIOD_SECONDS", 15 * 60)
+RECOMPUTE_HOUR_UTC = env_int("RECOMPUTE_HOUR_UTC", 2)
+CELERY_BEAT_SCHEDULE = {
+    "due-date-scan": {
+        "task": "register.scan",
+        "schedule": SCAN_PERIOD_SECONDS,
+        "options": {"expires": max(SCAN_PERIOD_SECONDS - 5, 1)},
+    },
+    "nightly-recompute": {
+        "task": "calcs.recompute_all",
+        "schedule": __import__("celery.schedules", fromlist=["crontab"]).crontab(
+            minute=0, hour=RECOMPUTE_HOUR_UTC),
+    },
+}
+
+# --- REST framework ----------------------------------------------------------------
+REST_FRAMEWORK = {
+    "DEFAULT_AUTHENTICATION_CLASSES": [
+        "rest_framework.authentication.SessionAuthentication",
+        "rest_framework.authentication.TokenAuthentication",
+    ],
+    "DEFAULT_PERMISSION_CLASSES": ["rest_framework.permissions.IsAuthenticated"],
+    "DEFAULT_PAGINATION_CLASS": "rest_framework.pagination.PageNumberPagination",
+    "PAGE_SIZE": 50,
+    "DEFAULT_FILTER_BACKENDS": ["django_filters.rest_framework.DjangoFilterBackend"],
+    "DEFAULT_SCHEMA_CLASS": "drf_spectacular.openapi.AutoSchema",
+}
+SPECTACULAR_SETTINGS = {
+    "TITLE": "SIF Ledger API",
+    "DESCRIPTION": "Register of safety instrumented functions. Results support, and do not "
+    "replace, a functional safety assessment by competent persons under IEC 61511 and "
+    "local regulations.",
+    "VERSION": "0.1.0",
+}
+
+LOGGING = {
+    "version": 1,
+    "disable_existing_loggers": False,
+    "handlers": {"console": {"class": "logging.StreamHandler"}},
+    "root": {"handlers": ["console"], "level": env_str("LOG_LEVEL", "INFO")},
+    "loggers": {"django.db.backends": {"level": "INFO"}},
+}

@@ -1,0 +1,187 @@
+"""Django admin for the whole register, usable by a safety lead on day one."""
+
+from django.contrib import admin
+from simple_history.admin import SimpleHistoryAdmin
+
+from . import models as m
+
+
+class HistoryAdmin(SimpleHistoryAdmin):
+    """Every register model keeps a change history, viewable from its admin page."""
+
+
+@admin.register(m.Site)
+class SiteAdmin(HistoryAdmin):
+    list_display = ("code", "name", "due_soon_days", "escalate_share", "rate_basis")
+    search_fields = ("code", "name")
+
+
+@admin.register(m.PlantUnit)
+class PlantUnitAdmin(HistoryAdmin):
+    list_display = ("code", "name", "site")
+    list_filter = ("site",)
+    search_fields = ("code", "name")
+
+
+@admin.register(m.Membership)
+class MembershipAdmin(HistoryAdmin):
+    list_display = ("user", "site", "role")
+    list_filter = ("site", "role")
+    search_fields = ("user__username", "user__first_name", "user__last_name")
+
+
+@admin.register(m.DeviceType)
+class DeviceTypeAdmin(HistoryAdmin):
+    list_display = ("name", "role", "lambda_du_per_hour", "lambda_dd_per_hour",
+                    "device_class", "systematic_capability", "source")
+    list_filter = ("role", "device_class")
+    search_fields = ("name", "source")
+
+
+class CauseInline(admin.TabularInline):
+    model = m.InitiatingCause
+    extra = 0
+
+
+class LayerInline(admin.TabularInline):
+    model = m.ProtectionLayer
+    extra = 0
+
+
+class ModifierInline(admin.TabularInline):
+    model = m.ConditionalModifier
+    extra = 0
+
+
+@admin.register(m.HazardScenario)
+class HazardScenarioAdmin(HistoryAdmin):
+    list_display = ("reference", "title", "site", "unit", "category",
+                    "tolerable_frequency_per_year")
+    list_filter = ("site", "unit", "category")
+    search_fields = ("reference", "title", "consequence")
+    inlines = [CauseInline, LayerInline, ModifierInline]
+
+
+class SubsystemInline(admin.TabularInline):
+    model = m.Subsystem
+    extra = 0
+    show_change_link = True
+
+
+class PlanInline(admin.TabularInline):
+    model = m.TestPlan
+    extra = 0
+    fields = ("name", "kind", "interval_months", "coverage", "next_due_on", "cached_state")
+    readonly_fields = ("next_due_on", "cached_state")
+    show_change_link = True
+
+
+@admin.register(m.SafetyFunction)
+class SafetyFunctionAdmin(HistoryAdmin):
+    list_display = ("tag", "name", "unit", "target_sil", "demand_mode", "life_stage", "owner")
+    list_filter = ("unit__site", "unit", "target_sil", "demand_mode", "life_stage")
+    search_fields = ("tag", "name", "subsystems__components__tag")
+    filter_horizontal = ("scenarios",)
+    inlines = [SubsystemInline, PlanInline]
+    list_select_related = ("unit", "owner")
+
+
+class ComponentInline(admin.TabularInline):
+    model = m.Component
+    extra = 0
+    fields = ("tag", "device_type", "in_service_on", "lambda_du_per_hour",
+              "proof_test_coverage", "partial_test_coverage", "data_basis")
+    show_change_link = True
+
+
+@admin.register(m.Subsystem)
+class SubsystemAdmin(HistoryAdmin):
+    list_display = ("__str__", "role", "voting", "beta", "beta_d", "mttr_hours")
+    list_filter = ("role", "voting")
+    search_fields = ("sif__tag", "name")
+    inlines = [ComponentInline]
+
+
+@admin.register(m.Component)
+class ComponentAdmin(HistoryAdmin):
+    list_display = ("tag", "device_type", "subsystem", "in_service_on", "data_basis")
+    list_filter = ("device_type", "data_basis", "subsystem__role")
+    search_fields = ("tag", "subsystem__sif__tag")
+    list_select_related = ("device_type", "subsystem__sif")
+
+
+class StepInline(admin.TabularInline):
+    model = m.TestStep
+    extra = 0
+
+
+@admin.register(m.TestPlan)
+class TestPlanAdmin(HistoryAdmin):
+    list_display = ("__str__", "kind", "interval_months", "coverage", "next_due_on",
+                    "cached_state")
+    list_filter = ("kind", "cached_state", "sif__unit")
+    search_fields = ("sif__tag", "name", "components__tag")
+    filter_horizontal = ("components",)
+    readonly_fields = ("next_due_on", "cached_state")
+    inlines = [StepInline]
+
+
+class ResultInline(admin.TabularInline):
+    model = m.ComponentResult
+    extra = 0
+
+
+class AttachmentInline(admin.TabularInline):
+    model = m.Attachment
+    extra = 0
+    readonly_fields = ("original_name", "content_type", "size_bytes", "sha256", "uploaded_by")
+
+
+@admin.register(m.TestRecord)
+class TestRecordAdmin(HistoryAdmin):
+    """Signed records are read-only here as everywhere: corrections supersede them."""
+
+    list_display = ("__str__", "kind", "status", "performed_by", "verified_by", "performed_at")
+    list_filter = ("kind", "status", "sif__unit")
+    search_fields = ("sif__tag", "results__component__tag", "remarks")
+    date_hierarchy = "performed_at"
+    inlines = [ResultInline, AttachmentInline]
+    list_select_related = ("sif", "performed_by", "verified_by")
+
+    def has_change_permission(self, request, obj=None):
+        if obj is not None and obj.is_signed:
+            return False
+        return super().has_change_permission(request, obj)
+
+    def has_delete_permission(self, request, obj=None):
+        if obj is not None and obj.is_signed:
+            return False
+        return super().has_delete_permission(request, obj)
+
+
+@admin.register(m.Demand)
+class DemandAdmin(HistoryAdmin):
+    list_display = ("sif", "occurred_at", "successful", "spurious")
+    list_filter = ("successful", "spurious", "sif__unit")
+    search_fields = ("sif__tag", "description")
+
+
+@admin.register(m.Bypass)
+class BypassAdmin(HistoryAdmin):
+    list_display = ("sif", "component", "started_at", "ended_at", "authorised_hours",
+                    "authorised_by", "measures_effective")
+    list_filter = ("measures_effective", "sif__unit")
+    search_fields = ("sif__tag", "reason")
+
+
+@admin.register(m.Deferral)
+class DeferralAdmin(HistoryAdmin):
+    list_display = ("plan", "due_on", "proposed_on", "status", "requested_by", "decided_by")
+    list_filter = ("status",)
+    search_fields = ("plan__sif__tag", "reason")
+
+
+@admin.register(m.Notification)
+class NotificationAdmin(admin.ModelAdmin):
+    list_display = ("created_at", "recipient", "kind", "message", "read_at")
+    list_filter = ("kind", "site")

@@ -1,0 +1,398 @@
+"""Builds the invented demo plant from ``fixtures/demo_plant.json``.
+
+Everything is laid relative to ``today`` so the demo always shows tests due soon,
+overdue and escalated. The history is random but seeded by each SIF's tag, so the same
+day gives the same plant. All writes go through ``register.services``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+import random
+from pathlib import Path
+
+from django.conf import settings
+from django.contrib.auth import get_user_model
+from django.db import transaction
+
+from . import choices, followup, services
+from .models import (
+    Component,
+    ConditionalModifier,
+    DeviceType,
+    HazardScenario,
+    InitiatingCause,
+    Membership,
+    PlantUnit,
+    ProtectionLayer,
+    SafetyFunction,
+    Site,
+    Subsystem,
+    TestPlan,
+    TestStep,
+)
+from .scheduling import add_months, refresh_plans
+
+DEMO_FILE = Path(settings.BASE_DIR) / "fixtures" / "demo_plant.json"
+DEMO_PASSWORD = "demo-pass-2026"
+TAG_PREFIX = {"pt": "PT", "lt": "LT", "tt": "TT", "ft": "FT", "ls": "LSLL", "plc": "SLS",
+              "xv": "XV", "bdv": "BDV", "mcc": "HS"}
+# Required PFDavg placed inside each SIL band (for the LOPA arithmetic of the demo).
+REQUIRED_PFD = {1: 0.04, 2: 4.0e-3, 3: 6.0e-4}
+FULL_INTERVAL_MONTHS = {1: 24, 2: 12, 3: 12}
+# Where each SIF's next full test stands today, by position in the list (cycled).
+DUE_PATTERN = ["ok", "ok", "soon", "ok", "overdue", "ok", "escalated", "ok", "ok", "soon",
+               "ok", "escalated2", "ok", "overdue"]
+
+
+class DemoAlreadyLoaded(Exception):
+    pass
+
+
+def load(today: dt.date, *, path: Path = DEMO_FILE, stdout=None) -> Site:
+    spec = json.loads(path.read_text(encoding="utf-8"))
+    if Site.objects.filter(code=spec["site"]["code"]).exists():
+        raise DemoAlreadyLoaded(spec["site"]["code"])
+    with transaction.atomic(), followup.suspended():
+        builder = _Builder(spec, today)
+        site = builder.build()
+    refresh_plans(TestPlan.objects.filter(sif__unit__site=site), today)
+    from calcs.adapter import recompute_many
+
+    recompute_many(SafetyFunction.objects.filter(unit__site=site), trigger="demo load")
+    return site
+
+
+def _at(day: dt.date, hour: int = 10) -> dt.datetime:
+    return dt.datetime.combine(day, dt.time(hour, 0), tzinfo=dt.UTC)
+
+
+class _Builder:
+    def __init__(self, spec: dict, today: dt.date):
+        self.spec = spec
+        self.today = today
+
+    # -- people, site, library ----------------------------------------------------------
+    def build(self) -> Site:
+        s = self.spec["site"]
+        self.site = Site.objects.create(
+            code=s["code"], name=s["name"], due_soon_days=s["due_soon_days"],
+            escalate_share=s["escalate_share"], escalate_days=s["escalate_days"],
+            second_escalation_days=s["second_escalation_days"],
+        )
+        User = get_user_model()
+        self.people = {}
+        for person in self.spec["people"]:
+            user, _ = User.objects.get_or_create(
+                username=person["username"],
+                defaults={"first_name": person["first_name"], "last_name": person["last_name"],
+                          "email": f"{person['username']}@saltmere.invalid"},
+            )
+            user.set_password(DEMO_PASSWORD)
+            user.save()
+            for role in person["roles"]:
+                Membership.objects.create(user=user, site=self.site, role=role)
+            self.people[person["username"]] = user
+        self.units = {u["code"]: PlantUnit.objects.create(site=self.site, **u)
+                      for u in self.spec["units"]}
+        self.types = {}
+        for t in self.spec["device_types"]:
+            self.types[t["key"]], _ = DeviceType.objects.get_or_create(
+                name=t["name"], defaults=dict(
+                    role=t["role"], lambda_du_per_hour=t["du"], lambda_dd_per_hour=t["dd"],
+                    lambda_s_per_hour=t["s"], device_class=t["class"],
+                    systematic_capability=t["sc"],
+                    source="Illustrative value for the demo plant (not from a data source)"),
+            )
+        for index, entry in enumerate(self.spec["sifs"]):
+            self.build_sif(index, entry)
+        self.build_open_items()
+        return self.site
+
+    # -- one SIF -------------------------------------------------------------------------
+    def build_sif(self, index: int, entry: dict):
+        rng = random.Random(entry["tag"])
+        tpl = self.spec["templates"][entry["template"]]
+        unit = self.units[entry["tag"].split("-")[0]]
+        eq = entry["eq"]
+        sil = entry["sil"]
+        number = entry["tag"].split("-")[-1]
+        scenario, required = self.build_scenario(unit, entry, tpl, rng)
+        years = rng.uniform(8.0, 12.0)
+        in_service = self.today - dt.timedelta(days=int(years * 365))
+        setpoint, sp_unit = tpl["setpoint"]
+        sif = SafetyFunction.objects.create(
+            unit=unit, tag=entry["tag"], name=tpl["name"].format(eq=eq),
+            safe_state=tpl["safe_state"], demand_mode=choices.DemandMode.LOW,
+            target_pfd_avg=required, target_sil=sil,
+            process_safety_time_s=tpl["closing_s"] * 6.0,
+            required_response_time_s=tpl["closing_s"] * 2.0,
+            trip_setpoint=setpoint, setpoint_unit=sp_unit,
+            life_stage=choices.LifeStage.IN_SERVICE, in_service_on=in_service,
+            owner=self.people["lead"],
+        )
+        sif.scenarios.add(scenario)
+        sensor_voting = entry.get("sensor_voting", "1oo1")
+        final_voting = entry.get("final_voting", "1oo1")
+        sensors = self.build_subsystem(sif, choices.SubsystemRole.SENSING, "Sensors",
+                                       sensor_voting, tpl["sensor"], number, in_service,
+                                       beta=0.05 if sensor_voting != "1oo1" else 0.0)
+        logic = self.build_subsystem(sif, choices.SubsystemRole.LOGIC, "Logic solver", "1oo1",
+                                     "plc", number, in_service, beta=0.0)
+        finals = self.build_subsystem(sif, choices.SubsystemRole.FINAL, "Final elements",
+                                      final_voting, tpl["final"], number, in_service,
+                                      beta=0.1 if final_voting != "1oo1" else 0.0,
+                                      partial=0.6 if tpl["pst"] else 0.0)
+        interval = FULL_INTERVAL_MONTHS[sil]
+        full_plan = TestPlan.objects.create(
+            sif=sif, name="Full proof test", kind=choices.TestKind.FULL,
+            interval_months=interval, coverage=0.95 if tpl["final"] == "xv" else 0.9,
+            demand_counts_as_test=tpl["final"] == "mcc", assignee=self.people["tech"],
+        )
+        TestStep.objects.create(
+            plan=full_plan, position=1,
+            instruction="Apply a test signal to each transmitter; record the value at which "
+                        "the trip is initiated.",
+            measured_quantity="Trip value", unit=sp_unit,
+            criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=setpoint,
+            tolerance=round(abs(setpoint) * 0.02, 3),
+        )
+        TestStep.objects.create(
+            plan=full_plan, position=2,
+            instruction="Confirm the logic solver sets its outputs and the trip alarm shows "
+                        "in the control room.",
+        )
+        TestStep.objects.create(
+            plan=full_plan, position=3,
+            instruction="Trip the final elements; time the stroke from trip to safe state.",
+            measured_quantity="Closing time", unit="s",
+            criterion=choices.CriterionKind.AT_MOST, limit=float(tpl["closing_s"]),
+        )
+        components = sensors + logic + finals
+        pattern = DUE_PATTERN[index % len(DUE_PATTERN)]
+        if entry["tag"] == "U10-SIF-101":
+            pattern = "overdue"
+        dates = self.full_test_dates(rng, in_service, interval, pattern)
+        self.record(sif, None, choices.TestKind.VALIDATION, in_service, components, rng,
+                    setpoint, tpl, fail_rate=0.0)
+        hot = entry["tag"] == "U10-SIF-101"  # a SIF whose valve keeps failing
+        for n, day in enumerate(dates):
+            recent = day > self.today - dt.timedelta(days=3 * 365)
+            self.record(sif, full_plan, choices.TestKind.FULL, day, components, rng, setpoint,
+                        tpl, fail_rate=0.04, force_fail=finals[0] if hot and recent else None)
+        if tpl["pst"]:
+            pst_plan = TestPlan.objects.create(
+                sif=sif, name="Partial stroke test", kind=choices.TestKind.PARTIAL,
+                interval_months=6, coverage=0.6, assignee=self.people["tech2"],
+            )
+            pst_plan.components.set(finals)
+            TestStep.objects.create(
+                plan=pst_plan, position=1,
+                instruction="Run the partial stroke from the valve controller; confirm the "
+                            "valve moves and returns.",
+            )
+            self.partial_tests(sif, pst_plan, finals, in_service, dates, rng)
+
+    def build_scenario(self, unit, entry, tpl, rng):
+        sc = tpl["scenario"]
+        eq = entry["eq"]
+        required = REQUIRED_PFD[entry["sil"]] * rng.uniform(0.7, 1.3)
+        layers = math.prod(pfd for _, pfd, _ in sc["layers"])
+        mods = math.prod(p for _, p, _ in sc["modifiers"])
+        other = sum(f for _, f, _ in sc["causes"][1:])
+        needed = sc["tolerable"] / (required * layers * mods)
+        first = max(needed - other, needed * 0.2)
+        scenario = HazardScenario.objects.create(
+            site=self.site, unit=unit, reference=f"HZ-{entry['tag'][-3:]}-{unit.code}",
+            title=sc["title"].format(eq=eq), consequence=sc["consequence"],
+            category=sc["category"], tolerable_frequency_per_year=sc["tolerable"],
+        )
+        for n, (desc, freq, basis) in enumerate(sc["causes"]):
+            InitiatingCause.objects.create(scenario=scenario, description=desc,
+                                           frequency_per_year=round(first if n == 0 else freq, 6),
+                                           basis=basis)
+        for desc, pfd, basis in sc["layers"]:
+            ProtectionLayer.objects.create(scenario=scenario, description=desc, pfd=pfd,
+                                           basis=basis)
+        for kind, p, basis in sc["modifiers"]:
+            ConditionalModifier.objects.create(scenario=scenario, kind=kind, probability=p,
+                                               basis=basis)
+        from calcs.adapter import lopa_for_scenarios
+
+        result = lopa_for_scenarios([scenario])
+        return scenario, float(f"{result.required_pfd_avg:.3g}")
+
+    def build_subsystem(self, sif, role, name, voting, type_key, number, in_service, *,
+                        beta, partial=0.0):
+        n = int(voting.split("oo")[1].rstrip("D"))
+        sub = Subsystem.objects.create(sif=sif, role=role, name=name, voting=voting,
+                                       beta=beta, beta_d=beta / 2, mttr_hours=8.0,
+                                       mrt_hours=8.0,
+                                       position={"sensing": 1, "logic": 2, "final": 3}[role])
+        comps = []
+        for i in range(n):
+            suffix = "ABC"[i] if n > 1 else ""
+            tag = f"{TAG_PREFIX[type_key]}-{number}{suffix}"
+            if type_key == "plc":
+                tag = f"SLS-{sif.unit.code}-{number}"
+            comps.append(Component.objects.create(
+                subsystem=sub, tag=tag, device_type=self.types[type_key],
+                in_service_on=in_service,
+                proof_test_coverage=0.95 if role != choices.SubsystemRole.FINAL else 0.9,
+                partial_test_coverage=partial,
+                data_basis=choices.DataBasis.GENERIC if type_key != "plc"
+                else choices.DataBasis.CERTIFICATE,
+            ))
+        return comps
+
+    def full_test_dates(self, rng, in_service, interval, pattern) -> list[dt.date]:
+        due_offset = {  # days from today to the next due date
+            "ok": rng.randint(60, 250), "soon": rng.randint(5, 25), "overdue": -rng.randint(5, 20),
+            "escalated": -rng.randint(40, 70), "escalated2": -rng.randint(100, 140),
+        }[pattern]
+        next_due = self.today + dt.timedelta(days=due_offset)
+        last = add_months(next_due, -interval)
+        dates = [last]
+        while True:
+            jitter = rng.randint(-20, 15)
+            if rng.random() < 0.12:
+                jitter = rng.randint(30, 110)  # a late test
+            previous = add_months(dates[-1], -interval) - dt.timedelta(days=jitter)
+            if previous <= in_service + dt.timedelta(days=60):
+                break
+            dates.append(previous)
+        return sorted(dates)
+
+    def record(self, sif, plan, kind, day, components, rng, setpoint, tpl, *, fail_rate,
+               force_fail=None):
+        tech = self.people["tech" if rng.random() < 0.6 else "tech2"]
+        results = []
+        steps = {s.position: s for s in plan.steps.all()} if plan else {}
+        for comp in components:
+            fails = comp == force_fail or rng.random() < fail_rate
+            role = comp.subsystem.role
+            measurements = []
+            if role == choices.SubsystemRole.SENSING:
+                tol = abs(setpoint) * 0.02
+                found = setpoint + (rng.uniform(2.0, 4.0) * tol if fails
+                                    else rng.uniform(-0.7, 0.7) * tol)
+                left = setpoint + rng.uniform(-0.3, 0.3) * tol
+                measurements = [
+                    services.MeasurementInput("Trip value", round(found, 3), "found",
+                                              tpl["setpoint"][1], steps.get(1)),
+                    services.MeasurementInput("Trip value", round(left, 3), "left",
+                                              tpl["setpoint"][1], steps.get(1)),
+                ]
+                work = "Transmitter recalibrated and trip re-checked." if fails else ""
+                desc = "Trip value outside tolerance as found (drift)." if fails else ""
+            elif role == choices.SubsystemRole.FINAL:
+                limit = float(tpl["closing_s"])
+                found = limit * (rng.uniform(1.3, 3.0) if fails else rng.uniform(0.5, 0.9))
+                measurements = [services.MeasurementInput("Closing time", round(found, 1),
+                                                          "found", "s", steps.get(3))]
+                if fails:
+                    measurements.append(services.MeasurementInput(
+                        "Closing time", round(limit * 0.7, 1), "left", "s", steps.get(3)))
+                work = "Solenoid valve replaced; actuator re-stroked." if fails else ""
+                desc = "Valve slow to close / stuck as found." if fails else ""
+            else:
+                fails = False
+                work, desc = "", ""
+            results.append(services.ResultInput(
+                component=comp, as_found=choices.Verdict.FAIL if fails else choices.Verdict.PASS,
+                as_left=choices.Verdict.PASS, work_done=work,
+                failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED if fails else "",
+                failure_description=desc, measurements=measurements,
+            ))
+        when = _at(day, rng.randint(8, 15))
+        rec = services.save_draft(user=tech, sif=sif, kind=kind, performed_at=when,
+                                  results=results, plan=plan)
+        services.sign_record(rec, tech, None, check_password=False, signed_at=when)
+        services.verify_record(rec, self.people["verifier"], None, check_password=False,
+                               verified_at=when + dt.timedelta(days=rng.randint(0, 6)))
+
+    def partial_tests(self, sif, plan, finals, in_service, full_dates, rng):
+        last_full = full_dates[-1] if full_dates else in_service
+        day = in_service + dt.timedelta(days=182)
+        while day < self.today - dt.timedelta(days=20):
+            if all(abs((day - f).days) > 45 for f in full_dates) and rng.random() < 0.9:
+                fails = rng.random() < 0.03
+                results = [services.ResultInput(
+                    component=c,
+                    as_found=choices.Verdict.FAIL if fails and i == 0 else choices.Verdict.PASS,
+                    as_left=choices.Verdict.PASS,
+                    failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED
+                    if fails and i == 0 else "",
+                    failure_description="Valve did not move on partial stroke."
+                    if fails and i == 0 else "",
+                    work_done="Actuator freed and re-stroked." if fails and i == 0 else "",
+                ) for i, c in enumerate(finals)]
+                tech = self.people["tech2"]
+                when = _at(day, 9)
+                rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.PARTIAL,
+                                          performed_at=when, results=results, plan=plan)
+                services.sign_record(rec, tech, None, check_password=False, signed_at=when)
+                services.verify_record(rec, self.people["verifier"], None,
+                                       check_password=False, verified_at=when)
+            day = add_months(day, 6) + dt.timedelta(days=rng.randint(-10, 20))
+        del last_full
+
+    # -- demands, bypasses, deferrals ------------------------------------------------------
+    def build_open_items(self):
+        lead, tech = self.people["lead"], self.people["tech"]
+        sifs = {s.tag: s for s in SafetyFunction.objects.filter(unit__site=self.site)}
+        rng = random.Random("demo-open-items")
+        # Real demands: mostly successful; one where the valve failed; a run of demands on a
+        # SIF whose LOPA assumed them rare; a few spurious trips.
+        demand_plan = [
+            ("U30-SIF-303", 400, True, False), ("U30-SIF-303", 700, True, False),
+            ("U30-SIF-303", 1000, True, False), ("U30-SIF-303", 150, True, False),
+            ("U10-SIF-106", 300, True, False), ("U20-SIF-204", 900, True, False),
+            ("U40-SIF-402", 1500, False, False), ("U10-SIF-103", 60, True, True),
+            ("U50-SIF-503", 500, True, True), ("U20-SIF-205", 1200, True, True),
+        ]
+        for tag, days_ago, ok, spurious in demand_plan:
+            sif = sifs[tag]
+            comps = list(Component.objects.filter(subsystem__sif=sif))
+            failed = [c for c in comps if c.subsystem.role == choices.SubsystemRole.FINAL][:1]
+            services.record_demand(
+                user=tech, sif=sif, occurred_at=_at(self.today - dt.timedelta(days=days_ago), 3),
+                successful=ok, spurious=spurious,
+                description=("Spurious trip: transmitter signal spike." if spurious else
+                             "Process demand: trip initiated on high reading." if ok else
+                             "Process demand: final element failed to reach safe state; "
+                             "operator closed the manual isolation."),
+                components_exercised=comps if ok else [c for c in comps if c not in failed],
+                failed_components=[] if ok else failed,
+            )
+        # Bypasses: closed ones in the past, one open within time, one open too long.
+        for tag in rng.sample(sorted(sifs), 12):
+            start = _at(self.today - dt.timedelta(days=rng.randint(30, 2500)), 7)
+            hours = rng.choice([4, 8, 12, 24, 36])
+            b = services.open_bypass(
+                user=lead, sif=sifs[tag], started_at=start, authorised_hours=hours,
+                reason="Transmitter maintenance", compensating_measures=(
+                    "Operator stationed at local gauge with radio" if rng.random() < 0.5 else ""),
+                measures_effective=False)
+            services.close_bypass(b, lead, ended_at=start + dt.timedelta(
+                hours=hours * rng.uniform(0.3, 1.4)))
+        now = dt.datetime.combine(self.today, dt.time(12, 0), tzinfo=dt.UTC)
+        services.open_bypass(user=lead, sif=sifs["U30-SIF-302"],
+                             started_at=now - dt.timedelta(hours=3), authorised_hours=12,
+                             reason="Level transmitter LT-302B replacement",
+                             compensating_measures="Two remaining transmitters in 1oo2; "
+                                                   "operator watches local gauge")
+        services.open_bypass(user=lead, sif=sifs["U40-SIF-404"],
+                             started_at=now - dt.timedelta(hours=80), authorised_hours=24,
+                             reason="Tank gauging upgrade",
+                             compensating_measures="Manual dip every 2 h during filling")
+        # A pending deferral request on a plan coming due, and an old approved one.
+        plan = TestPlan.objects.filter(sif=sifs["U10-SIF-105"], kind="full").first()
+        from .scheduling import due_date
+
+        due = due_date(plan, self.today)
+        services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=45),
+                                  reason="Unit turnaround moved by six weeks; the test needs "
+                                         "the unit shut down.", due_on=due)

@@ -1,0 +1,55 @@
+"""Follow-up work after a write: refresh the due-date caches and recompute the SIF.
+
+Both run only after the surrounding transaction commits, so a rolled-back write leaves
+no trace and a task never reads uncommitted rows. ``suspended()`` lets bulk loaders
+(import, demo) switch this off and refresh once at the end.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import contextvars
+
+from django.db import transaction
+from django.utils import timezone
+
+_suspended = contextvars.ContextVar("followup_suspended", default=False)
+
+
+@contextlib.contextmanager
+def suspended():
+    token = _suspended.set(True)
+    try:
+        yield
+    finally:
+        _suspended.reset(token)
+
+
+def after_test_change(sif_id: int) -> None:
+    """A test, demand, bypass or design change touched this SIF."""
+    if _suspended.get():
+        return
+    transaction.on_commit(lambda: _refresh_sif(sif_id))
+
+
+def after_plan_change(plan_id: int) -> None:
+    if _suspended.get():
+        return
+    from .models import TestPlan
+
+    def run():
+        sif_id = TestPlan.objects.filter(pk=plan_id).values_list("sif_id", flat=True).first()
+        if sif_id:
+            _refresh_sif(sif_id)
+
+    transaction.on_commit(run)
+
+
+def _refresh_sif(sif_id: int) -> None:
+    from .models import TestPlan
+    from .scheduling import refresh_plans
+
+    refresh_plans(TestPlan.objects.filter(sif_id=sif_id), timezone.localdate())
+    from calcs.tasks import recompute_sif
+
+    recompute_sif.delay(sif_id, "record changed")

@@ -1,0 +1,1 @@
+"""Signal handlers of the register (follow-up work after writes is enqueued by services)."""
