@@ -301,7 +301,13 @@ def _aware(day_or_dt) -> dt.datetime:
     return dt.datetime.combine(day_or_dt, dt.time(0, 0), tzinfo=dt.UTC)
 
 
-def history_input(d: SifData, rates: RateTable) -> eng_hist.SifHistory:
+def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datetime | None = None
+                  ) -> eng_hist.SifHistory:
+    """The SIF's recorded life as the history model sees it.
+
+    With ``assume_closed_after`` (for projections), a bypass still open is assumed to end
+    at its authorised end, or at that moment if it is already past it.
+    """
     groups = []
     for sub in d.subsystems:
         channels = []
@@ -318,8 +324,15 @@ def history_input(d: SifData, rates: RateTable) -> eng_hist.SifHistory:
             ))
         groups.append(eng_hist.Group(name=sub.name, voting=sub.voting, beta=sub.beta,
                                      beta_d=sub.beta_d, channels=tuple(channels)))
-    bypasses = tuple((b.started_at, b.ended_at) for b in d.bypasses
-                     if not b.measures_effective and b.component_id is None)
+    bypasses = []
+    for b in d.bypasses:
+        if b.measures_effective or b.component_id is not None:
+            continue
+        end = b.ended_at
+        if end is None and assume_closed_after is not None:
+            end = max(b.started_at + dt.timedelta(hours=b.authorised_hours), assume_closed_after)
+        bypasses.append((b.started_at, end))
+    bypasses = tuple(bypasses)
     return eng_hist.SifHistory(groups=tuple(groups), bypasses=bypasses, name=d.sif.tag)
 
 
@@ -347,50 +360,43 @@ def planned_groups(design: eng_design.SifDesign) -> list[eng_hist.PlannedGroup]:
 @dataclass(frozen=True)
 class TypeStats:
     device_type: DeviceType
-    components: int
-    service_hours: float
-    failures: int
-    stats: eng_field.PooledEstimate
+    stats: eng_field.DeviceTypeStats
 
 
 def device_type_stats(site_id: int | None, as_of: dt.date) -> dict[int, TypeStats]:
     """Dangerous undetected failures found by tests and demands over cumulative service
     time, per device type, plant-wide (one site, or all sites when ``site_id`` is None).
-    Three queries."""
+    Four queries."""
     from register.models import Site
 
     comps = Component.objects.filter(in_service_on__lte=as_of,
                                      subsystem__sif__life_stage=choices.LifeStage.IN_SERVICE)
     if site_id:
         comps = comps.filter(subsystem__sif__unit__site_id=site_id)
-    hours = defaultdict(float)
-    count = defaultdict(int)
-    for type_id, started in comps.values_list("device_type_id", "in_service_on"):
-        hours[type_id] += (as_of - started).days * 24.0
-        count[type_id] += 1
-    failures = defaultdict(int)
+    failures: dict[int, int] = defaultdict(int)
     found = (ComponentResult.objects.filter(
         component__in=comps, failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED,
         record__superseded_by__isnull=True).exclude(record__status=choices.RecordStatus.DRAFT)
-        .values_list("component__device_type_id", flat=True))
-    for type_id in found:
-        failures[type_id] += 1
-    for type_id in Demand.failed_components.through.objects.filter(
-            component__in=comps).values_list("component__device_type_id", flat=True):
-        failures[type_id] += 1
+        .values_list("component_id", flat=True))
+    for comp_id in found:
+        failures[comp_id] += 1
+    for comp_id in Demand.failed_components.through.objects.filter(
+            component__in=comps).values_list("component_id", flat=True):
+        failures[comp_id] += 1
+    per_type: dict[int, list[tuple[float, int]]] = defaultdict(list)
+    for comp_id, type_id, started in comps.values_list("id", "device_type_id", "in_service_on"):
+        per_type[type_id].append(((as_of - started).days * 24.0, failures[comp_id]))
     site = Site.objects.filter(pk=site_id).first() if site_id else None
-    cl = site.confidence_level if site else eng_field.CL_IEC61511_PRIOR_USE
-    strength = site.prior_strength if site else 1.0
+    cl = site.confidence_level if site else eng_field.IEC61511_PRIOR_USE_CL
+    strength = site.prior_strength if site else eng_field.DEFAULT_PRIOR_STRENGTH
     out = {}
-    for dtype in DeviceType.objects.filter(pk__in=hours.keys()):
-        out[dtype.pk] = TypeStats(
-            device_type=dtype, components=count[dtype.pk], service_hours=hours[dtype.pk],
-            failures=failures[dtype.pk],
-            stats=eng_field.pooled_estimate(
-                failures=failures[dtype.pk], hours=hours[dtype.pk],
-                assumed_rate=dtype.lambda_du_per_hour, confidence=cl,
-                prior_strength=strength, alpha=SIGNIFICANCE),
-        )
+    for dtype in DeviceType.objects.filter(pk__in=per_type.keys()):
+        records = per_type[dtype.pk]
+        if sum(h for h, _ in records) <= 0:
+            continue
+        out[dtype.pk] = TypeStats(dtype, eng_field.pool_device_type(
+            records, assumed_rate=dtype.lambda_du_per_hour, confidence=cl,
+            prior_strength=strength, alpha=SIGNIFICANCE))
     return out
 
 
@@ -497,9 +503,10 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         detail["pfd_now"] = last12.pfd_at_end
         flags.extend(last12.flags)
         if due_on:
-            due_at = _aware(max(due_on, as_of.date()))
+            due_at = max(_aware(due_on), end)
             full_t1 = min((s.proof_test_interval_hours for s in design.subsystems))
-            proj = eng_hist.projection(hist, end, due_at, interval_hours=full_t1)
+            proj = eng_hist.projection(history_input(d, rates, assume_closed_after=end), end,
+                                       due_at, interval_hours=full_t1)
             a.projected_pfd_avg = proj.pfd_avg
             detail["projection"] = {"next_test_on": due_on.isoformat(),
                                     "horizon_end": proj.window_end.isoformat()}
@@ -563,7 +570,7 @@ def observed_demand_flag(d: SifData, as_of: dt.datetime) -> str | None:
         return None
     years = max((as_of.date() - start).days / 365.0, 1 / 365)
     real = [x for x in d.demands if not x.spurious]
-    test = eng_field.rate_exceeds(len(real), years, assumed, alpha=SIGNIFICANCE)
+    test = eng_field.demand_rate_test(len(real), years, assumed, alpha=SIGNIFICANCE)
     if test.exceeds:
         return (f"Observed demand rate {len(real) / years:.2g}/y ({len(real)} in {years:.1f} y) "
                 f"exceeds the LOPA assumption {assumed:.2g}/y ({test.reason}).")
@@ -641,10 +648,10 @@ def deferral_projection(plan: TestPlan, proposed_on: dt.date, as_of: dt.datetime
     as_of = as_of or timezone.now()
     d = load(SafetyFunction.objects.filter(pk=plan.sif_id))[0]
     stats = device_type_stats(plan.sif.unit.site_id, as_of.date())
-    hist = history_input(d, rate_table(plan.sif.unit.site, stats))
+    hist = history_input(d, rate_table(plan.sif.unit.site, stats), assume_closed_after=as_of)
     due = status_of(plan, as_of.date()).due_on
-    due_at = _aware(max(due, as_of.date()))
-    proposed_at = _aware(max(proposed_on, as_of.date()))
+    due_at = max(_aware(due), as_of)
+    proposed_at = max(_aware(proposed_on), as_of)
     horizon = proposed_at + dt.timedelta(hours=plan.interval_hours)
     cmp = eng_hist.compare_deferral(hist, as_of, due_at, proposed_at, horizon,
                                     interval_hours=plan.interval_hours)

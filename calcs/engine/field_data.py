@@ -27,8 +27,9 @@ Conventions: rates per hour, cumulative service time T in hours, 1 year = 8760 h
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Any, Iterable
+from typing import Any
 
 from scipy import stats
 
@@ -149,7 +150,7 @@ class GammaRate:
     def lower(self, confidence: float = IEC61511_PRIOR_USE_CL) -> float:
         return self.quantile(1.0 - _level(confidence, "confidence"))
 
-    def updated(self, failures: int, hours: float) -> "GammaRate":
+    def updated(self, failures: int, hours: float) -> GammaRate:
         """Posterior after ``failures`` in ``hours``: Gamma(a + n, b + T)."""
         n = _count(failures, "failures")
         t = float(hours)

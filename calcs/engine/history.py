@@ -56,10 +56,12 @@ when the window end passed in was aware.
 
 from __future__ import annotations
 
+import itertools
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from datetime import date, datetime, timedelta, timezone
-from typing import Any, Iterable, Sequence
+from datetime import UTC, date, datetime, timedelta
+from typing import Any
 
 import numpy as np
 
@@ -97,7 +99,7 @@ def _as_utc_naive(value: Any, field_name: str) -> datetime:
     else:
         raise InputError(field_name, f"must be a date or datetime, got {value!r}")
     if dt.tzinfo is not None:
-        dt = dt.astimezone(timezone.utc).replace(tzinfo=None)
+        dt = dt.astimezone(UTC).replace(tzinfo=None)
     return dt
 
 
@@ -113,7 +115,7 @@ def _to_dt(hours: float, aware: bool = False) -> datetime:
     dt = _EPOCH + timedelta(hours=float(hours))
     # round to the microsecond grid to avoid 23:59:59.999999 artefacts
     dt = dt.replace(microsecond=0) + timedelta(seconds=round(dt.microsecond / 1e6))
-    return dt.replace(tzinfo=timezone.utc) if aware else dt
+    return dt.replace(tzinfo=UTC) if aware else dt
 
 
 def _fmt(hours: float) -> str:
@@ -356,7 +358,6 @@ class _Compiled:
     byp_e: np.ndarray
     events: np.ndarray
     start_h: float  # all channels in service from here
-    test_hours: np.ndarray  # every kept test time (for "after evaluation date" checks)
     flags: list[str] = field(default_factory=list)
 
 
@@ -371,8 +372,7 @@ def _merge(starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray
     for a, b in zip(s[1:], e[1:]):
         if a < me[-1]:
             overlaps += 1
-            if b > me[-1]:
-                me[-1] = b
+            me[-1] = max(me[-1], b)
         elif a == me[-1]:
             me[-1] = max(me[-1], b)
         else:
@@ -396,7 +396,7 @@ def _default_cov(ch: Channel, kind: str) -> float:
 
 
 def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None,
-             extra: dict[int, list[tuple[float, float]]] | None = None) -> _Compiled:
+             extra: dict[int, list[tuple[float, float | None]]] | None = None) -> _Compiled:
     """Turn a SifHistory into arrays of renewal times.
 
     ``cutoff_h``: records after it are not used (counted in a flag).
@@ -406,7 +406,6 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
     flags: list[str] = []
     cgroups: list[_CGroup] = []
     events: list[float] = []
-    all_tests: list[float] = []
     start_h = -math.inf
     after = 0
     for gi, g in enumerate(sif.groups):
@@ -447,7 +446,6 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
                     continue
                 cov = float(_default_cov(ch, t.kind) if t.coverage is None else t.coverage)
                 bounds.add(cov)
-                all_tests.append(th)
                 group_tests.append((th, cov))
                 if t.failed:
                     rest = ch.mrt if t.restore_hours is None else float(t.restore_hours)
@@ -459,6 +457,7 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
                     kept.append((th, cov))
             if extra and gi in extra:
                 for th, cov in extra[gi]:
+                    cov = float(ch.proof_test_coverage if cov is None else cov)
                     bounds.add(cov)
                     kept.append((th, cov))
                     group_tests.append((th, cov))
@@ -469,7 +468,7 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
             kept_c = np.array([k[1] for k in kept], dtype=float)
             ra = np.array(renew_all, dtype=float)
             segs = []
-            for lo, hi in zip(b[:-1], b[1:]):
+            for lo, hi in itertools.pairwise(b):
                 rate = lam * (hi - lo)
                 if rate <= 0.0:
                     continue
@@ -491,7 +490,7 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
             gc = np.array([x[1] for x in group_tests], dtype=float)
             base = np.array([ins_g] + group_renew_all, dtype=float)
             b = sorted(group_bounds)
-            for lo, hi in zip(b[:-1], b[1:]):
+            for lo, hi in itertools.pairwise(b):
                 rate = lam_g * (hi - lo)
                 if rate <= 0.0:
                     continue
@@ -533,7 +532,7 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
     events.extend(ms.tolist())
     events.extend(me.tolist())
     return _Compiled(cgroups, ms, me, np.unique(np.array(events, dtype=float)), start_h,
-                     np.array(all_tests, dtype=float), list(dict.fromkeys(flags)))
+                     list(dict.fromkeys(flags)))
 
 
 # --------------------------------------------------------------------------
@@ -789,11 +788,8 @@ def projection(sif: SifHistory, as_of: Any, next_test_at: Any, horizon_end: Any 
         while k < hz_h:
             planned_t.append(k)
             k += interval_hours
-    extra = {}
-    for gi, g in enumerate(sif.groups):
-        cov = (g.channels[0].proof_test_coverage if coverage is None else float(coverage))
-        extra[gi] = [(t, cov) for t in planned_t]
-    # per-channel coverage when channels differ: use each group's first channel
+    cov = None if coverage is None else float(coverage)  # None: each channel's PTC
+    extra = {gi: [(t, cov) for t in planned_t] for gi in range(len(sif.groups))}
     c = _compile(sif, as_h, hz_h, extra)
     flags = list(c.flags)
     if nt_h >= hz_h:
@@ -957,8 +953,16 @@ def evaluate_case_history(data: dict) -> dict:
     given "window" {"start","end"}; the end defaults to "as_of", else to the
     latest date in the case (tests, bypasses, in service); the start defaults
     to 12 calendar months before the end (clipped to in service, flagged).
-    Flags also list full tests later than the subsystem's proof-test interval
-    and a full test overdue at the window end.
+    Flags also list full tests that came more than one day later than the
+    subsystem's proof-test interval allows, and a full test overdue at the
+    window end. Besides the design fields, a subsystem may give
+    "overhaul_date", and a test "restore_hours" (default: mrt_hours) and
+    "coverage" (default by kind: proof_test_coverage for "full",
+    partial_test_coverage for "partial", 0 for "demand"). A bypass without
+    "end" runs to the window end (flagged). Demand mode other than "low" is
+    computed but flagged. mission_time_hours is not applied as an overhaul
+    (only a recorded "overhaul_date" renews the untested share); it is flagged
+    when exceeded with proof_test_coverage < 1.
     """
     if not isinstance(data, dict):
         raise InputError("case", "must be a JSON object")

@@ -12,7 +12,7 @@ from __future__ import annotations
 import bisect
 import itertools
 import math
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta, timezone
 
 import numpy as np
 import pytest
@@ -71,7 +71,7 @@ def sawtooth_average(lam: float, resets: list[float], a: float, b: float,
     pts = sorted({x for x in resets if a < x < b} | {x for iv in down for x in iv if a < x < b})
     total = 0.0
     edges = [a] + pts + [b]
-    for lo, hi in zip(edges[:-1], edges[1:]):
+    for lo, hi in itertools.pairwise(edges):
         total += quad(q, lo, hi, epsabs=0, epsrel=1e-12, limit=200)[0]
     return total / (b - a)
 
@@ -171,7 +171,7 @@ def test_imperfect_coverage_against_quadrature_and_published_equation():
         return 1 - math.exp(-ptc * lam * (t % YEAR) - (1 - ptc) * lam * t)
 
     edges = [k * YEAR for k in range(n + 1)]
-    ref = sum(quad(f, lo, hi - 1e-9, epsrel=1e-12)[0] for lo, hi in zip(edges, edges[1:]))
+    ref = sum(quad(f, lo, hi - 1e-9, epsrel=1e-12)[0] for lo, hi in itertools.pairwise(edges))
     assert res.pfd_avg == pytest.approx(ref / (n * YEAR), rel=1e-7)
     # published PTC equation PTC*lDU*TI/2 + (1-PTC)*lDU*MT/2, check-values S2.6 [V]
     # (Control Global 2018, eq. 2-3) = 2.1024E-2. It is linear in time and so
@@ -281,7 +281,7 @@ def test_koon_matches_brute_force_enumeration_for_different_channels():
 
     pts = sorted({x for r in resets for x in r if 0 < x < 2 * YEAR})
     edges = [0.0] + pts + [2 * YEAR]
-    ref = sum(quad(q_group, lo, hi, epsrel=1e-11)[0] for lo, hi in zip(edges, edges[1:]))
+    ref = sum(quad(q_group, lo, hi, epsrel=1e-11)[0] for lo, hi in itertools.pairwise(edges))
     assert res.pfd_avg == pytest.approx(ref / (2 * YEAR), rel=1e-6)
 
 
@@ -395,7 +395,7 @@ def test_timezone_aware_and_naive_give_same_result():
                     tests=(TestEvent(at=datetime(2021, 1, 1, 2, tzinfo=tz)),))
     a = achieved_pfd(one_group(channels=(naive,)), None, datetime(2021, 6, 1))
     b = achieved_pfd(one_group(channels=(aware,)), None,
-                     datetime(2021, 6, 1, tzinfo=timezone.utc))
+                     datetime(2021, 6, 1, tzinfo=UTC))
     assert a.pfd_avg == pytest.approx(b.pfd_avg, rel=1e-12)
     assert b.window_end.tzinfo is not None
 
