@@ -65,8 +65,8 @@ All rates are per hour, all times in hours (1 year = 8760 h).
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Iterable, Sequence
 
 from . import sil as _sil
 from .errors import InputError
@@ -413,12 +413,11 @@ class Subsystem:
             put(self, "hft_type", kind)
         sc = self.systematic_capability
         if sc is not None:
-            if isinstance(sc, bool) or not isinstance(sc, int) or not 1 <= sc <= 4:
-                if isinstance(sc, float) and sc.is_integer() and 1 <= sc <= 4:
-                    put(self, "systematic_capability", int(sc))
-                else:
-                    raise InputError("systematic_capability",
-                                     f"must be a whole number 1 to 4, got {sc!r}")
+            whole = isinstance(sc, int) or (isinstance(sc, float) and sc.is_integer())
+            if isinstance(sc, bool) or not whole or not 1 <= sc <= 4:
+                raise InputError("systematic_capability",
+                                 f"must be a whole number 1 to 4, got {sc!r}")
+            put(self, "systematic_capability", int(sc))
 
     @property
     def hft(self) -> int:

@@ -28,8 +28,8 @@ smallest required PFDavg governs.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Sequence
 
 from .errors import InputError
 from .sil import sil_from_pfd

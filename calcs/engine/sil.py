@@ -23,6 +23,7 @@ accepted as a synonym of ``"high"``).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from .errors import InputError
@@ -66,7 +67,7 @@ def sil_band(sil: int, mode: str = LOW) -> tuple[float, float]:
 
 
 def _band_lookup(value: float, bands: dict[int, tuple[float, float]], field: str) -> int:
-    if not isinstance(value, (int, float)) or value != value or value < 0:
+    if not isinstance(value, (int, float)) or math.isnan(value) or value < 0:
         raise InputError(field, f"must be a number of at least 0, got {value!r}")
     # A value within _EDGE_RTOL of a band limit counts as equal to the limit,
     # so that rounding in products such as 1e-5 / (0.1 * 0.1) does not move a
@@ -96,7 +97,7 @@ def sil_for(value: float, mode: str = LOW) -> int:
 
 def rrf(pfd_avg: float) -> float:
     """Risk reduction factor 1 / PFDavg (infinite for a PFDavg of 0)."""
-    if not isinstance(pfd_avg, (int, float)) or pfd_avg != pfd_avg or pfd_avg < 0:
+    if not isinstance(pfd_avg, (int, float)) or math.isnan(pfd_avg) or pfd_avg < 0:
         raise InputError("pfd_avg", f"must be a number of at least 0, got {pfd_avg!r}")
     return float("inf") if pfd_avg == 0 else 1.0 / pfd_avg
 
@@ -169,7 +170,7 @@ def sff(lambda_s: float, lambda_dd: float, lambda_du: float) -> float:
     IEC 61508-2:2010 definition (no-effect failures are not counted as safe).
     """
     for name, value in (("lambda_s", lambda_s), ("lambda_dd", lambda_dd), ("lambda_du", lambda_du)):
-        if not isinstance(value, (int, float)) or value != value or value < 0:
+        if not isinstance(value, (int, float)) or math.isnan(value) or value < 0:
             raise InputError(name, f"must be a rate of at least 0, got {value!r}")
     total = lambda_s + lambda_dd + lambda_du
     if total == 0:
@@ -180,7 +181,7 @@ def sff(lambda_s: float, lambda_dd: float, lambda_du: float) -> float:
 def dc(lambda_dd: float, lambda_du: float) -> float:
     """Diagnostic coverage lambda_DD / (lambda_DD + lambda_DU)."""
     for name, value in (("lambda_dd", lambda_dd), ("lambda_du", lambda_du)):
-        if not isinstance(value, (int, float)) or value != value or value < 0:
+        if not isinstance(value, (int, float)) or math.isnan(value) or value < 0:
             raise InputError(name, f"must be a rate of at least 0, got {value!r}")
     total = lambda_dd + lambda_du
     if total == 0:

@@ -1,0 +1,117 @@
+"""Charts of one SIF, drawn with matplotlib (Agg) as SVG.
+
+Both charts must read in black and white and on paper: the SIL bands differ by hatch
+pattern and carry their name as text, the target is a dashed line with a label, and
+series differ by line style and marker, not only by colour.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import io
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.dates as mdates  # noqa: E402
+import matplotlib.pyplot as plt  # noqa: E402
+
+from calcs.engine.sil import sil_band  # noqa: E402
+
+#: Hatch per SIL band: distinct patterns so bands differ without colour.
+BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
+BAND_GREY = {1: "#f2f2f2", 2: "#e4e4e4", 3: "#d6d6d6", 4: "#c8c8c8"}
+WIDTH_IN, HEIGHT_IN = 9.0, 3.6
+
+
+def _figure(title: str):
+    fig, ax = plt.subplots(figsize=(WIDTH_IN, HEIGHT_IN), dpi=100)
+    ax.set_title(title, fontsize=11, loc="left")
+    ax.grid(True, which="major", color="#999999", linewidth=0.4, linestyle=":")
+    return fig, ax
+
+
+def _shade_bands(ax, low: float, high: float, mode: str = "low"):
+    """Shade the SIL bands that fall inside the visible range, labelled at the right."""
+    for sil in (1, 2, 3, 4):
+        lo, hi = sil_band(sil, mode)
+        if hi <= low or lo >= high:
+            continue
+        ax.axhspan(max(lo, low), min(hi, high), facecolor=BAND_GREY[sil],
+                   hatch=BAND_HATCH[sil], edgecolor="#9a9a9a", linewidth=0, zorder=0)
+        mid = (max(lo, low) * min(hi, high)) ** 0.5
+        ax.text(1.01, mid, f"SIL {sil}", transform=ax.get_yaxis_transform(),
+                va="center", ha="left", fontsize=9)
+
+
+def _target(ax, target: float | None):
+    if target:
+        ax.axhline(target, color="black", linestyle="--", linewidth=1.4, zorder=3)
+        ax.annotate(f"target {target:.1e}", xy=(0.005, target), xycoords=("axes fraction",
+                    "data"), xytext=(0, 3), textcoords="offset points", fontsize=9,
+                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 1})
+
+
+def _limits(values, target):
+    data = [v for v in values if v and v > 0]
+    if target:
+        data.append(target)
+    if not data:
+        return 1e-5, 1e-1
+    low = min(data) / 3
+    high = max(data) * 3
+    return max(low, 1e-7), min(max(high, low * 10), 1.0)
+
+
+def _svg(fig) -> bytes:
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg")
+    plt.close(fig)
+    return buf.getvalue()
+
+
+def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str) -> bytes:
+    """PFD(t): sawtooth from the recorded tests, target line, SIL bands hatched."""
+    fig, ax = _figure(f"{tag}: probability of failure on demand over time")
+    values = list(values)
+    low, high = _limits(values, target)
+    _shade_bands(ax, low, high)
+    if times:
+        ax.plot(times, values, color="black", linewidth=1.3, label="PFD(t)", zorder=4)
+    _target(ax, target)
+    ax.set_yscale("log")
+    ax.set_ylim(low, high)
+    ax.set_ylabel("PFD(t)")
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m"))
+    ax.legend(loc="lower right", fontsize=8, framealpha=1)
+    return _svg(fig)
+
+
+def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],
+                target: float | None, tag: str) -> bytes:
+    """Achieved (last 12 months) and design PFDavg of the stored assessments over time."""
+    fig, ax = _figure(f"{tag}: achieved PFDavg at each recalculation")
+    achieved = [(t, a) for t, a, _ in points if a]
+    design = [(t, d) for t, _, d in points if d]
+    low, high = _limits([a for _, a in achieved] + [d for _, d in design], target)
+    _shade_bands(ax, low, high)
+    if achieved:
+        ax.plot([t for t, _ in achieved], [a for _, a in achieved], color="black",
+                linestyle="-", marker="o", markersize=4, label="achieved, last 12 months",
+                zorder=4)
+    if design:
+        ax.plot([t for t, _ in design], [d for _, d in design], color="#333333",
+                linestyle=":", marker="s", markersize=3, label="design", zorder=4)
+    if not points:
+        ax.text(0.5, 0.5, "No calculation stored yet", transform=ax.transAxes,
+                ha="center", va="center")
+    _target(ax, target)
+    ax.set_yscale("log")
+    ax.set_ylim(low, high)
+    ax.set_ylabel("PFDavg")
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))
+    fig.autofmt_xdate()
+    if points:
+        ax.legend(loc="lower right", fontsize=8, framealpha=1)
+    return _svg(fig)
