@@ -4,5 +4,7 @@ from django.urls import include, path
 urlpatterns = [
     path("admin/", admin.site.urls),
     path("accounts/", include("django.contrib.auth.urls")),
+    path("field/", include("register.urls_field")),
+    path("deferrals/", include("register.urls_deferral")),
     path("", include("register.urls")),
 ]

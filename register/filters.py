@@ -107,7 +107,7 @@ class SifFilter(df.FilterSet):
             base = annotate_register(self.queryset.all())
             self.queryset = base
             qs = super().qs
-            if not self.form.cleaned_data.get("sort"):
+            if not getattr(self.form, "cleaned_data", {}).get("sort"):
                 qs = qs.order_by("unit__site__name", "unit__code", "tag")
             self._qs = qs
         return self._qs

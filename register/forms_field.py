@@ -115,6 +115,7 @@ class ComponentForm(forms.Form):
         """For the template: one row per step with its two bound fields."""
         return [
             {"step": step, "criterion": criterion_text(step, self.sif),
+             "max_time": self.sif.required_response_time_s if is_timing_step(step) else None,
              "found": self[self.value_name(step, "found")],
              "left": self[self.value_name(step, "left")]}
             for step in self.steps

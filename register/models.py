@@ -846,6 +846,12 @@ class ComponentResult(models.Model):
             models.UniqueConstraint(fields=["record", "component"],
                                     name="register_result_once_per_component"),
         ]
+        indexes = [
+            # Field failure statistics count dangerous undetected failures plant-wide
+            # (calcs.adapter.device_type_stats); they are few, so a partial index suffices.
+            models.Index(fields=["component"], condition=Q(failure_mode="du"),
+                         name="register_result_du_idx"),
+        ]
 
     def __str__(self):
         return f"{self.component} found {self.as_found}, left {self.as_left}"

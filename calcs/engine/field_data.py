@@ -276,13 +276,16 @@ def pool_device_type(records: Iterable[tuple[float, int]], *,
                      confidence: float = IEC61511_PRIOR_USE_CL,
                      generic_rate: float | None = None,
                      prior_strength: float = DEFAULT_PRIOR_STRENGTH,
-                     alpha: float = DEFAULT_ALPHA) -> DeviceTypeStats:
+                     alpha: float = DEFAULT_ALPHA,
+                     component_count: int | None = None) -> DeviceTypeStats:
     """Pool (service hours, DU failures) of each component of a device type.
 
     Returns totals, the classical point estimate and one-sided bounds at
     ``confidence``, the Bayesian posterior (prior from ``generic_rate``, or from
     ``assumed_rate`` when no generic rate is given; none if neither) and the
     Poisson test of the observed failures against ``assumed_rate``.
+    ``component_count`` states how many components the records stand for when
+    they are already summed (for example one total per device type).
     """
     hours = 0.0
     failures = 0
@@ -302,6 +305,8 @@ def pool_device_type(records: Iterable[tuple[float, int]], *,
         raise InputError("records", "at least one component is needed")
     if hours <= 0:
         raise InputError("records", "the total service time must be greater than 0")
+    if component_count is not None:
+        count = _count(component_count, "component_count")
     cl = _level(confidence, "confidence")
     point = failures / hours
     lo = lower_bound(failures, hours, cl)

@@ -205,9 +205,10 @@ class ArchitectureLimit:
     ``by_61511`` is the IEC 61511-1:2016 Table 6 answer (from the HFT alone).
     ``by_route_1h`` is the IEC 61508-2 Route 1H answer, or None when the SFF
     or the element type is not known. ``sil`` is the value used, chosen by
-    ``route``: "61511", "1H", or "auto" (Route 1H when SFF and type are both
-    known, otherwise Table 6). IEC 61511-1:2016 11.4 allows Route 1H as an
-    alternative to its Table 6, so "auto" uses the route the data supports.
+    ``route``: "61511", "1H", or "auto". IEC 61511-1:2016 11.4 allows the
+    IEC 61508-2 routes as an alternative to its Table 6, so a subsystem that
+    satisfies either one is acceptable: "auto" takes the higher of the two
+    (Table 6 alone when SFF or type is unknown) and names the route used.
     """
 
     hft: int
@@ -235,7 +236,7 @@ def architectural_limit(
         if by_1h is None:
             raise InputError("sff", "Route 1H needs both the SFF and the element type (A or B)")
         used, sil = ROUTE_1H, by_1h
-    elif route == ROUTE_AUTO and by_1h is not None:
+    elif route == ROUTE_AUTO and by_1h is not None and by_1h > by_61511:
         used, sil = ROUTE_1H, by_1h
     else:
         used, sil = ROUTE_61511, by_61511

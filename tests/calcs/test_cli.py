@@ -152,11 +152,12 @@ def test_wrong_arguments():
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
 
 
-def test_history_keys_without_history_module_is_a_clear_error(tmp_path):
-    # the history part is evaluated by calcs.engine.history; this only runs if it is not there
-    if (ROOT / "calcs" / "engine" / "history.py").exists():
-        pytest.skip("history module present; its own tests cover this path")
-    proc = run([write(tmp_path, {**GOOD, "in_service": "2020-01-01"})])
-    assert proc.returncode == 2
-    assert proc.stderr.startswith("error: in_service: ")
-    assert len(proc.stderr.strip().splitlines()) == 1
+def test_history_mode_adds_the_achieved_pfd(tmp_path):
+    case = {**GOOD, "in_service": "2020-01-01",
+            "window": {"start": "2021-01-01", "end": "2022-01-01"}}
+    case["subsystems"] = [{**case["subsystems"][0], "tests": [{"date": "2021-01-01"}]}]
+    proc = run([write(tmp_path, case)])
+    assert proc.returncode == 0, proc.stderr
+    out = json.loads(proc.stdout)
+    assert 0 < out["achieved_pfd_avg"] < 1
+    assert "achieved_pfd_avg" in out["subsystems"][0]

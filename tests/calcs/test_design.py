@@ -402,10 +402,12 @@ def test_clipped_and_caution():
 
 def test_architecture_and_systematic_capability_limit_the_claim():
     subs = (
-        Subsystem("transmitters", "1oo2", 1e-8, Y, sff=0.65, hft_type="B"),  # Route 1H: SIL 2
-        Subsystem("valves", "1oo2", 1e-8, Y, systematic_capability=3),
+        # Route 1H gives SIL 2 for type B, SFF 65 %, HFT 1 (IEC 61508-2 Table 3, S3.8);
+        # forced here, since IEC 61511 Table 6 alone would allow SIL 3 for HFT 1.
+        Subsystem("transmitters", "1oo2", 1e-8, Y, sff=0.65, hft_type="B"),
+        Subsystem("valves", "1oo2", 1e-8, Y, sff=0.95, hft_type="A", systematic_capability=3),
     )
-    res = evaluate_sif(SifDesign(subs))
+    res = evaluate_sif(SifDesign(subs, route="1H"))
     assert res.sil == 4
     assert res.architectural_sil == 2
     assert res.claimable_sil == 2

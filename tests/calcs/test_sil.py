@@ -167,8 +167,12 @@ def test_architectural_limit_routes():
     # IEC 61511-1:2016 Table 6 vs IEC 61508-2 Table 3 (check-values S3.7, S3.8b)
     only_hft = architectural_limit(0, "low")
     assert (only_hft.route, only_hft.sil, only_hft.by_route_1h) == ("61511", 2, None)
+    # Either route satisfies the standard (IEC 61511-1:2016 11.4 admits the IEC 61508-2
+    # routes as an alternative to Table 6; clause wording from memory): the higher counts.
     both = architectural_limit(0, "low", 0.65, "B")
-    assert (both.route, both.sil, both.by_61511, both.by_route_1h) == ("1H", 1, 2, 1)
+    assert (both.route, both.sil, both.by_61511, both.by_route_1h) == ("61511", 2, 2, 1)
+    better_1h = architectural_limit(0, "low", 0.95, "A")  # type A, SFF 90-99 %, HFT 0: SIL 3
+    assert (better_1h.route, better_1h.sil) == ("1H", 3)
     forced = architectural_limit(0, "low", 0.65, "B", route="61511")
     assert forced.sil == 2
     with pytest.raises(InputError):

@@ -1,0 +1,369 @@
+"""The field workflow through the web: list, entry, signing, countersigning, corrections."""
+
+import datetime as dt
+
+import pytest
+from django.core.files.uploadedfile import SimpleUploadedFile
+from django.urls import reverse
+from django.utils import timezone
+
+from calcs.models import Assessment
+from register import choices
+from register.models import (
+    Attachment,
+    Component,
+    MeasuredValue,
+    SafetyFunction,
+    TestPlan,
+    TestRecord,
+    TestStep,
+)
+from tests import factories as f
+
+pytestmark = pytest.mark.django_db
+
+
+@pytest.fixture
+def plant():
+    site = f.site()
+    unit = f.unit(site)
+    sif = f.sif(unit, tag="SIF-101")
+    SafetyFunction.objects.filter(pk=sif.pk).update(required_response_time_s=8.0)
+    sif.refresh_from_db()
+    comps = list(Component.objects.filter(subsystem__sif=sif).order_by("subsystem__position"))
+    Component.objects.filter(pk=comps[0].pk).update(tag="LT-101A")
+    Component.objects.filter(pk=comps[1].pk).update(tag="XV-101")
+    plan = TestPlan.objects.get(sif=sif)
+    trip = TestStep.objects.create(
+        plan=plan, position=1, instruction="Raise the level signal until trip.",
+        measured_quantity="Trip value", unit="%",
+        criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=80.0, tolerance=1.0)
+    closing = TestStep.objects.create(
+        plan=plan, position=2, instruction="Time the valve stroke.",
+        measured_quantity="Closing time", unit="s",
+        criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    other_unit = f.unit(f.site(), code="U9")
+    other_sif = f.sif(other_unit, tag="SIF-900")
+    people = {
+        "tech": f.user("tech", site=site, role=choices.Role.TECHNICIAN),
+        "verifier": f.user("verifier", site=site, role=choices.Role.VERIFIER),
+        "auditor": f.user("auditor", site=site, role=choices.Role.AUDITOR),
+        "outsider": f.user("outsider", site=other_sif.unit.site, role=choices.Role.TECHNICIAN),
+    }
+    return {"sif": sif, "plan": plan, "lt": Component.objects.get(tag="LT-101A"),
+            "xv": Component.objects.get(tag="XV-101"), "trip": trip, "closing": closing,
+            "other_plan": TestPlan.objects.get(sif=other_sif), **people}
+
+
+def login(client, user):
+    client.force_login(user)
+    return client
+
+
+def entry_data(p, *, token="a" * 32, when=None, lt_found="80.4", lt_left="80.1",
+               lt_found_verdict="pass", xv_found="6.2", action="save", version=None, **extra):
+    when = when or (timezone.localtime() - dt.timedelta(hours=2))
+    lt, xv, trip, closing = p["lt"], p["xv"], p["trip"], p["closing"]
+    data = {
+        "form_token": token, "kind": "full", "performed_at": when.strftime("%Y-%m-%dT%H:%M"),
+        "remarks": "", "action": action,
+        f"c{lt.pk}-as_found": lt_found_verdict, f"c{lt.pk}-as_left": "pass",
+        f"c{lt.pk}-v{trip.pk}_found": lt_found, f"c{lt.pk}-v{trip.pk}_left": lt_left,
+        f"c{xv.pk}-as_found": "pass", f"c{xv.pk}-as_left": "pass",
+        f"c{xv.pk}-v{closing.pk}_found": xv_found,
+    }
+    # The logic solver is exercised too.
+    for comp in Component.objects.filter(subsystem__sif=p["sif"]).exclude(pk__in=[lt.pk, xv.pk]):
+        data[f"c{comp.pk}-as_found"] = "pass"
+        data[f"c{comp.pk}-as_left"] = "pass"
+    if version is not None:
+        data["expected_version"] = str(version)
+    data.update(extra)
+    return data
+
+
+def start_url(p):
+    return reverse("field:start", args=[p["plan"].pk])
+
+
+# --- the list ----------------------------------------------------------------------------
+
+
+def test_worklist_finds_plan_by_part_of_a_device_tag(client, plant, django_assert_max_num_queries):
+    login(client, plant["tech"])
+    with django_assert_max_num_queries(20):
+        resp = client.get(reverse("field:worklist"), {"q": "101a"})
+    body = resp.content.decode()
+    assert resp.status_code == 200
+    assert "SIF-101" in body and "LT-101A" in body
+    assert "Overdue" in body or "Escalated" in body
+    assert "SIF-900" not in body  # another site's plan never shows
+    miss = client.get(reverse("field:worklist"), {"q": "ZZ-404"}).content.decode()
+    assert "SIF-101" not in miss and "No test plan matches" in miss
+
+
+# --- the full flow ----------------------------------------------------------------------
+
+
+def test_draft_sign_verify_moves_due_date_and_recomputes(client, plant,
+                                                         django_capture_on_commit_callbacks):
+    p = plant
+    due_before = TestPlan.objects.get(pk=p["plan"].pk).next_due_on
+    assessments_before = Assessment.objects.filter(sif=p["sif"]).count()
+    login(client, p["tech"])
+    resp = client.post(start_url(p), entry_data(p, lt_found="83.0", lt_found_verdict="fail",
+                                                **{f"c{p['lt'].pk}-failure_mode": "du",
+                                                   f"c{p['lt'].pk}-failure_description":
+                                                   "Trip 3 % high (drift).",
+                                                   f"c{p['lt'].pk}-work_done":
+                                                   "Recalibrated."}))
+    record = TestRecord.objects.get(sif=p["sif"])
+    assert resp.status_code == 302 and resp.url == reverse("field:record_edit", args=[record.pk])
+    found = MeasuredValue.objects.get(result__record=record, step=p["trip"], phase="found")
+    assert found.value == 83.0 and found.within_criterion is False
+
+    with django_capture_on_commit_callbacks(execute=True):
+        resp = client.post(reverse("field:record_edit", args=[record.pk]),
+                           entry_data(p, token="b" * 32, lt_found="83.0",
+                                      lt_found_verdict="fail", action="sign",
+                                      password=f.PASSWORD, version=record.draft_version,
+                                      **{f"c{p['lt'].pk}-failure_mode": "du",
+                                         f"c{p['lt'].pk}-failure_description": "Drift.",
+                                         f"c{p['lt'].pk}-work_done": "Recalibrated."}))
+    assert resp.status_code == 302, resp.content.decode()[:2000]
+    record.refresh_from_db()
+    assert record.status == choices.RecordStatus.SIGNED
+    plan = TestPlan.objects.get(pk=p["plan"].pk)
+    assert plan.next_due_on != due_before
+    assert plan.next_due_on > timezone.localdate()
+    assert Assessment.objects.filter(sif=p["sif"]).count() > assessments_before
+
+    page = client.get(reverse("field:record_detail", args=[record.pk])).content.decode()
+    assert plan.next_due_on.isoformat() in page and "Achieved PFDavg" in page
+
+    client.logout()
+    login(client, p["verifier"])
+    queue = client.get(reverse("field:verify_queue")).content.decode()
+    assert "SIF-101" in queue
+    with django_capture_on_commit_callbacks(execute=True):
+        resp = client.post(reverse("field:record_verify", args=[record.pk]),
+                           {"password": f.PASSWORD})
+    record.refresh_from_db()
+    assert record.status == choices.RecordStatus.VERIFIED
+    assert record.verified_by == p["verifier"]
+    assert "SIF-101" not in client.get(reverse("field:verify_queue")).content.decode()
+
+
+# --- bad input keeps what was typed ------------------------------------------------------
+
+
+def test_non_number_is_refused_next_to_the_field_and_kept(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(plant, lt_found="8o.4",
+                                                    remarks="typed remark"))
+    body = resp.content.decode()
+    assert resp.status_code == 400
+    assert "is not a number" in body
+    assert 'value="8o.4"' in body and "typed remark" in body and 'value="6.2"' in body
+    assert not TestRecord.objects.exists()
+
+
+def test_value_outside_criterion_cannot_pass(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(plant, xv_found="9.0"))  # > 8 s response
+    assert resp.status_code == 400
+    assert "outside" in resp.content.decode()
+    assert not TestRecord.objects.exists()
+
+
+def test_future_date_is_refused(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(
+        plant, when=timezone.localtime() + dt.timedelta(days=2)))
+    assert resp.status_code == 400
+    assert "The test date is in the future." in resp.content.decode()
+    assert not TestRecord.objects.exists()
+
+
+def test_date_before_in_service_is_refused(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(
+        plant, when=timezone.make_aware(dt.datetime(2019, 6, 1, 9, 0))))
+    body = resp.content.decode()
+    assert resp.status_code == 400
+    assert "before the equipment entered service" in body
+    assert 'value="80.4"' in body
+    assert not TestRecord.objects.exists()
+
+
+def test_failure_needs_classification_and_description(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(plant, lt_found="83", lt_found_verdict="fail"))
+    body = resp.content.decode()
+    assert "Classify the failure found" in body and "Describe the failure found." in body
+    assert not TestRecord.objects.exists()
+
+
+def test_performer_cannot_countersign_own_record(client, plant):
+    p = plant
+    f.Membership.objects.create(user=p["tech"], site=p["sif"].unit.site,
+                                role=choices.Role.VERIFIER)
+    login(client, p["tech"])
+    client.post(start_url(p), entry_data(p, action="sign", password=f.PASSWORD))
+    record = TestRecord.objects.get()
+    assert record.status == choices.RecordStatus.SIGNED
+    detail = client.get(reverse("field:record_detail", args=[record.pk])).content.decode()
+    assert "another person must countersign" in detail
+    resp = client.post(reverse("field:record_verify", args=[record.pk]),
+                       {"password": f.PASSWORD}, follow=True)
+    assert "The verifier must be another person than the performer." in resp.content.decode()
+    record.refresh_from_db()
+    assert record.status == choices.RecordStatus.SIGNED and record.verified_by is None
+
+
+def test_same_post_twice_creates_one_record(client, plant):
+    login(client, plant["tech"])
+    data = entry_data(plant)
+    first = client.post(start_url(plant), data)
+    second = client.post(start_url(plant), data, follow=True)
+    assert TestRecord.objects.count() == 1
+    record = TestRecord.objects.get()
+    assert first.url == reverse("field:record_edit", args=[record.pk])
+    assert second.redirect_chain[-1][0] == reverse("field:record_edit", args=[record.pk])
+    assert "nothing was duplicated" in second.content.decode()
+    # The same on an edit: the repeated save is recognised, not reported as a conflict.
+    edit = reverse("field:record_edit", args=[record.pk])
+    again = entry_data(plant, token="c" * 32, version=record.draft_version, lt_found="80.2")
+    client.post(edit, again)
+    repeat = client.post(edit, again, follow=True)
+    assert "nothing was duplicated" in repeat.content.decode()
+    assert TestRecord.objects.count() == 1
+
+
+def test_stale_draft_keeps_the_typing_and_the_other_save(client, plant):
+    login(client, plant["tech"])
+    client.post(start_url(plant), entry_data(plant))
+    record = TestRecord.objects.get()
+    edit = reverse("field:record_edit", args=[record.pk])
+    version = record.draft_version
+    ok = client.post(edit, entry_data(plant, token="d" * 32, version=version, lt_found="80.2"))
+    assert ok.status_code == 302
+    stale = client.post(edit, entry_data(plant, token="e" * 32, version=version,
+                                         lt_found="79.7", remarks="second tab"))
+    body = stale.content.decode()
+    assert stale.status_code == 400
+    assert "saved elsewhere since you opened it" in body
+    assert 'value="79.7"' in body and "second tab" in body
+    stored = MeasuredValue.objects.get(result__record=record, step=plant["trip"], phase="found")
+    assert stored.value == 80.2
+    # Saving again from the conflict page replaces the other version on purpose.
+    record.refresh_from_db()
+    assert f'name="expected_version" value="{record.draft_version}"' in body
+
+
+def test_attachment_checks_type_and_is_served_as_download(client, plant, settings, tmp_path):
+    settings.MEDIA_ROOT = tmp_path
+    login(client, plant["tech"])
+    fake = SimpleUploadedFile("photo.jpg", b"<html><script>alert(1)</script>",
+                              content_type="image/jpeg")
+    resp = client.post(start_url(plant), {**entry_data(plant), "attachments": fake})
+    assert resp.status_code == 400 and "does not contain what its name says" in resp.content.decode()
+    assert not TestRecord.objects.exists()
+    png = SimpleUploadedFile("gauge.png", b"\x89PNG\r\n\x1a\n" + b"0" * 64,
+                             content_type="image/png")
+    client.post(start_url(plant), {**entry_data(plant), "attachments": png})
+    att = Attachment.objects.get()
+    assert len(att.sha256) == 64 and att.content_type == "image/png"
+    got = client.get(reverse("field:attachment", args=[att.pk]))
+    assert got["Content-Disposition"].startswith("attachment")
+    assert got["X-Content-Type-Options"] == "nosniff"
+    client.logout()
+    login(client, plant["outsider"])
+    assert client.get(reverse("field:attachment", args=[att.pk])).status_code == 404
+
+
+def test_attachment_size_limit(client, plant, settings):
+    settings.ATTACHMENT_MAX_BYTES = 100
+    login(client, plant["tech"])
+    big = SimpleUploadedFile("big.pdf", b"%PDF-1.4" + b"0" * 500, content_type="application/pdf")
+    resp = client.post(start_url(plant), {**entry_data(plant), "attachments": big})
+    assert resp.status_code == 400 and "the limit is" in resp.content.decode()
+    assert not TestRecord.objects.exists()
+
+
+def test_correction_needs_reason_and_links_both_versions(client, plant):
+    login(client, plant["tech"])
+    client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
+    original = TestRecord.objects.get()
+    url = reverse("field:record_correct", args=[original.pk])
+    refused = client.post(url, {"reason": "  "})
+    assert refused.status_code == 400 and "A correction needs a reason." in refused.content.decode()
+    resp = client.post(url, {"reason": "Wrong date typed"})
+    draft = TestRecord.objects.exclude(pk=original.pk).get()
+    assert resp.url == reverse("field:record_edit", args=[draft.pk])
+    assert draft.supersedes == original
+    page = client.get(reverse("field:record_detail", args=[original.pk])).content.decode()
+    assert "superseded by" in page and reverse("field:record_detail", args=[draft.pk]) in page
+
+
+# --- rights ------------------------------------------------------------------------------
+
+
+def test_wrong_password_keeps_the_draft(client, plant):
+    login(client, plant["tech"])
+    resp = client.post(start_url(plant), entry_data(plant, action="sign", password="nope"),
+                       follow=True)
+    record = TestRecord.objects.get()
+    assert record.status == choices.RecordStatus.DRAFT
+    assert "The password is not correct" in resp.content.decode()
+
+
+def test_technician_cannot_verify(client, plant):
+    login(client, plant["tech"])
+    client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
+    record = TestRecord.objects.get()
+    tech2 = f.user("tech2", site=plant["sif"].unit.site, role=choices.Role.TECHNICIAN)
+    client.logout()
+    login(client, tech2)
+    assert client.post(reverse("field:record_verify", args=[record.pk]),
+                       {"password": f.PASSWORD}).status_code == 403
+    assert client.get(reverse("field:verify_queue")).status_code == 403
+    record.refresh_from_db()
+    assert record.status == choices.RecordStatus.SIGNED
+
+
+def test_auditor_gets_403_on_every_post(client, plant):
+    login(client, plant["tech"])
+    client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
+    signed = TestRecord.objects.get()
+    client.post(start_url(plant), entry_data(plant, token="f" * 32))
+    draft = TestRecord.objects.get(status=choices.RecordStatus.DRAFT)
+    client.logout()
+    login(client, plant["auditor"])
+    posts = [
+        (start_url(plant), entry_data(plant, token="9" * 32)),
+        (reverse("field:record_edit", args=[draft.pk]), entry_data(plant)),
+        (reverse("field:record_verify", args=[signed.pk]), {"password": f.PASSWORD}),
+        (reverse("field:record_correct", args=[signed.pk]), {"reason": "x"}),
+    ]
+    for url, data in posts:
+        assert client.post(url, data).status_code == 403, url
+    assert client.get(reverse("field:worklist")).status_code == 403
+    assert TestRecord.objects.count() == 2
+
+
+def test_other_site_user_gets_404(client, plant):
+    login(client, plant["tech"])
+    client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
+    record = TestRecord.objects.get()
+    client.logout()
+    login(client, plant["outsider"])
+    assert client.get(start_url(plant)).status_code == 404
+    assert client.post(start_url(plant), entry_data(plant)).status_code == 404
+    for name in ("field:record_detail", "field:record_edit"):
+        assert client.get(reverse(name, args=[record.pk])).status_code == 404
+    for name in ("field:record_verify", "field:record_correct"):
+        assert client.post(reverse(name, args=[record.pk]), {"password": "x",
+                                                             "reason": "x"}).status_code == 404
+    # Their own site works.
+    assert client.get(reverse("field:start", args=[plant["other_plan"].pk])).status_code == 200
