@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import math
 import uuid
 
 from django import forms
@@ -24,7 +25,7 @@ def parse_number(text: str) -> float:
     """A number typed in the field: accepts a decimal comma and surrounding spaces."""
     cleaned = (text or "").strip().replace(" ", "").replace(",", ".")
     value = float(cleaned)  # ValueError for anything else
-    if value != value or value in (float("inf"), float("-inf")):
+    if not math.isfinite(value):
         raise ValueError(text)
     return value
 

@@ -331,10 +331,16 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
             previous[rec.id] = rec
             entries.append({"when": rec.history_date, "what": f"{label} {rec}",
                             "kind": rec.get_history_type_display(),
-                            "who": rec.history_user, "reason": rec.history_change_reason or "",
+                            "who": _name(rec.history_user), "reason": rec.history_change_reason or "",
                             "changes": changes})
     entries.sort(key=lambda e: e["when"], reverse=True)
     return entries[:limit]
+
+
+def _name(user) -> str:
+    if user is None:
+        return "—"
+    return user.get_full_name() or user.get_username()
 
 
 def _fmt_hours(hours: float) -> str:

@@ -177,7 +177,7 @@ def _entry(request, *, sif, plan, record=None):
     if request.method == "POST":
         token = request.POST.get("form_token", "")
         valid = header.is_valid()
-        valid = all([form.is_valid() for form in comp_forms]) and valid
+        valid = all([form.is_valid() for form in comp_forms]) and valid  # noqa: C419 (validate every form)
         uploads = request.FILES.getlist("attachments")
         checked = []
         for upload in uploads:

@@ -31,8 +31,9 @@ def plant(transactional_db):
                             measured_quantity="Closing time", unit="s",
                             criterion=choices.CriterionKind.AT_MOST, limit=10.0)
     other = f.sif(unit, tag="U10-SIF-205")  # noise in the list
-    from register.scheduling import refresh_plans
     from django.utils import timezone
+
+    from register.scheduling import refresh_plans
     refresh_plans(TestPlan.objects.all(), timezone.localdate())
     f.user("tech", site=site, role=choices.Role.TECHNICIAN)
     f.user("verifier", site=site, role=choices.Role.VERIFIER)
