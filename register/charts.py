@@ -13,10 +13,11 @@ import io
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.dates as mdates  # noqa: E402
-import matplotlib.pyplot as plt  # noqa: E402
+import matplotlib.dates as mdates
+import matplotlib.pyplot as plt
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
-from calcs.engine.sil import sil_band  # noqa: E402
+from calcs.engine.sil import sil_band
 
 #: Hatch per SIL band: distinct patterns so bands differ without colour.
 BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
@@ -63,6 +64,15 @@ def _limits(values, target):
     return max(low, 1e-7), min(max(high, low * 10), 1.0)
 
 
+def _log_axis(ax, low: float, high: float):
+    """Log scale with plain tick labels (1e-03), no math text."""
+    ax.set_yscale("log")
+    ax.set_ylim(low, high)
+    ax.yaxis.set_major_locator(LogLocator(base=10, numticks=12))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:.0e}"))
+    ax.yaxis.set_minor_formatter(NullFormatter())
+
+
 def _svg(fig) -> bytes:
     fig.tight_layout()
     buf = io.BytesIO()
@@ -80,8 +90,7 @@ def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str) 
     if times:
         ax.plot(times, values, color="black", linewidth=1.3, label="PFD(t)", zorder=4)
     _target(ax, target)
-    ax.set_yscale("log")
-    ax.set_ylim(low, high)
+    _log_axis(ax, low, high)
     ax.set_ylabel("PFD(t)")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m"))
     ax.legend(loc="lower right", fontsize=8, framealpha=1)
@@ -107,8 +116,11 @@ def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],
         ax.text(0.5, 0.5, "No calculation stored yet", transform=ax.transAxes,
                 ha="center", va="center")
     _target(ax, target)
-    ax.set_yscale("log")
-    ax.set_ylim(low, high)
+    _log_axis(ax, low, high)
+    times = [t for t, _, _ in points]
+    if times and max(times) - min(times) < dt.timedelta(days=30):
+        middle = min(times) + (max(times) - min(times)) / 2
+        ax.set_xlim(middle - dt.timedelta(days=15), middle + dt.timedelta(days=15))
     ax.set_ylabel("PFDavg")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))
     fig.autofmt_xdate()

@@ -28,6 +28,13 @@ PlanState = choices.PlanState
 LATE_STATES = [PlanState.OVERDUE, PlanState.ESCALATED, PlanState.ESCALATED_2]
 ESCALATED_STATES = [PlanState.ESCALATED, PlanState.ESCALATED_2]
 DEMAND_FLAG_TEXT = "Observed demand rate"
+ANY = "Any"
+
+
+def _yes_no():
+    from django import forms
+
+    return forms.Select(choices=[("", ANY), ("true", "Yes"), ("false", "No")])
 
 
 _RANK = Case(*[When(cached_state=state, then=Value(rank))
@@ -62,36 +69,42 @@ def annotate_register(qs):
 
 
 class SifFilter(df.FilterSet):
+    # Yes / No / Any (no filter) for the boolean filters.
     q = df.CharFilter(method="search", label="SIF or component tag")
-    site = df.ModelChoiceFilter(field_name="unit__site", queryset=Site.objects.none())
-    unit = df.ModelChoiceFilter(queryset=PlantUnit.objects.none())
-    target_sil = df.ChoiceFilter(choices=[(i, f"SIL {i}") for i in (1, 2, 3, 4)])
-    life_stage = df.ChoiceFilter(choices=choices.LifeStage.choices)
-    meets = df.ChoiceFilter(label="Meets target", method="filter_meets",
+    site = df.ModelChoiceFilter(field_name="unit__site", queryset=Site.objects.none(),
+                                label="Site", empty_label=ANY)
+    unit = df.ModelChoiceFilter(queryset=PlantUnit.objects.none(), empty_label=ANY)
+    target_sil = df.ChoiceFilter(label="Target SIL", empty_label=ANY, choices=[(i, f"SIL {i}") for i in (1, 2, 3, 4)])
+    life_stage = df.ChoiceFilter(empty_label=ANY, choices=choices.LifeStage.choices)
+    meets = df.ChoiceFilter(label="Meets target", empty_label=ANY, method="filter_meets",
                             choices=[("yes", "Meets target"), ("no", "Does not meet"),
                                      ("unknown", "Not calculated")])
     device_type = df.ModelChoiceFilter(queryset=DeviceType.objects.all(), method="by_type",
-                                       label="Device type")
-    plan_state = df.ChoiceFilter(label="Test state", method="by_plan_state", choices=[
+                                       label="Device type", empty_label=ANY)
+    plan_state = df.ChoiceFilter(label="Test state", method="by_plan_state", empty_label=ANY,
+                                 choices=[
         ("due_soon", "Due soon"), ("overdue", "Overdue or escalated"),
         ("escalated", "Escalated")])
-    overdue = df.BooleanFilter(label="Overdue test", method="by_overdue")
-    open_bypass = df.BooleanFilter(label="Open bypass", method="by_bypass")
-    pending_deferral = df.BooleanFilter(label="Deferral awaiting decision",
+    overdue = df.BooleanFilter(widget=_yes_no(), label="Overdue test", method="by_overdue")
+    open_bypass = df.BooleanFilter(widget=_yes_no(), label="Open bypass", method="by_bypass")
+    pending_deferral = df.BooleanFilter(widget=_yes_no(),
+                                        label="Deferral awaiting decision",
                                         method="by_deferral")
-    demand_flag = df.BooleanFilter(label="Demands more frequent than LOPA assumed",
+    demand_flag = df.BooleanFilter(widget=_yes_no(),
+                                   label="Demands more frequent than LOPA assumed",
                                    method="by_demand_flag")
-    late_12m = df.BooleanFilter(label="A test done late or missed in the last 12 months",
+    late_12m = df.BooleanFilter(widget=_yes_no(),
+                                label="A test done late or missed in the last 12 months",
                                 method="by_late_12m")
     sort = df.OrderingFilter(fields=(
         ("tag", "tag"), ("unit__code", "unit"), ("target_sil", "sil"),
         ("latest_achieved", "achieved"), ("latest_design", "design"),
         ("next_due", "due"),
-    ), label="Sort by")
+    ), label="Sort by", empty_label="Unit and tag")
 
     class Meta:
         model = SafetyFunction
-        fields = ["q", "site", "unit", "target_sil", "life_stage"]
+        fields = ("q", "site", "unit", "target_sil", "life_stage",)
 
     def __init__(self, data=None, queryset=None, *, request=None, prefix=None):
         user = request.user if request else None

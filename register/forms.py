@@ -26,20 +26,20 @@ class ChangeControlMixin(forms.Form):
 class ComponentChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = Component
-        fields = ["lambda_du_per_hour", "lambda_dd_per_hour", "lambda_s_per_hour",
-                  "proof_test_coverage", "partial_test_coverage"]
+        fields = ("lambda_du_per_hour", "lambda_dd_per_hour", "lambda_s_per_hour",
+                  "proof_test_coverage", "partial_test_coverage",)
 
 
 class SubsystemChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = Subsystem
-        fields = ["voting", "beta", "beta_d"]
+        fields = ("voting", "beta", "beta_d",)
 
 
 class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = TestPlan
-        fields = ["interval_months"]
+        fields = ("interval_months",)
 
 
 FORMS = {"component": (Component, ComponentChangeForm),

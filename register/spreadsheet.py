@@ -177,7 +177,7 @@ def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
     elif name.endswith(".xlsx"):
         try:
             wb = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
-        except Exception as exc:  # noqa: BLE001 - any unreadable workbook
+        except Exception as exc:
             raise FileError("The file is not a readable .xlsx workbook.") from exc
         ws = wb[SHEET_NAME] if SHEET_NAME in wb.sheetnames else wb.worksheets[0]
         raw = [list(r) for r in ws.iter_rows(values_only=True)]
@@ -322,7 +322,7 @@ class _Row:
             return None
         text = str(value).strip()
         scale = 1.0
-        match = re.fullmatch(r"(.*?)\s*(fit|/h|per hour)", text, flags=re.I)
+        match = re.fullmatch(r"(.*?)\s*(fit|/h|per hour)", text, flags=re.IGNORECASE)
         if match:
             text, suffix = match.group(1), match.group(2).lower()
             scale = FIT if suffix == "fit" else 1.0
@@ -626,88 +626,85 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str)
     reason = "spreadsheet import"
     change = f"[{reference}] {reason}"
     affected: set[int] = set()
-    try:
-        with transaction.atomic(), followup.suspended():
-            plan = plan_import(site, rows)
-            if plan.errors:
-                raise ImportFailed(plan.errors)
-            sifs = {}
-            for number, sif, unit, tag, values, interval in plan.sif_ops:
-                try:
-                    if sif is None:
-                        sif = SafetyFunction(unit=unit, tag=tag, **values)
-                        sif.full_clean()
-                        services._attribute(sif, user, change).save()
-                    elif _differs(sif, values):
-                        sif = services.update_design(sif, user, reason=reason,
-                                                     reference=reference, changes=values)
-                    if interval is not None:
-                        fp = TestPlan.objects.filter(sif=sif, kind=choices.TestKind.FULL
-                                                     ).order_by("name", "id").first()
-                        if fp is None:
-                            fp = TestPlan(sif=sif, name=FULL_PLAN_NAME,
-                                          interval_months=interval)
-                            fp.full_clean()
-                            services._attribute(fp, user, change).save()
-                        elif fp.interval_months != interval:
-                            services.update_design(fp, user, reason=reason,
-                                                   reference=reference,
-                                                   changes={"interval_months": interval})
-                except ValidationError as exc:
-                    raise ImportFailed(_row_error(number, exc, SIF_COLS)) from exc
-                sifs[(unit.code, tag)] = sif
-                affected.add(sif.pk)
-            for number, key, sub_name, sub_values, comp_tag, dtype, comp_values in \
-                    plan.comp_ops:
-                sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
-                                                                  unit__code=key[0],
-                                                                  tag=key[1])
-                affected.add(sif.pk)
-                try:
-                    sub = Subsystem.objects.filter(sif=sif, name=sub_name).first()
-                    if sub is None:
-                        position = {"sensing": 1, "logic": 2, "final": 3}.get(
-                            sub_values["role"], 0)
-                        sub = Subsystem(sif=sif, name=sub_name, position=position,
-                                        **sub_values)
-                        sub.full_clean()
-                        services._attribute(sub, user, change).save()
-                    elif _differs(sub, sub_values):
-                        services.update_design(sub, user, reason=reason, reference=reference,
-                                               changes=sub_values)
-                    comp = Component.objects.filter(subsystem__sif=sif, tag=comp_tag).first()
-                    values = {**comp_values, "device_type": dtype}
-                    if comp is None:
-                        comp = Component(subsystem=sub, tag=comp_tag, **values)
-                        comp.full_clean()
-                        services._attribute(comp, user, change).save()
-                    elif _differs(comp, {**comp_values, "device_type_id": dtype.pk}):
-                        services.update_design(comp, user, reason=reason, reference=reference,
-                                               changes=values)
-                except ValidationError as exc:
-                    raise ImportFailed(_row_error(number, exc, COMP_COLS)) from exc
-            for number, key, at, kind, group in plan.test_ops:
-                sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
-                                                                  unit__code=key[0],
-                                                                  tag=key[1])
-                affected.add(sif.pk)
-                by_tag = {c.tag: c for c in Component.objects.filter(subsystem__sif=sif)}
-                results = [services.ResultInput(component=by_tag[t], **r)
-                           for _, t, r in group["results"]]
-                fp = None
-                if kind in (choices.TestKind.FULL, choices.TestKind.PARTIAL):
-                    fp = TestPlan.objects.filter(sif=sif, kind=kind).order_by("name").first()
-                try:
-                    record = services.save_draft(user=user, sif=sif, kind=kind,
-                                                 performed_at=at, results=results, plan=fp,
-                                                 remarks=group["remarks"])
-                    services.sign_record(record, user, None, check_password=False,
-                                         signed_at=at)
-                except ValidationError as exc:
-                    raise ImportFailed(_row_error(number, exc, {
-                        "performed_at": "test_performed_at", "kind": "test_kind"})) from exc
-    except ImportFailed:
-        raise
+    with transaction.atomic(), followup.suspended():
+        plan = plan_import(site, rows)
+        if plan.errors:
+            raise ImportFailed(plan.errors)
+        sifs = {}
+        for number, sif, unit, tag, values, interval in plan.sif_ops:
+            try:
+                if sif is None:
+                    sif = SafetyFunction(unit=unit, tag=tag, **values)
+                    sif.full_clean()
+                    services._attribute(sif, user, change).save()
+                elif _differs(sif, values):
+                    sif = services.update_design(sif, user, reason=reason,
+                                                 reference=reference, changes=values)
+                if interval is not None:
+                    fp = TestPlan.objects.filter(sif=sif, kind=choices.TestKind.FULL
+                                                 ).order_by("name", "id").first()
+                    if fp is None:
+                        fp = TestPlan(sif=sif, name=FULL_PLAN_NAME,
+                                      interval_months=interval)
+                        fp.full_clean()
+                        services._attribute(fp, user, change).save()
+                    elif fp.interval_months != interval:
+                        services.update_design(fp, user, reason=reason,
+                                               reference=reference,
+                                               changes={"interval_months": interval})
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, SIF_COLS)) from exc
+            sifs[(unit.code, tag)] = sif
+            affected.add(sif.pk)
+        for number, key, sub_name, sub_values, comp_tag, dtype, comp_values in \
+                plan.comp_ops:
+            sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
+                                                              unit__code=key[0],
+                                                              tag=key[1])
+            affected.add(sif.pk)
+            try:
+                sub = Subsystem.objects.filter(sif=sif, name=sub_name).first()
+                if sub is None:
+                    position = {"sensing": 1, "logic": 2, "final": 3}.get(
+                        sub_values["role"], 0)
+                    sub = Subsystem(sif=sif, name=sub_name, position=position,
+                                    **sub_values)
+                    sub.full_clean()
+                    services._attribute(sub, user, change).save()
+                elif _differs(sub, sub_values):
+                    services.update_design(sub, user, reason=reason, reference=reference,
+                                           changes=sub_values)
+                comp = Component.objects.filter(subsystem__sif=sif, tag=comp_tag).first()
+                values = {**comp_values, "device_type": dtype}
+                if comp is None:
+                    comp = Component(subsystem=sub, tag=comp_tag, **values)
+                    comp.full_clean()
+                    services._attribute(comp, user, change).save()
+                elif _differs(comp, {**comp_values, "device_type_id": dtype.pk}):
+                    services.update_design(comp, user, reason=reason, reference=reference,
+                                           changes=values)
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, COMP_COLS)) from exc
+        for number, key, at, kind, group in plan.test_ops:
+            sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
+                                                              unit__code=key[0],
+                                                              tag=key[1])
+            affected.add(sif.pk)
+            by_tag = {c.tag: c for c in Component.objects.filter(subsystem__sif=sif)}
+            results = [services.ResultInput(component=by_tag[t], **r)
+                       for _, t, r in group["results"]]
+            fp = None
+            if kind in (choices.TestKind.FULL, choices.TestKind.PARTIAL):
+                fp = TestPlan.objects.filter(sif=sif, kind=kind).order_by("name").first()
+            try:
+                record = services.save_draft(user=user, sif=sif, kind=kind,
+                                             performed_at=at, results=results, plan=fp,
+                                             remarks=group["remarks"])
+                services.sign_record(record, user, None, check_password=False,
+                                     signed_at=at)
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, {
+                    "performed_at": "test_performed_at", "kind": "test_kind"})) from exc
     if affected:
         from calcs.adapter import recompute_many
 

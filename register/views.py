@@ -103,7 +103,7 @@ def on_time_rate(plans, today: dt.date, days: int = 365) -> OnTime:
             continue
         due_n = on_n = 0
 
-        def due_after(day):
+        def due_after(day, plan=plan):
             due = add_months(day, plan.interval_months)
             return approved.get((plan.pk, due), due)
 
@@ -325,11 +325,14 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
             if prev is not None:
                 try:
                     delta = rec.diff_against(prev)
-                    changes = [f"{c.field}: {c.old} → {c.new}" for c in delta.changes]
+                    changes = [f"{c.field}: {c.old} → {c.new}"
+                               if not isinstance(c.new, list) else f"{c.field} changed"
+                               for c in delta.changes]
                 except Exception:  # noqa: BLE001 - a schema change in history; show the entry
                     changes = []
             previous[rec.id] = rec
-            entries.append({"when": rec.history_date, "what": f"{label} {rec}",
+            name = getattr(rec, "tag", None) or getattr(rec, "name", "")
+            entries.append({"when": rec.history_date, "what": f"{label} {name}",
                             "kind": rec.get_history_type_display(),
                             "who": _name(rec.history_user), "reason": rec.history_change_reason or "",
                             "changes": changes})
@@ -456,5 +459,13 @@ def test_detail(request, pk):
                                                           "results": results})
 
 
-__all__ = ["home", "sif_list", "sif_export", "sif_detail", "sif_chart", "test_detail",
-           "on_time_rate", "Demand"]
+__all__ = [
+    "Demand",
+    "home",
+    "on_time_rate",
+    "sif_chart",
+    "sif_detail",
+    "sif_export",
+    "sif_list",
+    "test_detail",
+]

@@ -4,6 +4,7 @@ import shutil
 from pathlib import Path
 
 import pytest
+from playwright.sync_api import expect
 
 from register import choices
 from register.models import Component, SafetyFunction, TestPlan, TestRecord, TestStep
@@ -61,8 +62,9 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     sign_in(page, base, "tech")
     page.get_by_label("Find by SIF or device tag").fill("101A")
     page.get_by_role("button", name="Search").click()
+    page.wait_for_url("**/field/?q=101A*")
     tiles = page.locator(".plan-row")
-    assert tiles.count() == 1
+    expect(tiles).to_have_count(1)
     assert "LT-101A" in tiles.first.inner_text()
     page.screenshot(path=str(ARTIFACTS / "field-1-worklist.png"), full_page=True)
     tiles.first.get_by_role("link", name="Record test").click()
@@ -70,7 +72,7 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     page.get_by_label("Full proof test").check()
     lt = page.locator("fieldset.device", has_text="LT-101A")
     lt.get_by_label("As found (%)").fill("83.2")
-    assert lt.locator("output.judge").first.inner_text() == "Outside criterion"
+    expect(lt.locator("output.judge").first).to_have_text("Outside criterion")
     # The out-of-tolerance value proposes a failed as-found verdict.
     assert lt.locator("input[name$='-as_found'][value='fail']").is_checked()
     lt.get_by_label("As left (%)").fill("80.2")
@@ -87,13 +89,13 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     closing = xv.get_by_label("As found (s)")
     closing.fill("6.4")
     judged = page.locator(f"#{closing.get_attribute('id')}-judge")
-    assert judged.inner_text() == "Within criterion"
+    expect(judged).to_have_text("Within criterion")
     page.screenshot(path=str(ARTIFACTS / "field-2-entry.png"), full_page=True)
     page.get_by_label("Your password").fill(f.PASSWORD)
     page.get_by_role("button", name="Save and sign").click()
     page.wait_for_url("**/field/records/*/")
     page.screenshot(path=str(ARTIFACTS / "field-3-signed.png"), full_page=True)
-    assert "Signed, awaiting verifier" in page.locator("#record-status").inner_text()
+    expect(page.locator("#record-status")).to_contain_text("Signed, awaiting verifier")
 
     plan.refresh_from_db()
     assert plan.next_due_on != due_before and plan.cached_state != state_before
@@ -107,7 +109,7 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     page.get_by_role("link", name="Review U10-SIF-101").click()
     page.get_by_label("Your password").fill(f.PASSWORD)
     page.get_by_role("button", name="Countersign").click()
-    assert "Signed and verified" in page.locator("#record-status").inner_text()
+    expect(page.locator("#record-status")).to_contain_text("Signed and verified")
     assert "Achieved PFDavg" in page.locator("#achieved").inner_text()
     page.screenshot(path=str(ARTIFACTS / "field-4-verified.png"), full_page=True)
     record = TestRecord.objects.get(sif=plant["sif"])
