@@ -119,6 +119,7 @@ def main():
         times = []
         queries = 0
         for _ in range(args.repeat):
+            connection.queries_log.clear()
             with CaptureQueriesContext(connection) as ctx:
                 start = time.perf_counter()
                 resp = client.get(url)

@@ -1084,3 +1084,4 @@ class Notification(models.Model):
 
     def __str__(self):
         return self.message[:80]
+from .models_audit import *  # noqa: E402,F401,F403

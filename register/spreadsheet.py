@@ -27,6 +27,7 @@ from openpyxl.utils import get_column_letter
 from . import choices, followup, services
 from .models import (
     Component,
+    ComponentResult,
     DeviceType,
     PlantUnit,
     SafetyFunction,
@@ -68,7 +69,7 @@ def _num(value):
 def export_rows(sif_queryset) -> list[dict]:
     """The rows for these SIFs: each SIF, its components, its current signed tests."""
     sifs = list(sif_queryset.select_related("unit").order_by("unit__code", "tag"))
-    ids = [s.pk for s in sifs]
+    ids = SafetyFunction.objects.filter(pk__in=sif_queryset.values("pk")).values("pk")
     plans = defaultdict(list)
     for plan in TestPlan.objects.filter(sif_id__in=ids, kind=choices.TestKind.FULL).order_by(
             "name", "id"):
@@ -77,10 +78,15 @@ def export_rows(sif_queryset) -> list[dict]:
     for c in Component.objects.filter(subsystem__sif_id__in=ids).select_related(
             "subsystem", "device_type").order_by("subsystem__position", "subsystem_id", "tag"):
         comps[c.subsystem.sif_id].append(c)
+    current = (TestRecord.objects.filter(sif_id__in=ids, superseded_by__isnull=True)
+               .exclude(status=choices.RecordStatus.DRAFT))
+    results = defaultdict(list)
+    for r in ComponentResult.objects.filter(record__in=current).select_related(
+            "component").order_by("component__tag"):
+        results[r.record_id].append(r)
     tests = defaultdict(list)
-    for rec in (TestRecord.objects.filter(sif_id__in=ids, superseded_by__isnull=True)
-                .exclude(status=choices.RecordStatus.DRAFT).order_by("performed_at", "id")
-                .prefetch_related("results__component")):
+    for rec in current.order_by("performed_at", "id"):
+        rec.loaded_results = results[rec.pk]
         tests[rec.sif_id].append(rec)
     rows = []
     for s in sifs:
@@ -105,7 +111,7 @@ def export_rows(sif_queryset) -> list[dict]:
                          "partial_test_coverage": c.partial_test_coverage})
         for rec in tests[s.pk]:
             at = rec.performed_at.astimezone(dt.UTC).isoformat()
-            for r in rec.results.all():
+            for r in rec.loaded_results:
                 rows.append({**base, "record": "test", "component_tag": r.component.tag,
                              "test_performed_at": at, "test_kind": rec.kind,
                              "as_found": r.as_found, "as_left": r.as_left,

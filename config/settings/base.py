@@ -99,6 +99,7 @@ USE_TZ = True
 
 STATIC_URL = "static/"
 STATIC_ROOT = VAR_DIR / "static"
+STATIC_ROOT.mkdir(exist_ok=True)  # whitenoise warns when it is missing (before collectstatic)
 STATICFILES_DIRS = [BASE_DIR / "static"]
 MEDIA_URL = "media/"
 MEDIA_ROOT = Path(env_str("MEDIA_ROOT", str(VAR_DIR / "media")))

@@ -1,0 +1,1 @@
+"""The REST API of the register: every write goes through ``register.services``."""

@@ -1,0 +1,385 @@
+"""Shapes of the API's data. Serializers check types and which objects the user may name;
+the rules of the register (signing, bypass overlap, deferral dates...) live in the models'
+``clean()`` and in ``register.services``.
+"""
+
+from __future__ import annotations
+
+from rest_framework import serializers
+
+from calcs.models import Assessment
+from register import choices
+from register.models import (
+    Bypass,
+    Component,
+    ComponentResult,
+    ConditionalModifier,
+    Deferral,
+    Demand,
+    DeviceType,
+    HazardScenario,
+    InitiatingCause,
+    MeasuredValue,
+    Notification,
+    PlantUnit,
+    ProtectionLayer,
+    SafetyFunction,
+    Site,
+    Subsystem,
+    TestPlan,
+    TestRecord,
+    TestStep,
+)
+
+
+class VisiblePK(serializers.PrimaryKeyRelatedField):
+    """A reference to an object the requesting user can see (others read as "not found")."""
+
+    def get_queryset(self):
+        qs = super().get_queryset()
+        request = self.context.get("request")
+        if hasattr(qs, "for_user"):
+            return qs.for_user(request.user if request else None)
+        return qs
+
+
+class LedgerModelSerializer(serializers.ModelSerializer):
+    serializer_related_field = VisiblePK
+
+
+# --- Sites, units, library -------------------------------------------------------------
+
+
+class SiteSerializer(LedgerModelSerializer):
+    class Meta:
+        model = Site
+        fields = ["id", "code", "name", "due_soon_days", "escalate_share", "escalate_days",
+                  "second_escalation_days", "rate_basis", "confidence_level", "prior_strength"]
+        read_only_fields = fields
+
+
+class UnitSerializer(LedgerModelSerializer):
+    class Meta:
+        model = PlantUnit
+        fields = ["id", "site", "code", "name"]
+        read_only_fields = fields
+
+
+class DeviceTypeSerializer(LedgerModelSerializer):
+    class Meta:
+        model = DeviceType
+        fields = ["id", "name", "role", "lambda_du_per_hour", "lambda_dd_per_hour",
+                  "lambda_s_per_hour", "device_class", "systematic_capability", "source"]
+        read_only_fields = fields
+
+
+# --- Scenarios ----------------------------------------------------------------------------
+
+
+class CauseSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = InitiatingCause
+        fields = ["id", "description", "frequency_per_year", "basis"]
+
+
+class LayerSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = ProtectionLayer
+        fields = ["id", "description", "pfd", "basis"]
+
+
+class ModifierSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = ConditionalModifier
+        fields = ["id", "kind", "probability", "basis"]
+
+
+class ScenarioSerializer(LedgerModelSerializer):
+    causes = CauseSerializer(many=True, read_only=True)
+    layers = LayerSerializer(many=True, read_only=True)
+    modifiers = ModifierSerializer(many=True, read_only=True)
+
+    class Meta:
+        model = HazardScenario
+        fields = ["id", "site", "unit", "reference", "title", "consequence", "category",
+                  "tolerable_frequency_per_year", "causes", "layers", "modifiers"]
+        read_only_fields = fields
+
+
+# --- Design data (changed under change control) -------------------------------------------
+
+
+class DesignSerializer(LedgerModelSerializer):
+    """Design records: a write must say why and under which change request."""
+
+    change_reason = serializers.CharField(write_only=True, max_length=500)
+    change_reference = serializers.CharField(write_only=True, max_length=60)
+    # The parent a record hangs under; set on create, never moved by an update.
+    parent_field: str = ""
+
+    def get_fields(self):
+        fields = super().get_fields()
+        if self.instance is not None and self.parent_field in fields:
+            fields[self.parent_field].read_only = True
+        return fields
+
+
+class SifSerializer(DesignSerializer):
+    parent_field = "unit"
+    site = serializers.IntegerField(source="unit.site_id", read_only=True)
+
+    class Meta:
+        model = SafetyFunction
+        fields = ["id", "unit", "site", "tag", "name", "safe_state", "demand_mode",
+                  "scenarios", "target_pfd_avg", "target_pfh_per_hour", "target_sil",
+                  "process_safety_time_s", "required_response_time_s", "trip_setpoint",
+                  "setpoint_unit", "life_stage", "in_service_on", "owner",
+                  "change_reason", "change_reference"]
+        read_only_fields = ["scenarios", "owner"]
+        validators = []  # uniqueness is checked by full_clean() in the service
+
+
+class SubsystemSerializer(DesignSerializer):
+    parent_field = "sif"
+
+    class Meta:
+        model = Subsystem
+        fields = ["id", "sif", "role", "name", "voting", "beta", "beta_d", "mttr_hours",
+                  "mrt_hours", "position", "change_reason", "change_reference"]
+
+
+class ComponentSerializer(DesignSerializer):
+    parent_field = "subsystem"
+    sif = serializers.IntegerField(source="subsystem.sif_id", read_only=True)
+
+    class Meta:
+        model = Component
+        fields = ["id", "subsystem", "sif", "tag", "device_type", "in_service_on",
+                  "lambda_du_per_hour", "lambda_dd_per_hour", "lambda_s_per_hour",
+                  "proof_test_coverage", "partial_test_coverage", "mission_time_years",
+                  "device_class", "systematic_capability", "data_basis",
+                  "change_reason", "change_reference"]
+        validators = []
+
+
+class TestStepSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = TestStep
+        fields = ["id", "position", "instruction", "measured_quantity", "unit", "criterion",
+                  "target_value", "tolerance", "limit"]
+
+
+class TestPlanSerializer(DesignSerializer):
+    __test__ = False
+    parent_field = "sif"
+    steps = TestStepSerializer(many=True, read_only=True)
+
+    class Meta:
+        model = TestPlan
+        fields = ["id", "sif", "name", "kind", "components", "interval_months", "coverage",
+                  "demand_counts_as_test", "assignee", "next_due_on", "cached_state", "steps",
+                  "change_reason", "change_reference"]
+        read_only_fields = ["components", "assignee", "next_due_on", "cached_state"]
+
+
+# --- Test records -----------------------------------------------------------------------
+
+
+class MeasurementSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = MeasuredValue
+        fields = ["id", "step", "phase", "quantity", "value", "unit", "within_criterion"]
+
+
+class ResultSerializer(serializers.ModelSerializer):
+    component_tag = serializers.CharField(source="component.tag", read_only=True)
+    measurements = MeasurementSerializer(many=True, read_only=True)
+
+    class Meta:
+        model = ComponentResult
+        fields = ["id", "component", "component_tag", "as_found", "as_left", "work_done",
+                  "failure_mode", "failure_description", "measurements"]
+
+
+class TestRecordSerializer(serializers.ModelSerializer):
+    __test__ = False
+    sif_tag = serializers.CharField(source="sif.tag", read_only=True)
+    site = serializers.IntegerField(source="sif.unit.site_id", read_only=True)
+    superseded_by = serializers.SerializerMethodField()
+    results = ResultSerializer(many=True, read_only=True)
+
+    class Meta:
+        model = TestRecord
+        fields = ["id", "sif", "sif_tag", "site", "plan", "kind", "performed_at",
+                  "performed_by", "performed_by_name", "verified_by", "verified_by_name",
+                  "status", "signed_at", "verified_at", "supersedes", "superseded_by",
+                  "correction_reason", "remarks", "client_key", "draft_version", "created_at",
+                  "results"]
+        read_only_fields = fields
+
+    def get_superseded_by(self, obj) -> int | None:
+        later = getattr(obj, "superseded_by", None)
+        return later.pk if later else None
+
+
+class MeasurementInputSerializer(serializers.Serializer):
+    quantity = serializers.CharField(max_length=100)
+    value = serializers.FloatField()
+    phase = serializers.ChoiceField(choices=["found", "left"], default="found")
+    unit = serializers.CharField(max_length=20, required=False, allow_blank=True, default="")
+    step = VisiblePK(queryset=TestStep.objects.all(), required=False, allow_null=True,
+                     default=None)
+
+
+class ResultInputSerializer(serializers.Serializer):
+    component = VisiblePK(queryset=Component.objects.all())
+    as_found = serializers.ChoiceField(choices=choices.Verdict.choices)
+    as_left = serializers.ChoiceField(choices=choices.Verdict.choices)
+    work_done = serializers.CharField(required=False, allow_blank=True, default="")
+    failure_mode = serializers.ChoiceField(choices=choices.FailureMode.choices, required=False,
+                                           allow_blank=True, default="")
+    failure_description = serializers.CharField(required=False, allow_blank=True, default="")
+    measurements = MeasurementInputSerializer(many=True, required=False, default=list)
+
+
+class TestRecordWriteSerializer(serializers.Serializer):
+    """A draft test record: header and component results (replaced as a whole on update)."""
+
+    __test__ = False
+    sif = VisiblePK(queryset=SafetyFunction.objects.all())
+    plan = VisiblePK(queryset=TestPlan.objects.all(), required=False, allow_null=True,
+                     default=None)
+    kind = serializers.ChoiceField(choices=choices.TestKind.choices)
+    performed_at = serializers.DateTimeField()
+    remarks = serializers.CharField(required=False, allow_blank=True, default="")
+    client_key = serializers.CharField(max_length=100, required=False, allow_null=True,
+                                       default=None)
+    results = ResultInputSerializer(many=True)
+    expected_version = serializers.IntegerField(required=False, allow_null=True, default=None,
+                                                min_value=1, max_value=2**31 - 1)
+
+
+class PasswordSerializer(serializers.Serializer):
+    password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256)
+
+
+class CorrectionSerializer(serializers.Serializer):
+    reason = serializers.CharField(max_length=5000)
+
+
+# --- Bulk results from a maintenance system ----------------------------------------------
+
+
+class BulkResultSerializer(serializers.Serializer):
+    component = serializers.IntegerField(required=False, min_value=1, max_value=2**62)
+    component_tag = serializers.CharField(required=False, max_length=40)
+    as_found = serializers.ChoiceField(choices=choices.Verdict.choices)
+    as_left = serializers.ChoiceField(choices=choices.Verdict.choices)
+    work_done = serializers.CharField(required=False, allow_blank=True, default="")
+    failure_mode = serializers.ChoiceField(choices=choices.FailureMode.choices, required=False,
+                                           allow_blank=True, default="")
+    failure_description = serializers.CharField(required=False, allow_blank=True, default="")
+
+    def validate(self, attrs):
+        if not attrs.get("component") and not attrs.get("component_tag"):
+            raise serializers.ValidationError({"component": "Give the component id or tag."})
+        return attrs
+
+
+class BulkItemSerializer(serializers.Serializer):
+    client_key = serializers.CharField(max_length=100)
+    sif = serializers.IntegerField(required=False, min_value=1, max_value=2**62)
+    sif_tag = serializers.CharField(required=False, max_length=40)
+    site = serializers.CharField(required=False, max_length=30,
+                                 help_text="Site code, when the tag alone is ambiguous.")
+    plan = serializers.IntegerField(required=False, allow_null=True, min_value=1,
+                                    max_value=2**62)
+    kind = serializers.ChoiceField(choices=choices.TestKind.choices)
+    performed_at = serializers.DateTimeField()
+    remarks = serializers.CharField(required=False, allow_blank=True, default="")
+    results = BulkResultSerializer(many=True, allow_empty=False)
+
+    def validate(self, attrs):
+        if not attrs.get("sif") and not attrs.get("sif_tag"):
+            raise serializers.ValidationError({"sif": "Give the SIF id or tag."})
+        return attrs
+
+
+class BulkItemOutcomeSerializer(serializers.Serializer):
+    index = serializers.IntegerField()
+    client_key = serializers.CharField()
+    created = serializers.BooleanField()
+    record = TestRecordSerializer()
+
+
+class BulkResponseSerializer(serializers.Serializer):
+    created = serializers.IntegerField()
+    existing = serializers.IntegerField()
+    items = BulkItemOutcomeSerializer(many=True)
+
+
+# --- Operation: demands, bypasses, deferrals --------------------------------------------
+
+
+class DemandSerializer(LedgerModelSerializer):
+    class Meta:
+        model = Demand
+        fields = ["id", "sif", "occurred_at", "successful", "spurious", "description",
+                  "components_exercised", "failed_components", "recorded_by"]
+        read_only_fields = ["recorded_by"]
+
+
+class BypassSerializer(LedgerModelSerializer):
+    class Meta:
+        model = Bypass
+        fields = ["id", "sif", "component", "started_at", "ended_at", "authorised_hours",
+                  "reason", "authorised_by", "compensating_measures", "measures_effective",
+                  "cached_state"]
+        read_only_fields = ["ended_at", "authorised_by", "cached_state"]
+
+
+class CloseBypassSerializer(serializers.Serializer):
+    ended_at = serializers.DateTimeField(required=False, allow_null=True, default=None)
+
+
+class DeferralSerializer(LedgerModelSerializer):
+    due_on = serializers.DateField(required=False, allow_null=True, default=None,
+                                   help_text="Defaults to the plan's current due date.")
+
+    class Meta:
+        model = Deferral
+        fields = ["id", "plan", "due_on", "proposed_on", "reason", "requested_by",
+                  "requested_at", "status", "decided_by", "decided_at", "decision_note",
+                  "projected_pfd_avg"]
+        read_only_fields = ["requested_by", "requested_at", "status", "decided_by",
+                            "decided_at", "decision_note", "projected_pfd_avg"]
+        validators = []
+
+
+class DecideSerializer(serializers.Serializer):
+    approve = serializers.BooleanField()
+    note = serializers.CharField(required=False, allow_blank=True, default="")
+    projected_pfd_avg = serializers.FloatField(required=False, allow_null=True, default=None,
+                                               min_value=0.0, max_value=1.0)
+
+
+# --- Read only ----------------------------------------------------------------------------
+
+
+class AssessmentSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = Assessment
+        fields = ["id", "sif", "computed_at", "as_of", "inputs_digest", "trigger",
+                  "target_pfd_avg", "target_sil", "design_pfd_avg", "design_pfh_per_hour",
+                  "achieved_pfd_avg", "achieved_since_service_pfd_avg", "projected_pfd_avg",
+                  "achieved_sil", "architectural_sil", "systematic_sil", "meets_target",
+                  "rate_basis", "flags", "detail", "error"]
+        read_only_fields = fields
+
+
+class NotificationSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = Notification
+        fields = ["id", "site", "kind", "subject_key", "message", "link", "created_at",
+                  "read_at"]
+        read_only_fields = fields
