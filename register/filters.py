@@ -80,6 +80,7 @@ class SifFilter(df.FilterSet):
                             choices=[("yes", "Meets target"), ("no", "Does not meet"),
                                      ("unknown", "Not calculated")])
     device_type = df.ModelChoiceFilter(queryset=DeviceType.objects.all(), method="by_type",
+                                       field_name="subsystems__components__device_type",
                                        label="Device type", empty_label=ANY)
     plan_state = df.ChoiceFilter(label="Test state", method="by_plan_state", empty_label=ANY,
                                  choices=[

@@ -14,3 +14,4 @@ def scan_task(as_of: str | None = None) -> dict:
     return {"as_of": result.as_of.isoformat(), "plans": len(result.plans),
             "notifications_created": result.notifications_created,
             "counts": dict(result.counts)}
+from .tasks_evidence import *  # noqa

@@ -156,15 +156,24 @@ CELERY_BEAT_SCHEDULE = {
 
 # --- REST framework ----------------------------------------------------------------
 REST_FRAMEWORK = {
+    # Token first, so a request without credentials is answered 401 (with a
+    # WWW-Authenticate header), not 403.
     "DEFAULT_AUTHENTICATION_CLASSES": [
-        "rest_framework.authentication.SessionAuthentication",
         "rest_framework.authentication.TokenAuthentication",
+        "rest_framework.authentication.SessionAuthentication",
     ],
     "DEFAULT_PERMISSION_CLASSES": ["rest_framework.permissions.IsAuthenticated"],
     "DEFAULT_PAGINATION_CLASS": "rest_framework.pagination.PageNumberPagination",
     "PAGE_SIZE": 50,
     "DEFAULT_FILTER_BACKENDS": ["django_filters.rest_framework.DjangoFilterBackend"],
     "DEFAULT_SCHEMA_CLASS": "drf_spectacular.openapi.AutoSchema",
+    "EXCEPTION_HANDLER": "register.api.views.exception_handler",
+    "DEFAULT_THROTTLE_CLASSES": ["rest_framework.throttling.AnonRateThrottle"],
+    # Per process (local-memory cache); "login" guards POST /api/token/ per address.
+    "DEFAULT_THROTTLE_RATES": {
+        "anon": env_str("API_ANON_RATE", "120/min"),
+        "login": env_str("API_LOGIN_RATE", "10/min"),
+    },
 }
 SPECTACULAR_SETTINGS = {
     "TITLE": "SIF Ledger API",
@@ -172,6 +181,18 @@ SPECTACULAR_SETTINGS = {
     "replace, a functional safety assessment by competent persons under IEC 61511 and "
     "local regulations.",
     "VERSION": "0.1.0",
+    "SERVE_PERMISSIONS": ["rest_framework.permissions.IsAuthenticated"],
+    "COMPONENT_SPLIT_REQUEST": True,
+    # Swagger UI files are served by the app itself (no CDN needed).
+    "SWAGGER_UI_DIST": "/api/docs/assets",
+    "SWAGGER_UI_FAVICON_HREF": "/api/docs/assets/favicon-32x32.png",
+    "ENUM_NAME_OVERRIDES": {
+        "VerdictEnum": "register.choices.Verdict",
+        "TestKindEnum": "register.choices.TestKind",
+        "ModifierKindEnum": "register.choices.ModifierKind",
+        "NotificationKindEnum": "register.choices.NotificationKind",
+        "PlanKindEnum": [("full", "Full proof test"), ("partial", "Partial test")],
+    },
 }
 
 LOGGING = {

@@ -157,6 +157,13 @@ def test_list_export_follows_the_filter(client, plant):
     assert resp.status_code == 200 and resp.content[:2] == b"PK"
 
 
+def test_technicians_do_not_export(client, plant):
+    client.force_login(plant["tech"])
+    assert client.get("/sifs/export.csv").status_code == 403
+    assert client.get("/sifs/").status_code == 200
+    assert "Export this list" not in client.get("/sifs/").content.decode()
+
+
 def _page_queries(client, url):
     with CaptureQueriesContext(connection) as ctx:
         assert client.get(url).status_code == 200

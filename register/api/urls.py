@@ -1,0 +1,42 @@
+"""Routes of the API, its schema and its documentation page (served without internet)."""
+
+from pathlib import Path
+
+import drf_spectacular_sidecar
+from django.urls import include, path
+from django.views.static import serve
+from drf_spectacular.views import SpectacularAPIView, SpectacularSwaggerView
+from rest_framework.routers import DefaultRouter
+
+from . import views
+
+router = DefaultRouter()
+router.register("sites", views.SiteViewSet, basename="site")
+router.register("units", views.UnitViewSet, basename="unit")
+router.register("scenarios", views.ScenarioViewSet, basename="scenario")
+router.register("sifs", views.SifViewSet, basename="sif")
+router.register("subsystems", views.SubsystemViewSet, basename="subsystem")
+router.register("components", views.ComponentViewSet, basename="component")
+router.register("device-types", views.DeviceTypeViewSet, basename="device-type")
+router.register("test-plans", views.TestPlanViewSet, basename="test-plan")
+router.register("test-records", views.TestRecordViewSet, basename="test-record")
+router.register("demands", views.DemandViewSet, basename="demand")
+router.register("bypasses", views.BypassViewSet, basename="bypass")
+router.register("deferrals", views.DeferralViewSet, basename="deferral")
+router.register("assessments", views.AssessmentViewSet, basename="assessment")
+router.register("notifications", views.NotificationViewSet, basename="notification")
+
+SWAGGER_ASSETS = Path(drf_spectacular_sidecar.__file__).parent / "static" / \
+    "drf_spectacular_sidecar" / "swagger-ui-dist"
+
+app_name = "api"
+
+urlpatterns = [
+    path("token/", views.ObtainToken.as_view(), name="token"),
+    path("test-results/bulk/", views.BulkTestResults.as_view(), name="bulk-results"),
+    path("schema/", SpectacularAPIView.as_view(), name="schema"),
+    path("docs/", SpectacularSwaggerView.as_view(url_name="api:schema"), name="docs"),
+    path("docs/assets/<path:path>", serve, {"document_root": SWAGGER_ASSETS},
+         name="docs-assets"),
+    path("", include(router.urls)),
+]
