@@ -257,8 +257,8 @@ class _Builder:
         last = add_months(next_due, -interval)
         dates = [last]
         while True:
-            jitter = rng.randint(-20, 15)
-            if rng.random() < 0.12:
+            jitter = rng.randint(-25, 3)  # mostly a little early, as sites plan
+            if rng.random() < 0.10:
                 jitter = rng.randint(30, 110)  # a late test
             previous = add_months(dates[-1], -interval) - dt.timedelta(days=jitter)
             if previous <= in_service + dt.timedelta(days=60):
@@ -340,7 +340,7 @@ class _Builder:
                 services.sign_record(rec, tech, None, check_password=False, signed_at=when)
                 services.verify_record(rec, self.people["verifier"], None,
                                        check_password=False, verified_at=when)
-            day = add_months(day, 6) + dt.timedelta(days=rng.randint(-10, 20))
+            day = add_months(day, 6) + dt.timedelta(days=rng.randint(-15, 3))
         del last_full
 
     # -- demands, bypasses, deferrals ------------------------------------------------------

@@ -344,7 +344,7 @@ def _overdue(out, per_sif, ids, plan_sif, start, end):
                                    "worst_state": st.state})
     for plan_id, rows in spans.items():
         for row in rows:
-            row["worst_state"] = choices.PlanState(row["worst_state"]).label
+            row["worst_state"] = str(choices.PlanState(row["worst_state"]).label)
             per_sif[plan_sif[plan_id]]["overdue"].append(row)
 
 
@@ -704,9 +704,9 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
     h1 = ParagraphStyle("h1", parent=base, fontName="DejaVu-Bold", fontSize=15, leading=19,
                         spaceAfter=6)
     h2 = ParagraphStyle("h2", parent=base, fontName="DejaVu-Bold", fontSize=11.5, leading=14,
-                        spaceBefore=4, spaceAfter=4)
+                        spaceBefore=4, spaceAfter=4, keepWithNext=1)
     h3 = ParagraphStyle("h3", parent=base, fontName="DejaVu-Bold", fontSize=9.5, leading=12,
-                        spaceBefore=6, spaceAfter=2)
+                        spaceBefore=6, spaceAfter=2, keepWithNext=1)
     caution = ParagraphStyle("caution", parent=base, fontSize=9.5, leading=12.5,
                              borderColor=colors.black, borderWidth=1, borderPadding=6,
                              spaceBefore=8, spaceAfter=10)
@@ -719,7 +719,7 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
         if not rows:
             return [Paragraph(_esc(empty), base)]
         data = [[Paragraph(f"<b>{_esc(h)}</b>", small) for h in header]]
-        data += [[c if not isinstance(c, str) else P(c) for c in r] for r in rows]
+        data += [[P(c) if isinstance(c, str) or c is None else c for c in r] for r in rows]
         t = Table(data, colWidths=[w * width for w in widths], repeatRows=1)
         t.setStyle(TableStyle([
             ("GRID", (0, 0), (-1, -1), 0.4, colors.black),
@@ -911,7 +911,7 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
                         for d in e["deferrals"]],
                        [0.14, 0.1, 0.1, 0.24, 0.17, 0.25])
         story.append(Paragraph("Overdue periods", h2))
-        story += table(["Plan", "Due on", "Overdue from (month end)", "Still overdue at",
+        story += table(["Plan", "Due on", "First seen overdue (month end)", "Last seen overdue",
                         "Max days overdue", "Worst state"],
                        [[o["plan"], o["due_on"] + (" (deferred)" if o["deferred"] else ""),
                          o["first_seen_overdue"], o["last_seen_overdue"],
