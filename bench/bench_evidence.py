@@ -82,14 +82,14 @@ def main() -> int:
     with CaptureQueriesContext(connection) as queries:
         path = evidence.build(pack, progress)
     total = time.perf_counter() - t
-    shown = set()
-    for percent, text, secs in stages:
-        key = text.split(" ")[0] if text.startswith("Charts") or text.startswith("Writing") \
-            else text
-        if key in shown and not text.endswith(f"{args.sifs} of {args.sifs}"):
-            continue
-        shown.add(key)
-        print(f"  {percent:3d} %  {text:<50s} +{secs:.2f} s")
+    end_of_build = time.perf_counter()
+    totals: dict[str, float] = {}
+    for _, text, secs in stages:
+        key = "Charts and achieved PFDavg per SIF" if text.startswith("Charts") else text
+        totals[key] = totals.get(key, 0.0) + secs
+    totals["Zip and manifest"] = end_of_build - last[0]
+    for key, secs in totals.items():
+        print(f"  {key:<50s} {secs:7.2f} s")
     data = path.read_bytes()
     with zipfile.ZipFile(io.BytesIO(data)) as zf:
         pdf = zf.read("report.pdf")

@@ -14,7 +14,7 @@ from django.utils.translation import gettext_lazy as _
 
 from .models import PlantUnit, SafetyFunction, Site, SiteScopedQuerySet
 
-__all__ = ["ChainHead", "ChainEntry", "ChainAppendOnlyError", "EvidencePack"]
+__all__ = ["ChainAppendOnlyError", "ChainEntry", "ChainHead", "EvidencePack"]
 
 GENESIS_HASH = "0" * 64
 
@@ -151,4 +151,4 @@ class EvidencePack(models.Model):
 
 
 # Connect the chain to django-simple-history (and register the read-only admin).
-from . import audit  # noqa: E402,F401
+from . import audit  # noqa: F401

@@ -1,6 +1,7 @@
 """The change chain: one entry per history row, verification, and tamper detection."""
 
 import datetime as dt
+import itertools
 
 import pytest
 from django.core.management import call_command
@@ -50,7 +51,7 @@ def _record(sif, tech, verifier):
 
 
 def test_every_service_write_leaves_exactly_one_entry_per_history_row(plant):
-    s, sif, lead, tech, verifier = plant
+    _s, sif, lead, tech, verifier = plant
     before_entries = ChainEntry.objects.count()
     before_rows = _history_row_count()
     assert before_entries == before_rows > 0  # factory writes are chained too
@@ -80,7 +81,7 @@ def test_every_service_write_leaves_exactly_one_entry_per_history_row(plant):
     # Links: each entry points at the previous one's hash; the head names the last.
     seqs = list(ChainEntry.objects.order_by("seq"))
     assert [e.seq for e in seqs] == list(range(1, len(seqs) + 1))
-    for a, b2 in zip(seqs, seqs[1:]):
+    for a, b2 in itertools.pairwise(seqs):
         assert b2.prev_hash == a.entry_hash
     head = ChainHead.objects.get()
     assert (head.last_seq, head.last_hash) == (seqs[-1].seq, seqs[-1].entry_hash)

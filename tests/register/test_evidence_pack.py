@@ -178,7 +178,7 @@ def two_sites():
 
 
 def test_pack_download_is_checked_per_site(client, two_sites):
-    a, b, sif, people, pack = two_sites
+    _a, _b, sif, people, pack = two_sites
     url = reverse("audit:pack_download", args=[pack.pk])
     for who in ("tech_b", "auditor_b", "tech_a"):
         client.force_login(people[who])
@@ -192,7 +192,7 @@ def test_pack_download_is_checked_per_site(client, two_sites):
 
 
 def test_who_may_ask_for_a_pack(client, two_sites, django_capture_on_commit_callbacks):
-    a, b, sif, people, _ = two_sites
+    a, _b, _sif, people, _ = two_sites
     today = timezone.localdate()
     form = {"scope": "site", "site": a.pk, "period_start": "2025-01-01",
             "period_end": today.isoformat()}
@@ -245,3 +245,20 @@ def test_as_of_view_shows_the_sif_as_it_was(client):
     outsider = f.user("out_x", site=f.site(), role=choices.Role.AUDITOR)
     client.force_login(outsider)
     assert client.get(url, {"date": "2024-06-01"}).status_code == 403
+
+
+def test_evidence_pack_command(two_sites, tmp_path, capsys):
+    from django.core.management import call_command
+    from django.core.management.base import CommandError
+
+    _a, _, sif, _people, _ = two_sites
+    out = tmp_path / "copy.zip"
+    call_command("evidence_pack", site="alpha", sif=sif.tag, start="2025-01-01",
+                 end=timezone.localdate().isoformat(), user="auditor_a", out=str(out))
+    pack = EvidencePack.objects.latest("id")
+    assert pack.scope == "sif" and pack.status == "done"
+    assert hashlib.sha256(out.read_bytes()).hexdigest() == pack.result_sha256
+    assert pack.result_sha256 in capsys.readouterr().out
+    with pytest.raises(CommandError):
+        call_command("evidence_pack", site="alpha", start="2025-01-01", end="2025-06-01",
+                     user="tech_a")
