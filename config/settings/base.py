@@ -137,6 +137,9 @@ CELERY_BROKER_TRANSPORT_OPTIONS = (
     if CELERY_BROKER_URL.startswith("filesystem")
     else {}
 )
+for _folder in ("queue", "control", "processed"):
+    if CELERY_BROKER_URL.startswith("filesystem"):
+        (_broker_dir / _folder).mkdir(parents=True, exist_ok=True)
 # Periodic work: the due-date scan and the nightly recompute. Periods in seconds,
 # overridable from the environment.
 SCAN_PERIOD_SECONDS = env_int("SCAN_PERIOD_SECONDS", 15 * 60)
