@@ -363,8 +363,42 @@ class TypeStats:
     stats: eng_field.DeviceTypeStats
 
 
+def _stats_fingerprint() -> tuple:
+    """Changes whenever a record that feeds the field statistics is written through the
+    app: the newest history row of sites (confidence level, prior strength), components,
+    test records, results and demands (index lookups). Rows bulk-inserted without history
+    (synthetic benchmark data) are not seen, which is why the cache key also carries the
+    date and entries expire after an hour."""
+    from django.db.models import Max
+
+    from register.models import Site, TestRecord
+
+    return tuple(model.history.aggregate(m=Max("history_id"))["m"]
+                 for model in (Site, Component, TestRecord, ComponentResult, Demand))
+
+
 def device_type_stats(site_id: int | None, as_of: dt.date,
                       type_ids: set[int] | None = None) -> dict[int, TypeStats]:
+    """As :func:`compute_device_type_stats`, cached until a relevant record changes.
+
+    The pooled statistics cover the whole plant, so computing them dominates the
+    recompute of a single SIF; the cache makes that recompute cheap.
+    """
+    from django.core.cache import cache
+
+    key = "ledger:typestats:" + hashlib.sha256(repr((
+        site_id, as_of.isoformat(), sorted(type_ids) if type_ids is not None else None,
+        _stats_fingerprint())).encode()).hexdigest()
+    found = cache.get(key)
+    if found is not None:
+        return found
+    stats = compute_device_type_stats(site_id, as_of, type_ids)
+    cache.set(key, stats, 3600)
+    return stats
+
+
+def compute_device_type_stats(site_id: int | None, as_of: dt.date,
+                              type_ids: set[int] | None = None) -> dict[int, TypeStats]:
     """Dangerous undetected failures found by tests and demands over cumulative service
     time, per device type, plant-wide (one site, or all sites when ``site_id`` is None),
     optionally only for ``type_ids``. Aggregated in the database: four queries whose

@@ -47,14 +47,6 @@ FORMS = {"component": (Component, ComponentChangeForm),
          "plan": (TestPlan, PlanChangeForm)}
 
 
-class DeferralDecisionForm(forms.Form):
-    decision = forms.ChoiceField(choices=[("approve", "Approve"), ("reject", "Reject")],
-                                 widget=forms.RadioSelect)
-    note = forms.CharField(label="Decision note", required=False,
-                           widget=forms.Textarea(attrs={"rows": 2}),
-                           help_text="Required when rejecting.")
-
-
 class ImportForm(forms.Form):
     site = forms.ModelChoiceField(queryset=Site.objects.none())
     file = forms.FileField(label="Spreadsheet (.xlsx or .csv)")

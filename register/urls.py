@@ -12,6 +12,5 @@ urlpatterns = [
     path("sifs/<int:pk>/chart/<str:which>.svg", views.sif_chart, name="sif_chart"),
     path("tests/<int:pk>/", views.test_detail, name="test_detail"),
     path("design/<str:kind>/<int:pk>/edit/", views_lead.edit_design, name="edit_design"),
-    path("deferrals/<int:pk>/decide/", views_lead.decide_deferral, name="decide_deferral"),
     path("import/", views_lead.import_sheet, name="import"),
 ]

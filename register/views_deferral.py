@@ -13,6 +13,7 @@ from django.core.exceptions import PermissionDenied, ValidationError
 from django.http import Http404
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
+from django.utils.http import url_has_allowed_host_and_scheme
 
 from calcs.adapter import deferral_projection
 from calcs.engine.errors import EngineError
@@ -100,6 +101,9 @@ def decide(request, pk):
             return render(request, "register/deferral_decide.html",
                           {"deferral": deferral, "projection": projection}, status=400)
         messages.success(request, f"Deferral {'approved' if approve else 'rejected'}.")
+        back = request.POST.get("next", "")
+        if back and url_has_allowed_host_and_scheme(back, allowed_hosts={request.get_host()}):
+            return redirect(back)
         return redirect("deferrals:list")
     return render(request, "register/deferral_decide.html",
                   {"deferral": deferral, "projection": projection,

@@ -12,8 +12,6 @@ from django.core.exceptions import PermissionDenied, ValidationError
 from django.http import Http404
 from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
-from django.utils import timezone
-from django.views.decorators.http import require_POST
 
 from calcs import adapter
 from calcs.engine import design as eng_design
@@ -21,8 +19,8 @@ from calcs.engine.errors import EngineError
 from calcs.engine.sil import sil_from_pfd
 
 from . import choices, services, spreadsheet
-from .forms import FORMS, DeferralDecisionForm, ImportForm
-from .models import Deferral, SafetyFunction, Site
+from .forms import FORMS, ImportForm
+from .models import SafetyFunction, Site
 from .permissions import Action, can, require
 from .views import list_url
 
@@ -100,35 +98,6 @@ def edit_design(request, kind, pk):
         "before_sil": None if isinstance(before, Exception) else sil_from_pfd(before.pfd_avg),
         "preview": preview,
     })
-
-
-@login_required
-@require_POST
-def decide_deferral(request, pk):
-    deferral = get_object_or_404(Deferral.objects.for_user(request.user).select_related(
-        "plan__sif__unit__site"), pk=pk)
-    require(request.user, Action.DECIDE_DEFERRAL, deferral.plan.sif.unit.site_id)
-    back = reverse("register:sif_detail", args=[deferral.plan.sif_id]) + "#deferrals"
-    form = DeferralDecisionForm(request.POST)
-    if not form.is_valid():
-        messages.error(request, "Choose approve or reject.")
-        return redirect(back)
-    projected = None
-    try:
-        cmp, _ = adapter.deferral_projection(deferral.plan, deferral.proposed_on,
-                                             timezone.now())
-        projected = cmp.deferred.pfd_avg
-    except EngineError:
-        projected = None
-    try:
-        services.decide_deferral(deferral, request.user,
-                                 approve=form.cleaned_data["decision"] == "approve",
-                                 note=form.cleaned_data["note"], projected_pfd_avg=projected)
-    except ValidationError as exc:
-        messages.error(request, " ".join(exc.messages))
-    else:
-        messages.success(request, f"Deferral {form.cleaned_data['decision']}d.")
-    return redirect(back)
 
 
 SESSION_KEY = "register_import"

@@ -32,3 +32,13 @@ def browser_type_launch_args(browser_type_launch_args):
         "args": ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run"],
     }
+
+
+@pytest.fixture(autouse=True)
+def _fresh_cache():
+    """Each test starts with an empty cache (cached statistics are keyed by history ids,
+    which a rolled-back test may reuse)."""
+    from django.core.cache import cache
+
+    cache.clear()
+    yield

@@ -316,14 +316,16 @@ def test_lead_decides_a_deferral_with_the_projection(client, plant):
     client.force_login(plant["lead"])
     page = client.get(reverse("register:sif_detail", args=[plant["overdue"].pk])).content
     assert b"test on the proposed date" in page
-    resp = client.post(reverse("register:decide_deferral", args=[deferral.pk]),
-                       {"decision": "approve", "note": ""})
+    resp = client.post(reverse("deferrals:decide", args=[deferral.pk]),
+                       {"decision": "approve", "note": "",
+                        "next": f"/sifs/{plant['overdue'].pk}/#deferrals"})
     assert resp.status_code == 302
+    assert resp.url == f"/sifs/{plant['overdue'].pk}/#deferrals"  # back to the SIF page
     deferral.refresh_from_db()
     assert deferral.status == choices.DeferralStatus.APPROVED
     assert deferral.projected_pfd_avg and deferral.projected_pfd_avg > 0
     client.force_login(plant["tech"])
     other = services.request_deferral(user=plant["tech"], plan=plant["soon"].plans.get(),
                                       proposed_on=TODAY + dt.timedelta(days=90), reason="x")
-    assert client.post(reverse("register:decide_deferral", args=[other.pk]),
+    assert client.post(reverse("deferrals:decide", args=[other.pk]),
                        {"decision": "approve"}).status_code == 403

@@ -135,3 +135,16 @@ def test_demo_load_is_idempotent(db):
     states = set(__import__("register.models", fromlist=["x"]).TestPlan.objects.values_list(
         "cached_state", flat=True))
     assert {"due_soon", "overdue", "escalated", "escalated_2"} <= states
+
+
+def test_cached_field_statistics_follow_a_new_failure(plant):
+    from calcs.adapter import device_type_stats
+
+    s, u, tech, _ = plant
+    sif = f.sif(u, in_service=dt.date(2022, 1, 1))
+    today = timezone.localdate()
+    valve = Component.objects.filter(subsystem__sif=sif, subsystem__role="final").first()
+    before = device_type_stats(s.pk, today)[valve.device_type_id].stats.failures
+    assert device_type_stats(s.pk, today)[valve.device_type_id].stats.failures == before
+    _full_test(sif, tech, timezone.now() - dt.timedelta(days=3), fail_tag=valve.tag)
+    assert device_type_stats(s.pk, today)[valve.device_type_id].stats.failures == before + 1
