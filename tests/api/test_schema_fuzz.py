@@ -24,6 +24,21 @@ pytestmark = pytest.mark.django_db
 EXAMPLES = 8
 
 
+@pytest.fixture(autouse=True)
+def _keep_test_connection():
+    """Requests go straight to the WSGI application, which closes database connections
+    at the end of each request; the test's connection holds its transaction, so keep it
+    open as Django's own test client does."""
+    from django.core.signals import request_finished, request_started
+    from django.db import close_old_connections
+
+    request_started.disconnect(close_old_connections)
+    request_finished.disconnect(close_old_connections)
+    yield
+    request_started.connect(close_old_connections)
+    request_finished.connect(close_old_connections)
+
+
 def test_no_server_error_and_responses_conform():
     world = build_world()
     token = Token.objects.create(user=world.users["lead"])
