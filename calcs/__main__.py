@@ -55,7 +55,7 @@ def main(argv: list[str] | None = None) -> int:
         return _fail(f"{exc.field}: {exc.message}")
     except RecursionError:
         return _fail(f"{label}: the case is nested too deeply")
-    except Exception as exc:  # noqa: BLE001 - never show a traceback to a command-line user
+    except Exception as exc:
         return _fail(f"internal error while evaluating the case: {type(exc).__name__}: {exc}", 1)
     try:
         output = json.dumps(result, indent=2, allow_nan=False)

@@ -545,7 +545,7 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         flags.extend(last12.flags)
         if due_on:
             due_at = max(_aware(due_on), end)
-            full_t1 = min((s.proof_test_interval_hours for s in design.subsystems))
+            full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
             proj = eng_hist.projection(history_input(d, rates, assume_closed_after=end), end,
                                        due_at, interval_hours=full_t1)
             a.projected_pfd_avg = proj.pfd_avg
@@ -640,7 +640,7 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
         try:
             out.append(assess(d, as_of, rates[sid], stats_by_site[sid],
                               due_on=dues.get(d.sif.pk), trigger=trigger))
-        except Exception as exc:  # noqa: BLE001 - keep the nightly run going
+        except Exception as exc:
             log.exception("assessment of %s failed", d.sif.tag)
             out.append(Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
                                   trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",

@@ -2,8 +2,8 @@
 
 from celery import shared_task
 
-from register.models import SafetyFunction
 from register import choices
+from register.models import SafetyFunction
 
 
 @shared_task(name="calcs.recompute_sif", acks_late=True)

@@ -178,7 +178,7 @@ class _Builder:
         self.record(sif, None, choices.TestKind.VALIDATION, in_service, components, rng,
                     setpoint, tpl, fail_rate=0.0)
         hot = entry["tag"] == "U10-SIF-101"  # a SIF whose valve keeps failing
-        for n, day in enumerate(dates):
+        for day in dates:
             recent = day > self.today - dt.timedelta(days=3 * 365)
             self.record(sif, full_plan, choices.TestKind.FULL, day, components, rng, setpoint,
                         tpl, fail_rate=0.006, force_fail=finals[0] if hot and recent else None)

@@ -508,8 +508,8 @@ class Component(models.Model):
         return self.tag
 
     def clean(self):
-        if self.partial_test_coverage is not None and self.proof_test_coverage is not None:
-            if self.partial_test_coverage > self.proof_test_coverage:
+        if (self.partial_test_coverage is not None and self.proof_test_coverage is not None
+                and self.partial_test_coverage > self.proof_test_coverage):
                 raise ValidationError({"partial_test_coverage": _(
                     "A partial test cannot reveal more than the full proof test "
                     "(%(full)g).") % {"full": self.proof_test_coverage}})
@@ -1084,4 +1084,4 @@ class Notification(models.Model):
 
     def __str__(self):
         return self.message[:80]
-from .models_audit import *  # noqa: E402,F401,F403
+from .models_audit import *  # noqa: E402, F403

@@ -151,4 +151,4 @@ class EvidencePack(models.Model):
 
 
 # Connect the chain to django-simple-history (and register the read-only admin).
-from . import audit  # noqa: F401
+from . import audit  # noqa: E402,F401

@@ -328,7 +328,7 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
                     changes = [f"{c.field}: {c.old} → {c.new}"
                                if not isinstance(c.new, list) else f"{c.field} changed"
                                for c in delta.changes]
-                except Exception:  # noqa: BLE001 - a schema change in history; show the entry
+                except Exception:
                     changes = []
             previous[rec.id] = rec
             name = getattr(rec, "tag", None) or getattr(rec, "name", "")

@@ -2,7 +2,7 @@
 
 from django.core.exceptions import ImproperlyConfigured
 
-from .base import *  # noqa: F401,F403
+from .base import *  # noqa: F403
 from .base import SECRET_KEY
 from .env import env_bool, env_int, env_list
 

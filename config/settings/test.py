@@ -1,6 +1,6 @@
 """Settings for the test suite: fast hashing, in-memory mail, eager tasks unless told otherwise."""
 
-from .base import *  # noqa: F401,F403
+from .base import *  # noqa: F403
 from .env import env_bool
 
 PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]

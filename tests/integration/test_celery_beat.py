@@ -65,10 +65,11 @@ def test_beat_scan_on_real_worker_sends_one_notification_per_change(tmp_path):
            "DJANGO_SETTINGS_MODULE": "config.settings.base",
            "SIF_LEDGER_VAR_DIR": str(tmp_path), "EMAIL_BACKEND":
            "django.core.mail.backends.locmem.EmailBackend"}
+    log_file = open(tmp_path / "worker.log", "w")  # noqa: SIM115 - closed in finally
     worker = subprocess.Popen(
         [sys.executable, "-m", "celery", "-A", "config", "worker", "-B", "--concurrency=1",
          "--loglevel=INFO", f"--schedule={tmp_path / 'beat-schedule'}"],
-        cwd=ROOT, env=env, stdout=open(tmp_path / "worker.log", "w"), stderr=subprocess.STDOUT,
+        cwd=ROOT, env=env, stdout=log_file, stderr=subprocess.STDOUT,
         start_new_session=True)
     try:
         deadline = time.time() + 90
@@ -90,3 +91,4 @@ def test_beat_scan_on_real_worker_sends_one_notification_per_change(tmp_path):
     finally:
         os.killpg(worker.pid, signal.SIGTERM)
         worker.wait(timeout=30)
+        log_file.close()

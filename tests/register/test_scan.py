@@ -103,3 +103,20 @@ def test_command_as_of_a_past_date_reports_without_writing(capsys):
     out = capsys.readouterr().out
     assert '"as_of": "2020-03-01"' in out
     assert Notification.objects.count() == 0
+
+
+def test_a_scan_cut_off_half_way_is_completed_by_the_next_without_duplicates():
+    """A worker killed after writing some notifications: the next scan adds only the
+    missing ones."""
+    _plant(4)
+    first = scan()
+    every = list(Notification.objects.order_by("id").values_list("recipient_id", "subject_key"))
+    assert len(every) == first.notifications_created >= 4
+    # Lose the second half, as if the run had stopped before writing them.
+    Notification.objects.filter(pk__in=list(Notification.objects.order_by("id")
+                                            .values_list("pk", flat=True))[len(every) // 2:]
+                                ).delete()
+    again = scan()
+    assert again.notifications_created == len(every) - len(every) // 2
+    assert sorted(Notification.objects.values_list("recipient_id", "subject_key")) == \
+        sorted(every)

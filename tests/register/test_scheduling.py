@@ -3,6 +3,7 @@
 import datetime as dt
 
 import pytest
+from django.core.exceptions import PermissionDenied, ValidationError
 from django.utils import timezone
 
 from register import choices, services
@@ -114,7 +115,7 @@ def test_deferral_approved_moves_due_once_and_an_early_test_resets(plant):
     due = status_of(plan, today).due_on
     d = services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=40),
                                   reason="turnaround")
-    with pytest.raises(Exception):
+    with pytest.raises(PermissionDenied):
         services.decide_deferral(d, tech, approve=True)  # technicians cannot decide
     services.decide_deferral(d, lead, approve=True, note="accepted")
     st = status_of(plan, today)
@@ -122,7 +123,7 @@ def test_deferral_approved_moves_due_once_and_an_early_test_resets(plant):
     # A second deferral of the same due date cannot be approved.
     d2 = services.request_deferral(user=tech, plan=plan, due_on=due,
                                    proposed_on=due + dt.timedelta(days=80), reason="again")
-    with pytest.raises(Exception):
+    with pytest.raises(ValidationError, match="deferred once"):
         services.decide_deferral(d2, lead, approve=True)
     # The test done early, before the deferred date: the next due date follows the test.
     done = min(today, due + dt.timedelta(days=10))
