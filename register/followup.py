@@ -26,10 +26,30 @@ def suspended():
 
 
 def after_test_change(sif_id: int) -> None:
-    """A test, demand, bypass or design change touched this SIF."""
+    """A test, demand, bypass or design change touched this SIF.
+
+    Several changes to the same SIF in one transaction (a bulk post, a sign then a
+    verify) lead to one refresh after the commit.
+    """
     if _suspended.get():
         return
-    transaction.on_commit(lambda: _refresh_sif(sif_id))
+    connection = transaction.get_connection()
+    state = getattr(connection, "_ledger_pending", None)
+    if state is not None and connection.in_atomic_block and any(
+            entry[1] is state[1] for entry in connection.run_on_commit):
+        state[0].add(sif_id)  # a refresh is already registered for this transaction
+        return
+    pending = {sif_id}
+
+    def run():
+        if getattr(connection, "_ledger_pending", None) is state_now:
+            connection._ledger_pending = None
+        for pending_id in sorted(pending):
+            _refresh_sif(pending_id)
+
+    state_now = (pending, run)
+    connection._ledger_pending = state_now
+    transaction.on_commit(run)
 
 
 def after_plan_change(plan_id: int) -> None:

@@ -120,3 +120,37 @@ def test_a_scan_cut_off_half_way_is_completed_by_the_next_without_duplicates():
     assert again.notifications_created == len(every) - len(every) // 2
     assert sorted(Notification.objects.values_list("recipient_id", "subject_key")) == \
         sorted(every)
+
+
+def test_changes_in_one_transaction_refresh_the_sif_once(django_capture_on_commit_callbacks):
+    from django.db import transaction
+
+    from register import followup
+
+    s, lead, owner = _plant(2)
+    sifs = list(TestPlan.objects.filter(sif__unit__site=s).values_list("sif_id", flat=True))
+    with django_capture_on_commit_callbacks() as callbacks:
+        with transaction.atomic():
+            followup.after_test_change(sifs[0])
+            followup.after_test_change(sifs[0])
+            followup.after_test_change(sifs[1])
+    assert len(callbacks) == 1
+
+
+def test_a_rolled_back_change_leaves_no_stale_refresh_behind(django_capture_on_commit_callbacks):
+    from django.db import transaction
+
+    from register import followup
+
+    s, lead, owner = _plant(2)
+    sifs = list(TestPlan.objects.filter(sif__unit__site=s).values_list("sif_id", flat=True))
+    try:
+        with transaction.atomic():
+            followup.after_test_change(sifs[0])
+            raise RuntimeError
+    except RuntimeError:
+        pass
+    with django_capture_on_commit_callbacks() as callbacks:
+        with transaction.atomic():
+            followup.after_test_change(sifs[1])
+    assert len(callbacks) == 1
