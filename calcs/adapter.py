@@ -63,6 +63,7 @@ class TestRow:
     kind: str  # engine kind: full / partial / demand
     failed: bool
     record_id: int | None = None
+    credited: bool = True  # a demand reveals failures only where a plan credits demands
 
 
 @dataclass
@@ -144,12 +145,16 @@ def load(sif_queryset) -> list[SifData]:
     )
     kind_map = {choices.TestKind.FULL: "full", choices.TestKind.VALIDATION: "full",
                 choices.TestKind.PARTIAL: "partial", choices.TestKind.DEMAND: "demand"}
+    credits_demands = {sif_id: any(p.demand_counts_as_test for p in d.plans)
+                       for sif_id, d in data.items()}
     for comp_id, at, kind, mode, as_found, record_id in rows.iterator(chunk_size=5000):
         cd = comp_of.get(comp_id)
         if cd is None:
             continue
         failed = as_found == choices.Verdict.FAIL and mode == choices.FailureMode.DANGEROUS_UNDETECTED
-        cd.events.append(TestRow(at, kind_map[kind], failed, record_id))
+        credited = kind != choices.TestKind.DEMAND or credits_demands[
+            sub_sif[cd.obj.subsystem_id]]
+        cd.events.append(TestRow(at, kind_map[kind], failed, record_id, credited))
     for cd in comp_of.values():
         cd.events.sort(key=lambda e: e.at)
     return [data[s.pk] for s in sifs]
@@ -317,10 +322,13 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
                 lambda_du=rates.lambda_du(c), lambda_dd=c.lambda_dd, mttr_hours=sub.mttr_hours,
                 mrt_hours=sub.mrt_hours, proof_test_coverage=c.proof_test_coverage,
                 partial_test_coverage=c.partial_test_coverage, in_service=_aware(c.in_service_on),
-                tests=tuple(eng_hist.TestEvent(at=e.at, kind=e.kind, failed=e.failed,
-                                               coverage=c.proof_test_coverage
-                                               if e.kind == "demand" else None)
-                            for e in cd.events),
+                tests=tuple(eng_hist.TestEvent(
+                    at=e.at, kind=e.kind, failed=e.failed,
+                    # A credited demand exercises the device like a full test; otherwise
+                    # it reveals only the failure it found.
+                    coverage=(c.proof_test_coverage if e.credited else 0.0)
+                    if e.kind == "demand" else None)
+                    for e in cd.events),
             ))
         groups.append(eng_hist.Group(name=sub.name, voting=sub.voting, beta=sub.beta,
                                      beta_d=sub.beta_d, channels=tuple(channels)))

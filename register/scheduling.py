@@ -162,6 +162,8 @@ def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
     result = {}
     for plan in plans:
         kinds = PARTIAL_CREDIT if plan.kind == choices.TestKind.PARTIAL else FULL_CREDIT
+        if plan.demand_counts_as_test:
+            kinds = (*kinds, choices.TestKind.DEMAND)  # a demand logged as a test record
         comps = named.get(plan.pk) or comps_of_sif.get(plan.sif_id, [])
         credits = []
         for comp_id in comps:

@@ -148,3 +148,21 @@ def test_cached_field_statistics_follow_a_new_failure(plant):
     assert device_type_stats(s.pk, today)[valve.device_type_id].stats.failures == before
     _full_test(sif, tech, timezone.now() - dt.timedelta(days=3), fail_tag=valve.tag)
     assert device_type_stats(s.pk, today)[valve.device_type_id].stats.failures == before + 1
+
+
+def test_a_demand_record_lowers_the_achieved_pfd_only_where_credited(plant):
+    from register.models import TestPlan
+
+    s, u, tech, _ = plant
+    sif = f.sif(u, in_service=(timezone.now() - dt.timedelta(days=700)).date())
+    results = [services.ResultInput(component=c, as_found="pass", as_left="pass")
+               for c in Component.objects.filter(subsystem__sif=sif)]
+    rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.DEMAND,
+                              results=results,
+                              performed_at=timezone.now() - dt.timedelta(days=200))
+    services.sign_record(rec, tech, f.PASSWORD)
+    qs = SafetyFunction.objects.filter(pk=sif.pk)
+    not_credited = recompute_many(qs, trigger="t")[0].achieved_pfd_avg
+    TestPlan.objects.filter(sif=sif).update(demand_counts_as_test=True)
+    credited = recompute_many(qs, trigger="t")[0].achieved_pfd_avg
+    assert credited < not_credited

@@ -146,3 +146,13 @@ def test_successful_demand_counts_only_where_plan_allows_and_for_exercised_parts
     services.record_demand(user=tech, sif=sif, occurred_at=when + dt.timedelta(hours=1),
                            successful=True, description="trip", components_exercised=comps)
     assert status_of(plan, dt.date(2025, 2, 1)).due_on == dt.date(2026, 1, 10)
+
+
+def test_a_demand_logged_as_a_test_record_counts_only_where_the_plan_allows(plant):
+    sif, tech, _ = plant
+    plan = TestPlan.objects.get(sif=sif)
+    _test(sif, tech, dt.date(2025, 1, 10), kind=choices.TestKind.DEMAND)
+    assert status_of(plan, dt.date(2025, 2, 1)).due_on == dt.date(2025, 1, 15)
+    plan.demand_counts_as_test = True
+    plan.save()
+    assert status_of(plan, dt.date(2025, 2, 1)).due_on == dt.date(2026, 1, 10)
