@@ -78,13 +78,17 @@ class PackForm(forms.Form):
                                   help_text="For a unit pack.")
     sif = forms.ModelChoiceField(queryset=SafetyFunction.objects.none(), required=False,
                                  label="SIF", help_text="For a one-SIF pack.")
-    period_start = forms.DateField(widget=forms.DateInput(attrs={"type": "date"}))
-    period_end = forms.DateField(widget=forms.DateInput(attrs={"type": "date"}))
+    period_start = forms.DateField(widget=forms.DateInput(attrs={"type": "date"},
+                                                          format="%Y-%m-%d"))
+    period_end = forms.DateField(widget=forms.DateInput(attrs={"type": "date"},
+                                                        format="%Y-%m-%d"))
 
     def __init__(self, user, *args, **kwargs):
         super().__init__(*args, **kwargs)
         sites = _export_sites(user)
         self.fields["site"].queryset = sites
+        if len(sites) == 1:
+            self.fields["site"].initial = sites[0].pk
         self.fields["unit"].queryset = PlantUnit.objects.filter(site__in=sites)
         self.fields["sif"].queryset = SafetyFunction.objects.filter(
             unit__site__in=sites).select_related("unit")
