@@ -372,17 +372,26 @@ class TypeStats:
 
 
 def _stats_fingerprint() -> tuple:
-    """Changes whenever a record that feeds the field statistics is written through the
-    app: the newest history row of sites (confidence level, prior strength), components,
-    test records, results and demands (index lookups). Rows bulk-inserted without history
-    (synthetic benchmark data) are not seen, which is why the cache key also carries the
-    date and entries expire after an hour."""
-    from django.db.models import Max
+    """Changes whenever something the field statistics depend on changes: the signed,
+    current dangerous-undetected results (count and newest id, read through the partial
+    index on those few rows), failed-on-demand links, and the newest history row of
+    sites, SIFs and components (settings, life stage, in-service dates, device types).
+    A passing test does not change it, so recomputing after one stays cheap. Rows
+    bulk-inserted without history (synthetic benchmark data) are not seen by the history
+    part, which is why the key also carries the date and entries expire after an hour."""
+    from django.db.models import Count, Max
 
-    from register.models import Site, TestRecord
+    from register.models import Site
 
-    return tuple(model.history.aggregate(m=Max("history_id"))["m"]
-                 for model in (Site, Component, TestRecord, ComponentResult, Demand))
+    du = (ComponentResult.objects.filter(failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED,
+                                         record__superseded_by__isnull=True)
+          .exclude(record__status=choices.RecordStatus.DRAFT)
+          .aggregate(n=Count("id"), last=Max("id")))
+    failed_on_demand = Demand.failed_components.through.objects.aggregate(
+        n=Count("id"), last=Max("id"))
+    return (du["n"], du["last"], failed_on_demand["n"], failed_on_demand["last"]) + tuple(
+        model.history.aggregate(m=Max("history_id"))["m"]
+        for model in (Site, SafetyFunction, Component))
 
 
 def device_type_stats(site_id: int | None, as_of: dt.date,

@@ -166,3 +166,36 @@ def test_a_demand_record_lowers_the_achieved_pfd_only_where_credited(plant):
     TestPlan.objects.filter(sif=sif).update(demand_counts_as_test=True)
     credited = recompute_many(qs, trigger="t")[0].achieved_pfd_avg
     assert credited < not_credited
+
+
+def test_cached_field_statistics_follow_a_signed_draft_and_a_correction(plant):
+    from calcs.adapter import device_type_stats
+    from register.models import TestRecord
+
+    s, u, tech, _ = plant
+    sif = f.sif(u, in_service=dt.date(2022, 1, 1))
+    today = timezone.localdate()
+    valve = Component.objects.filter(subsystem__sif=sif, subsystem__role="final").first()
+
+    def failures():
+        return device_type_stats(s.pk, today)[valve.device_type_id].stats.failures
+
+    results = [services.ResultInput(component=valve, as_found="fail", as_left="pass",
+                                    failure_mode="du", failure_description="stuck",
+                                    work_done="freed")]
+    draft = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL,
+                                results=results,
+                                performed_at=timezone.now() - dt.timedelta(days=2))
+    assert failures() == 0  # drafts do not count
+    services.sign_record(draft, tech, f.PASSWORD)
+    assert failures() == 1
+    correction = services.start_correction(TestRecord.objects.get(pk=draft.pk), tech,
+                                           "valve was fine, wrong device")
+    correction_results = [services.ResultInput(component=valve, as_found="pass",
+                                               as_left="pass")]
+    services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL,
+                        results=correction_results, record=correction,
+                        performed_at=correction.performed_at, supersedes=draft,
+                        correction_reason="valve was fine, wrong device")
+    services.sign_record(correction, tech, f.PASSWORD)
+    assert failures() == 0  # the superseded record no longer counts
