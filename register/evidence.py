@@ -947,3 +947,56 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
     if progress:
         progress(1.0)
     return buf.getvalue()
+
+
+# ---------------------------------------------------------------------------------------
+# Asking for a pack (the web page and the API both call this)
+# ---------------------------------------------------------------------------------------
+
+
+def request_pack(user, *, scope: str, site, period_start: dt.date, period_end: dt.date,
+                 unit=None, sif=None) -> EvidencePack:
+    """Record a pack request and start its build once the request is committed.
+
+    Needs the export right at the site (auditors, verifiers, leads). Asking for a pack
+    writes only this request, never a register or test record.
+    """
+    from django.core.exceptions import ValidationError
+    from django.db import transaction
+
+    from .permissions import Action, require
+
+    require(user, Action.EXPORT, site.pk)
+    errors = {}
+    if scope == EvidencePack.Scope.UNIT and (unit is None or unit.site_id != site.pk):
+        errors["unit"] = "Choose a unit of this site for a unit pack."
+    if scope == EvidencePack.Scope.SIF and (sif is None or sif.unit.site_id != site.pk):
+        errors["sif"] = "Choose a SIF of this site for a one-SIF pack."
+    if period_end < period_start:
+        errors["period_end"] = "The period cannot end before it starts."
+    if errors:
+        raise ValidationError(errors)
+    with transaction.atomic():
+        pack = EvidencePack.objects.create(
+            scope=scope, site=site,
+            unit=unit if scope == EvidencePack.Scope.UNIT else None,
+            sif=sif if scope == EvidencePack.Scope.SIF else None,
+            period_start=period_start, period_end=period_end, requested_by=user)
+
+        def start():
+            from .tasks_evidence import build_evidence_pack
+
+            build_evidence_pack.delay(pack.pk)
+
+        transaction.on_commit(start)
+    return pack
+
+
+def pack_file(pack: EvidencePack) -> Path | None:
+    """The finished zip of a pack, or None while it is not ready or if it is missing."""
+    if pack.status != EvidencePack.Status.DONE or not pack.result_path:
+        return None
+    path = (Path(settings.VAR_DIR) / pack.result_path).resolve()
+    if Path(settings.VAR_DIR).resolve() not in path.parents or not path.exists():
+        return None
+    return path

@@ -9,14 +9,11 @@ register or test record. All other writes stay refused to auditors by the servic
 from __future__ import annotations
 
 import datetime as dt
-from pathlib import Path
 
 from django import forms
-from django.conf import settings
 from django.contrib import messages
 from django.contrib.auth.decorators import login_required
-from django.core.exceptions import PermissionDenied
-from django.db import transaction
+from django.core.exceptions import PermissionDenied, ValidationError
 from django.http import FileResponse, Http404, JsonResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
@@ -24,6 +21,7 @@ from django.views.decorators.http import require_http_methods
 
 from . import choices
 from .audit import verify_chain
+from .evidence import pack_file, request_pack
 from .models import (
     ChainEntry,
     Component,
@@ -131,28 +129,19 @@ def packs(request):
     if request.method == "POST":
         if form.is_valid():
             d = form.cleaned_data
-            if not can(user, Action.EXPORT, d["site"].pk):
-                raise PermissionDenied("You may not export from this site.")
-            scope = d["scope"]
-            pack = EvidencePack.objects.create(
-                scope=scope, site=d["site"],
-                unit=d["unit"] if scope == EvidencePack.Scope.UNIT else None,
-                sif=d["sif"] if scope == EvidencePack.Scope.SIF else None,
-                period_start=d["period_start"], period_end=d["period_end"],
-                requested_by=user)
-            enqueue(pack)
-            messages.success(request, "The pack is being built. You can leave this page and "
-                                      "come back; it stays listed here.")
-            return redirect("audit:pack_detail", pack.pk)
+            try:
+                pack = request_pack(user, scope=d["scope"], site=d["site"], unit=d["unit"],
+                                    sif=d["sif"], period_start=d["period_start"],
+                                    period_end=d["period_end"])
+            except ValidationError as exc:
+                for name, msgs in exc.message_dict.items():
+                    form.add_error(name if name in form.fields else None, msgs)
+            else:
+                messages.success(request, "The pack is being built. You can leave this page "
+                                          "and come back; it stays listed here.")
+                return redirect("audit:pack_detail", pack.pk)
     rows = _visible_packs(user)[:100]
     return render(request, "register/audit/packs.html", {"form": form, "rows": rows})
-
-
-def enqueue(pack: EvidencePack) -> None:
-    """Start the build once the request row is committed."""
-    from .tasks_evidence import build_evidence_pack
-
-    transaction.on_commit(lambda: build_evidence_pack.delay(pack.pk))
 
 
 def _pack_for(user, pk) -> EvidencePack:
@@ -180,11 +169,9 @@ def pack_status(request, pk):
 @login_required
 def pack_download(request, pk):
     pack = _pack_for(request.user, pk)
-    if pack.status != EvidencePack.Status.DONE or not pack.result_path:
-        raise Http404("The pack is not ready.")
-    path = (Path(settings.VAR_DIR) / pack.result_path).resolve()
-    if Path(settings.VAR_DIR).resolve() not in path.parents or not path.exists():
-        raise Http404("The pack file is missing.")
+    path = pack_file(pack)
+    if path is None:
+        raise Http404("The pack is not ready, or its file is missing.")
     name = f"evidence-pack-{pack.pk}-{pack.site.code}-{pack.period_start}-{pack.period_end}.zip"
     return FileResponse(path.open("rb"), as_attachment=True, filename=name,
                         content_type="application/zip")

@@ -17,6 +17,7 @@ from register.models import (
     Deferral,
     Demand,
     DeviceType,
+    EvidencePack,
     HazardScenario,
     InitiatingCause,
     MeasuredValue,
@@ -383,3 +384,27 @@ class NotificationSerializer(serializers.ModelSerializer):
         fields = ["id", "site", "kind", "subject_key", "message", "link", "created_at",
                   "read_at"]
         read_only_fields = fields
+
+
+# --- Evidence packs ----------------------------------------------------------------------
+
+
+class EvidencePackSerializer(LedgerModelSerializer):
+    """A pack request and its progress. ``download`` is set once the zip is ready."""
+
+    download = serializers.SerializerMethodField()
+
+    class Meta:
+        model = EvidencePack
+        fields = ["id", "scope", "site", "unit", "sif", "period_start", "period_end",
+                  "requested_by", "status", "progress", "stage", "error", "result_sha256",
+                  "result_size", "chain_head_seq", "chain_head_hash", "chain_ok",
+                  "created_at", "finished_at", "download"]
+        read_only_fields = ["requested_by", "status", "progress", "stage", "error",
+                            "result_sha256", "result_size", "chain_head_seq",
+                            "chain_head_hash", "chain_ok", "created_at", "finished_at"]
+
+    def get_download(self, pack) -> str | None:
+        if pack.status != pack.Status.DONE:
+            return None
+        return f"/api/evidence-packs/{pack.pk}/download/"

@@ -25,6 +25,7 @@ router.register("bypasses", views.BypassViewSet, basename="bypass")
 router.register("deferrals", views.DeferralViewSet, basename="deferral")
 router.register("assessments", views.AssessmentViewSet, basename="assessment")
 router.register("notifications", views.NotificationViewSet, basename="notification")
+router.register("evidence-packs", views.EvidencePackViewSet, basename="evidence-pack")
 
 SWAGGER_ASSETS = Path(drf_spectacular_sidecar.__file__).parent / "static" / \
     "drf_spectacular_sidecar" / "swagger-ui-dist"

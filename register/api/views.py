@@ -13,6 +13,7 @@ from django.core.exceptions import PermissionDenied
 from django.core.exceptions import ValidationError as DjangoValidationError
 from django.db import IntegrityError, transaction
 from django.utils import timezone
+from drf_spectacular.types import OpenApiTypes
 from drf_spectacular.utils import OpenApiResponse, extend_schema, extend_schema_view
 from rest_framework import mixins, status, viewsets
 from rest_framework.authtoken.views import ObtainAuthToken
@@ -44,7 +45,7 @@ from register.models import (
     TestPlan,
     TestRecord,
 )
-from register.permissions import Action
+from register.permissions import Action, roles_for
 
 from . import filters
 from . import serializers as s
@@ -382,6 +383,46 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
                                             note=d["note"],
                                             projected_pfd_avg=d["projected_pfd_avg"])
         return Response(self.get_serializer(deferral).data)
+
+
+class EvidencePackViewSet(mixins.CreateModelMixin, ReadViewSet):
+    """Evidence packs of the sites where the user may export (auditors, verifiers, leads).
+
+    Creating one asks for a pack; it is built in the background (poll ``status`` and
+    ``progress``), then ``download/`` returns the zip.
+    """
+
+    serializer_class = s.EvidencePackSerializer
+    write_rights = {"create": Action.EXPORT}
+
+    def get_queryset(self):
+        from register.models import EvidencePack
+
+        return (EvidencePack.objects.for_user(self.request.user, roles=roles_for(Action.EXPORT))
+                .select_related("site", "unit", "sif", "requested_by"))
+
+    def perform_create(self, serializer):
+        from register.evidence import request_pack
+
+        d = serializer.validated_data
+        serializer.instance = request_pack(
+            self.request.user, scope=d["scope"], site=d["site"], unit=d.get("unit"),
+            sif=d.get("sif"), period_start=d["period_start"], period_end=d["period_end"])
+
+    @extend_schema(responses={(200, "application/zip"): OpenApiTypes.BINARY})
+    @action(detail=True, methods=["get"])
+    def download(self, request, pk=None):
+        from django.http import FileResponse, Http404
+
+        from register.evidence import pack_file
+
+        pack = self.get_object()
+        path = pack_file(pack)
+        if path is None:
+            raise Http404("The pack is not ready, or its file is missing.")
+        return FileResponse(path.open("rb"), as_attachment=True,
+                            filename=f"evidence-pack-{pack.pk}.zip",
+                            content_type="application/zip")
 
 
 class NotificationViewSet(mixins.ListModelMixin, mixins.RetrieveModelMixin,

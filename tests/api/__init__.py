@@ -11,7 +11,7 @@ from rest_framework.test import APIClient
 
 from calcs.models import Assessment
 from register import choices, services
-from register.models import Component, Deferral, Notification, TestPlan
+from register.models import Component, Deferral, EvidencePack, Notification, TestPlan
 from tests import factories as f
 
 ROLES = ("lead", "technician", "verifier", "auditor", "outsider", "anonymous")
@@ -33,6 +33,7 @@ class Place:
     deferral: object
     assessment: object
     performer: object
+    pack: object = None
 
 
 @dataclass
@@ -85,6 +86,9 @@ def _fill(place: Place, now):
     place.deferral = Deferral.objects.create(
         plan=place.plan, due_on=dt.date(2029, 1, 1), proposed_on=dt.date(2029, 3, 1),
         reason="Turnaround moved", requested_by=user)
+    place.pack = EvidencePack.objects.create(
+        scope="site", site=place.site, period_start=dt.date(2025, 1, 1),
+        period_end=dt.date(2025, 12, 31), requested_by=user)
     place.assessment = Assessment.objects.create(
         sif=place.sif, computed_at=now, as_of=now, inputs_digest="0" * 64,
         achieved_pfd_avg=2e-3, meets_target=True)

@@ -217,3 +217,28 @@ def test_session_login_works_and_schema_needs_login(client):
     docs = client.get("/api/docs/")
     assert docs.status_code == 200 and b"/api/docs/assets/swagger-ui-bundle.js" in docs.content
     assert client.get("/api/docs/assets/swagger-ui.css").status_code == 200
+
+
+def test_an_auditor_asks_for_a_pack_and_downloads_it(django_capture_on_commit_callbacks):
+    import io
+    import zipfile
+
+    world = build_world()
+    client = world.client("auditor")
+    with django_capture_on_commit_callbacks(execute=True):
+        r = client.post("/api/evidence-packs/", {
+            "scope": "sif", "site": world.own.site.pk, "sif": world.own.sif.pk,
+            "period_start": "2020-01-01", "period_end": timezone.localdate().isoformat()},
+            format="json")
+    assert r.status_code == 201, r.content
+    detail = client.get(f"/api/evidence-packs/{r.json()['id']}/").json()
+    assert detail["status"] == "done" and detail["download"]
+    zipped = client.get(detail["download"])
+    assert zipped.status_code == 200
+    names = zipfile.ZipFile(io.BytesIO(b"".join(zipped.streaming_content))).namelist()
+    assert {"report.pdf", "manifest.json", "tests.csv"} <= set(names)
+    # A unit of another site cannot be named.
+    r = client.post("/api/evidence-packs/", {
+        "scope": "unit", "site": world.own.site.pk, "unit": world.other.unit.pk,
+        "period_start": "2020-01-01", "period_end": "2021-01-01"}, format="json")
+    assert r.status_code == 400 and "unit" in r.json()

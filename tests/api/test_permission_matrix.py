@@ -34,6 +34,9 @@ SIGNS = ((403, 200, 403, 403, 404, 401), (404, 404, 403, 403, 200, 401))
 # Lead and verifier countersign; at the other site the outsider performed the test.
 VERIFIES = ((200, 403, 200, 403, 404, 401), (404, 403, 404, 403, 400, 401))
 OWN_ONLY = ((200, 200, 200, 200, 200, 401), (404, 404, 404, 404, 404, 401))
+# Evidence packs: the export right (lead, verifier, auditor) at the pack's site.
+EXPORT_READ = ((200, 404, 200, 200, 404, 401), (404, 404, 404, 404, 200, 401))
+EXPORT_CREATES = ((201, 403, 201, 201, 400, 401), (400, 403, 400, 400, 201, 401))
 
 
 def _ago(**kw):
@@ -173,6 +176,14 @@ TABLE = [
      None, OWN_ONLY),
     ("notifications read", "post",
      lambda p, w, r: f"/api/notifications/{_note(w, r, p)}/read/", lambda p: {}, OWN_ONLY),
+    ("evidence packs list", "get", lambda p, w, r: "/api/evidence-packs/", None, LIST),
+    ("evidence packs detail", "get", lambda p, w, r: f"/api/evidence-packs/{p.pack.pk}/",
+     None, EXPORT_READ),
+    ("evidence packs create", "post", lambda p, w, r: "/api/evidence-packs/",
+     lambda p: {"scope": "site", "site": p.site.pk, "period_start": "2025-01-01",
+                "period_end": "2025-12-31"}, EXPORT_CREATES),
+    ("evidence packs delete", "delete", lambda p, w, r: f"/api/evidence-packs/{p.pack.pk}/",
+     None, NOT_ALLOWED),
 ]
 
 
