@@ -6,8 +6,8 @@ Prints the time and the number of SQL queries of each step.
 """
 
 import argparse
-import statistics
 import os
+import statistics
 import sys
 import time
 from pathlib import Path

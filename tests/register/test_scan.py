@@ -129,11 +129,10 @@ def test_changes_in_one_transaction_refresh_the_sif_once(django_capture_on_commi
 
     s, lead, owner = _plant(2)
     sifs = list(TestPlan.objects.filter(sif__unit__site=s).values_list("sif_id", flat=True))
-    with django_capture_on_commit_callbacks() as callbacks:
-        with transaction.atomic():
-            followup.after_test_change(sifs[0])
-            followup.after_test_change(sifs[0])
-            followup.after_test_change(sifs[1])
+    with django_capture_on_commit_callbacks() as callbacks, transaction.atomic():
+        followup.after_test_change(sifs[0])
+        followup.after_test_change(sifs[0])
+        followup.after_test_change(sifs[1])
     assert len(callbacks) == 1
 
 
@@ -150,7 +149,6 @@ def test_a_rolled_back_change_leaves_no_stale_refresh_behind(django_capture_on_c
             raise RuntimeError
     except RuntimeError:
         pass
-    with django_capture_on_commit_callbacks() as callbacks:
-        with transaction.atomic():
-            followup.after_test_change(sifs[1])
+    with django_capture_on_commit_callbacks() as callbacks, transaction.atomic():
+        followup.after_test_change(sifs[1])
     assert len(callbacks) == 1
