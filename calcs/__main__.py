@@ -47,10 +47,12 @@ def main(argv: list[str] | None = None) -> int:
         return _fail(f"{label}: not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})")
 
     try:
+        from datetime import date
+
         from calcs.engine.case import evaluate_case
         from calcs.engine.errors import InputError
 
-        result = evaluate_case(data)
+        result = evaluate_case(data, today=date.today())
     except InputError as exc:
         return _fail(f"{exc.field}: {exc.message}")
     except RecursionError:

@@ -120,7 +120,7 @@ def _wants_history(data: dict) -> bool:
     return any(isinstance(s, dict) and "tests" in s for s in data.get("subsystems") or [])
 
 
-def _history(data: dict) -> dict:
+def _history(data: dict, today=None) -> dict:
     try:
         from .history import evaluate_case_history
     except ModuleNotFoundError as exc:
@@ -133,14 +133,18 @@ def _history(data: dict) -> dict:
         field = "in_service" if "in_service" in data else "subsystems[].tests"
         raise InputError(field, "proof-test history evaluation is not available in this "
                                 "installation (evaluate_case_history cannot be imported)") from None
-    result = evaluate_case_history(data)
+    result = evaluate_case_history(data, today=today)
     if not isinstance(result, dict):
         raise InputError("in_service", "history evaluation returned no result")
     return result
 
 
-def evaluate_case(data: dict) -> dict:
-    """Evaluate one SIF case (see module docstring); returns a JSON-ready dict."""
+def evaluate_case(data: dict, *, today=None) -> dict:
+    """Evaluate one SIF case (see module docstring); returns a JSON-ready dict.
+
+    ``today`` (a date, given by the command) refuses a history whose latest record is
+    later than today unless the case names its evaluation date.
+    """
     sif = build_design(data)
     res = design.evaluate_sif(sif)
     low = res.demand_mode == "low"
@@ -198,7 +202,7 @@ def evaluate_case(data: dict) -> dict:
     wants_history = _wants_history(data)
     caution += _unknown_keys(data, wants_history)
     if wants_history:
-        hist = _history(data)
+        hist = _history(data, today)
         by_name = {s["name"]: s for s in subsystems}
         for key, value in hist.items():
             if key == "subsystems":

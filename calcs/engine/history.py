@@ -66,6 +66,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError
+from .units import check_not_after, check_rate
 from .voting import parse_voting
 
 HOURS_PER_YEAR = 8760.0
@@ -161,7 +162,10 @@ class TestEvent:
     its partial-test coverage for a partial test, 0 for a demand (a real demand
     counts as a test only for the coverage recorded with it).
     ``failed``: a dangerous failure was found. ``restore_hours``: downtime after
-    a failure found (None = the channel's MRT).
+    a failure found (None = the channel's MRT); a later passing test of the
+    channel ends it earlier. ``replaced``: the device found failed was replaced
+    (or overhauled), which renews every share of lambda_DU; otherwise it was
+    repaired, which renews only the shares this test covers.
     """
 
     __test__ = False  # not a pytest test class
@@ -171,6 +175,7 @@ class TestEvent:
     coverage: float | None = None
     failed: bool = False
     restore_hours: float | None = None
+    replaced: bool = False
 
     def __post_init__(self) -> None:
         _as_utc_naive(self.at, "at")
@@ -182,6 +187,8 @@ class TestEvent:
             raise InputError("failed", f"must be true or false, got {self.failed!r}")
         if self.restore_hours is not None:
             _num(self.restore_hours, "restore_hours")
+        if not isinstance(self.replaced, bool):
+            raise InputError("replaced", f"must be true or false, got {self.replaced!r}")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -199,8 +206,8 @@ class Channel:
     tests: tuple[TestEvent, ...] = ()
 
     def __post_init__(self) -> None:
-        _num(self.lambda_du, "lambda_du", 0.0, 1.0)
-        _num(self.lambda_dd, "lambda_dd", 0.0, 1.0)
+        check_rate(self.lambda_du, "lambda_du")
+        check_rate(self.lambda_dd, "lambda_dd")
         _num(self.mttr_hours, "mttr_hours")
         if self.mrt_hours is not None:
             _num(self.mrt_hours, "mrt_hours")
@@ -435,24 +442,23 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
             kept: list[tuple[float, float]] = []
             out_s: list[float] = []
             out_e: list[float] = []
-            for t in ch.tests:
-                th = _hours(t.at, "at")
-                if th < ins:
-                    flags.append(f"{label}: {t.kind} test on {_fmt(th)} is before the channel "
-                                 f"went into service ({_fmt(ins)}); ignored")
-                    continue
-                if cutoff_h is not None and th > cutoff_h:
+            for ev in _channel_events(ch, label, ins, cutoff_h, flags):
+                th, cov = ev.at_h, ev.coverage
+                if ev.after_cutoff:
                     after += 1
                     continue
-                cov = float(_default_cov(ch, t.kind) if t.coverage is None else t.coverage)
                 bounds.add(cov)
                 group_tests.append((th, cov))
-                if t.failed:
-                    rest = ch.mrt if t.restore_hours is None else float(t.restore_hours)
-                    if rest > 0:
+                if ev.failed:
+                    if ev.restored_h > th:
                         out_s.append(th)
-                        out_e.append(th + rest)
-                    renew_all.append(th + rest)
+                        out_e.append(ev.restored_h)
+                    if ev.replaced:
+                        renew_all.append(ev.restored_h)
+                    else:
+                        # a repair fixes what was found and the test checked what it covers:
+                        # the shares up to this coverage are as new, the rest keep their age
+                        kept.append((ev.restored_h, cov))
                 else:
                     kept.append((th, cov))
             if extra and gi in extra:
@@ -533,6 +539,54 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
     events.extend(me.tolist())
     return _Compiled(cgroups, ms, me, np.unique(np.array(events, dtype=float)), start_h,
                      list(dict.fromkeys(flags)))
+
+
+@dataclass
+class _Event:
+    """One recorded test of a channel, resolved: times in hours, coverage, restoration."""
+
+    at_h: float
+    kind: str
+    coverage: float
+    failed: bool
+    replaced: bool
+    restored_h: float  # end of the restoration after a failure found (= at_h otherwise)
+    after_cutoff: bool = False
+
+
+def _channel_events(ch: Channel, label: str, ins: float, cutoff_h: float | None,
+                    flags: list[str]) -> list[_Event]:
+    """The channel's tests in time order with coverage and restoration resolved.
+
+    A failure found keeps the channel down for its restore time (default MRT), or until
+    the next test of that channel that shows it working, whichever comes first.
+    Tests before the in-service date are flagged and dropped; tests after ``cutoff_h``
+    are returned with ``after_cutoff`` (not used).
+    """
+    out: list[_Event] = []
+    for t in sorted(ch.tests, key=lambda x: _hours(x.at, "at")):
+        th = _hours(t.at, "at")
+        if th < ins:
+            flags.append(f"{label}: {t.kind} test on {_fmt(th)} is before the channel "
+                         f"went into service ({_fmt(ins)}); ignored")
+            continue
+        cov = float(_default_cov(ch, t.kind) if t.coverage is None else t.coverage)
+        late = cutoff_h is not None and th > cutoff_h
+        rest = 0.0
+        if t.failed:
+            rest = ch.mrt if t.restore_hours is None else float(t.restore_hours)
+        out.append(_Event(th, t.kind, cov, bool(t.failed), bool(t.replaced), th + rest, late))
+    used = [e for e in out if not e.after_cutoff]
+    for i, e in enumerate(used):
+        if not e.failed:
+            continue
+        for later in used[i + 1:]:
+            if later.at_h >= e.restored_h:
+                break
+            if not later.failed and later.at_h > e.at_h:
+                e.restored_h = later.at_h  # the retest shows the device working
+                break
+    return out
 
 
 # --------------------------------------------------------------------------
@@ -945,7 +999,7 @@ def _get_num(d: dict, key: str, path: str, default: Any = None, lo: float = 0.0,
     return _num(d[key], f"{path}.{key}" if path else key, lo, hi)
 
 
-def evaluate_case_history(data: dict) -> dict:
+def evaluate_case_history(data: dict, *, today: date | None = None) -> dict:
     """Achieved PFDavg of a JSON case (the design-case format plus dates).
 
     Each subsystem gets N identical channels (N from its voting); its "tests"
@@ -978,6 +1032,7 @@ def evaluate_case_history(data: dict) -> dict:
     if not isinstance(subs, list) or not subs:
         raise InputError("subsystems", "must be a non-empty list")
     latest = ins
+    dated: list[tuple[str, datetime]] = []
     groups: list[Group] = []
     schedule: list[tuple[str, float, list[datetime]]] = []
     for i, s in enumerate(subs):
@@ -988,8 +1043,11 @@ def evaluate_case_history(data: dict) -> dict:
         if not isinstance(name, str) or not name.strip():
             raise InputError(f"{p}.name", "must be a non-empty text")
         v = parse_voting(s.get("voting", "1oo1"), f"{p}.voting")
-        ldu = _get_num(s, "lambda_du_per_hour", p, required=True, hi=1.0)
-        ldd = _get_num(s, "lambda_dd_per_hour", p, 0.0, hi=1.0)
+        if s.get("lambda_du_per_hour") is None:
+            raise InputError(f"{p}.lambda_du_per_hour", "is required")
+        ldu = check_rate(s["lambda_du_per_hour"], f"{p}.lambda_du_per_hour")
+        ldd = (0.0 if s.get("lambda_dd_per_hour") is None
+               else check_rate(s["lambda_dd_per_hour"], f"{p}.lambda_dd_per_hour"))
         beta = _get_num(s, "beta", p, 0.0, hi=1.0)
         beta_d = _get_num(s, "beta_d", p, 0.0, hi=1.0)
         mttr = _get_num(s, "mttr_hours", p, 8.0)
@@ -1007,6 +1065,7 @@ def evaluate_case_history(data: dict) -> dict:
         if not isinstance(raw_tests, list):
             raise InputError(f"{p}.tests", "must be a list")
         events = []
+        per_channel: list[list[TestEvent]] = [[] for _ in range(v.n)]
         full_dates = []
         for j, t in enumerate(raw_tests):
             tp = f"{p}.tests[{j}]"
@@ -1023,8 +1082,15 @@ def evaluate_case_history(data: dict) -> dict:
             if not isinstance(failed, bool):
                 raise InputError(f"{tp}.failed", "must be true or false")
             rest = _get_num(t, "restore_hours", tp, None)
-            events.append(TestEvent(at=when, kind=kind, coverage=cov, failed=failed,
-                                    restore_hours=rest))
+            replaced = t.get("replaced", False)
+            if not isinstance(replaced, bool):
+                raise InputError(f"{tp}.replaced", "must be true or false")
+            chosen = _failed_channels(t, tp, v.n, failed)
+            for ci in range(v.n):
+                per_channel[ci].append(TestEvent(
+                    at=when, kind=kind, coverage=cov, failed=ci in chosen,
+                    restore_hours=rest, replaced=replaced and ci in chosen))
+            events.append((f"{tp}.date", when))
             latest = max(latest, when)
             if kind == "full" and when >= ins:
                 full_dates.append(when)
@@ -1032,13 +1098,19 @@ def evaluate_case_history(data: dict) -> dict:
         if s.get("overhaul_date") is not None:
             overhaul = _parse_when(s["overhaul_date"], f"{p}.overhaul_date")
         try:
-            ch = Channel(lambda_du=ldu, lambda_dd=ldd, mttr_hours=mttr, mrt_hours=mrt,
-                         proof_test_coverage=ptc, partial_test_coverage=theta,
-                         in_service=ins, overhaul_at=overhaul, tests=tuple(events))
+            chans = [Channel(lambda_du=ldu, lambda_dd=ldd, mttr_hours=mttr, mrt_hours=mrt,
+                             proof_test_coverage=ptc, partial_test_coverage=theta,
+                             in_service=ins, overhaul_at=overhaul, tests=tuple(tests))
+                     for tests in per_channel]
+            if all(x == per_channel[0] for x in per_channel):
+                chans = [chans[0]] * v.n  # identical channels (one object)
             groups.append(Group(name=name, voting=str(v), beta=beta, beta_d=beta_d,
-                                channels=(ch,) * v.n))
+                                channels=tuple(chans)))
         except InputError as e:
             raise InputError(f"{p}.{e.field}", e.message) from None
+        dated.extend(events)
+        if overhaul is not None:
+            dated.append((f"{p}.overhaul_date", overhaul))
         if t1:
             schedule.append((name, t1, sorted(full_dates)))
         if mt and ptc < 1.0:
@@ -1051,6 +1123,9 @@ def evaluate_case_history(data: dict) -> dict:
         bs = _parse_when(b["start"], f"{bp}.start")
         be = None if b.get("end") in (None, "") else _parse_when(b["end"], f"{bp}.end")
         bypasses.append((bs, be))
+        dated.append((f"{bp}.start", bs))
+        if be is not None:
+            dated.append((f"{bp}.end", be))
         latest = max([latest, bs] + ([be] if be else []))
     as_of = None if data.get("as_of") in (None, "") else _parse_when(data["as_of"], "as_of")
     win = data.get("window") or {}
@@ -1060,9 +1135,21 @@ def evaluate_case_history(data: dict) -> dict:
         end = _parse_when(win["end"], "window.end")
     else:
         end = as_of if as_of is not None else latest
+    evaluation = as_of if as_of is not None else end
+    if today is not None and as_of is None and not win.get("end"):
+        latest_field, latest_when = max(dated, key=lambda x: x[1], default=("in_service", ins))
+        if _as_utc_naive(latest_when, latest_field).date() > today:
+            raise InputError(latest_field, f"{latest_when.date().isoformat()} is later than "
+                                           f"today ({today.isoformat()}); give \"as_of\" or "
+                                           "\"window.end\" to evaluate a future date")
+    for where, when in dated:
+        check_not_after(when, evaluation, where, "the evaluation date")
     start = _parse_when(win["start"], "window.start") if win.get("start") else one_year_before(end)
     sif = SifHistory(groups=tuple(groups), bypasses=tuple(bypasses))
-    res = achieved_pfd(sif, start, end, as_of=as_of if as_of is not None else end)
+    res = achieved_pfd(sif, start, end, as_of=evaluation)
+    from . import observed as _observed  # imports this module
+
+    obs = _observed.observed_unavailability(sif, start, end, as_of=evaluation)
     flags.extend(res.flags)
     end_h = _hours(end, "window.end")
     for name, t1, dates in schedule:
@@ -1091,6 +1178,35 @@ def evaluate_case_history(data: dict) -> dict:
         "hours": res.hours,
         "bypass_hours": res.bypass_hours,
         "pfd_at_window_end": res.pfd_at_end,
+        "observed_unavailability": obs.unavailability,
+        "observed_unavailable_hours": obs.unavailable_hours,
+        "observed_episodes": [{
+            "subsystem": e.group, "channels": list(e.channels),
+            "onset_after": e.onset_from.isoformat(), "found_at": e.found_at.isoformat(),
+            "restored_at": e.restored_at.isoformat(), "found_by": e.found_by,
+            "common_cause": e.common_cause, "hours_in_window": e.hours_in_window,
+        } for e in obs.episodes],
         "flags": flags,
-        "subsystems": {k: {"achieved_pfd_avg": val} for k, val in res.groups.items()},
+        "subsystems": {k: {"achieved_pfd_avg": val,
+                           "observed_unavailability": obs.groups[k]}
+                       for k, val in res.groups.items()},
     }
+
+
+def _failed_channels(t: dict, tp: str, n: int, failed: bool) -> set[int]:
+    """Which channels a test found failed: "failed_channels" (0-based) when given,
+    else every channel when "failed" is true."""
+    raw = t.get("failed_channels")
+    if raw is None:
+        return set(range(n)) if failed else set()
+    if not isinstance(raw, list):
+        raise InputError(f"{tp}.failed_channels", "must be a list of channel numbers (0-based)")
+    out: set[int] = set()
+    for i, x in enumerate(raw):
+        if isinstance(x, bool) or not isinstance(x, int) or not 0 <= x < n:
+            raise InputError(f"{tp}.failed_channels[{i}]",
+                             f"must be a channel number from 0 to {n - 1}, got {x!r}")
+        out.add(x)
+    if "failed" in t and t["failed"] is False and out:
+        raise InputError(f"{tp}.failed", "is false but failed_channels names failed channels")
+    return out
