@@ -22,6 +22,10 @@ from datetime import datetime, timedelta
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
+try:
+    from calcs.engine.observed import observed_windows
+except ImportError:  # an older tree, for before/after comparisons
+    observed_windows = None
 from calcs.engine.history import (
     Channel,
     Group,
@@ -96,8 +100,12 @@ def make_sif(seed: int) -> SifHistory:
 
 
 def evaluate(sif: SifHistory) -> tuple[float, float]:
-    last12, since = achieved_pfd_windows(
-        sif, [(None, AS_OF), ("in_service", AS_OF)], as_of=AS_OF)
+    """What a recompute does per SIF: achieved PFDavg and observed unavailability over the
+    last 12 months and since in service."""
+    windows = [(None, AS_OF), ("in_service", AS_OF)]
+    last12, since = achieved_pfd_windows(sif, windows, as_of=AS_OF)
+    if observed_windows is not None:
+        observed_windows(sif, windows, as_of=AS_OF)
     return last12.pfd_avg, since.pfd_avg
 
 

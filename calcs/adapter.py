@@ -23,7 +23,9 @@ from calcs.engine import design as eng_design
 from calcs.engine import field_data as eng_field
 from calcs.engine import history as eng_hist
 from calcs.engine import lopa as eng_lopa
+from calcs.engine import observed as eng_obs
 from calcs.engine import sil as eng_sil
+from calcs.engine import verdict as eng_verdict
 from calcs.engine.errors import EngineError
 from calcs.models import Assessment
 from register import choices
@@ -235,15 +237,39 @@ def plan_intervals(d: SifData, sub: Subsystem) -> tuple[float | None, float | No
 
 @dataclass(frozen=True)
 class RateTable:
-    """The λDU the achieved model uses per device type (site rate basis applied)."""
+    """The λDU the achieved model and the projections use (site rate basis applied).
+
+    ``design``: the component's own entered rate. ``bayes`` / ``upper``: its device
+    type's plant-wide estimate. ``field`` (the default for new sites): empirical Bayes,
+    the type's plant-wide estimate as a gamma prior updated by the component's own DU
+    failures and hours (:func:`calcs.engine.field_data.device_rate`).
+    """
 
     basis: str
     by_type: dict[int, float]
+    as_of: dt.date | None = None
 
-    def lambda_du(self, comp: Component) -> float:
+    def lambda_du(self, comp: Component, events: list | None = None) -> float:
+        if self.basis == choices.RateBasis.FIELD:
+            return self.device(comp, events or []).rate
         if self.basis == choices.RateBasis.DESIGN or comp.device_type_id not in self.by_type:
             return comp.lambda_du
         return self.by_type[comp.device_type_id]
+
+    def type_rate(self, comp: Component) -> float:
+        """The type's plant-wide estimate (the design rate where there is none)."""
+        rate = self.by_type.get(comp.device_type_id)
+        return rate if rate and rate > 0 else comp.lambda_du
+
+    def device(self, comp: Component, events: list) -> eng_field.DeviceRate:
+        failures = sum(1 for e in events if e.failed)
+        hours = 0.0
+        if self.as_of is not None and comp.in_service_on:
+            hours = max(0.0, (self.as_of - comp.in_service_on).days * 24.0)
+        base = self.type_rate(comp)
+        if base <= 0:
+            base = 1e-12  # a rate of zero cannot serve as a prior; effectively zero
+        return eng_field.device_rate(base, failures, hours)
 
 
 def _mean(values):
@@ -319,7 +345,8 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
         for cd in d.components.get(sub.pk, []):
             c = cd.obj
             channels.append(eng_hist.Channel(
-                lambda_du=rates.lambda_du(c), lambda_dd=c.lambda_dd, mttr_hours=sub.mttr_hours,
+                lambda_du=rates.lambda_du(c, cd.events), lambda_dd=c.lambda_dd,
+                mttr_hours=sub.mttr_hours,
                 mrt_hours=sub.mrt_hours, proof_test_coverage=c.proof_test_coverage,
                 partial_test_coverage=c.partial_test_coverage, in_service=_aware(c.in_service_on),
                 tests=tuple(eng_hist.TestEvent(
@@ -458,15 +485,16 @@ def compute_device_type_stats(site_id: int | None, as_of: dt.date,
     return out
 
 
-def rate_table(site, stats: dict[int, TypeStats]) -> RateTable:
+def rate_table(site, stats: dict[int, TypeStats], as_of: dt.date) -> RateTable:
+    """The site's rate basis applied; ``as_of`` fixes each device's hours in service."""
     basis = site.rate_basis
     by_type = {}
     for type_id, ts in stats.items():
-        if basis == choices.RateBasis.BAYES:
+        if basis in (choices.RateBasis.BAYES, choices.RateBasis.FIELD):
             by_type[type_id] = ts.stats.bayes_mean
         elif basis == choices.RateBasis.UPPER:
             by_type[type_id] = ts.stats.upper
-    return RateTable(basis=basis, by_type=by_type)
+    return RateTable(basis=basis, by_type=by_type, as_of=as_of)
 
 
 # ---------------------------------------------------------------------------------------
@@ -476,17 +504,6 @@ def rate_table(site, stats: dict[int, TypeStats]) -> RateTable:
 
 def _digest(payload) -> str:
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()
-
-
-def next_full_due(d: SifData, as_of: dt.date) -> dt.date | None:
-    from register.scheduling import compute_statuses
-
-    full = [p for p in d.plans if p.kind == choices.TestKind.FULL]
-    if not full:
-        return None
-    statuses = compute_statuses(TestPlan.objects.filter(pk__in=[p.pk for p in full]), as_of)
-    dues = [s.due_on for s in statuses.values() if s.due_on]
-    return min(dues) if dues else None
 
 
 def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
@@ -507,12 +524,16 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         a.architectural_sil = result.architectural_sil
         a.systematic_sil = result.systematic_capability
         detail["design"] = {"method": result.method, "rrf": result.rrf, "sil": result.sil,
+                            "rate_basis": rates.basis,
                             "claimable_sil": result.claimable_sil,
                             "sil_limited_by": result.sil_limited_by}
         for sres, sin in zip(result.subsystems, design.subsystems):
             detail["subsystems"].append({
                 "name": sres.name, "voting": sres.voting, "hft": sres.hft,
                 "design_pfd_avg": sres.pfd_avg, "architectural_sil": sres.architectural_sil,
+                "pfd_method": getattr(sres, "pfd_method", None) or (
+                    "simplified equations (IEC 61508-6 Annex B)"
+                    if result.method == eng_design.METHOD_IEC else "ISA-TR84.00.02 equations"),
                 "sff": sres.sff, "systematic_capability": sres.systematic_capability,
                 "lambda_du_per_hour": sin.lambda_du_per_hour,
                 "lambda_dd_per_hour": sin.lambda_dd_per_hour, "beta": sin.beta,
@@ -551,15 +572,23 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         if in_service and _aware(in_service) < end:
             windows.append((_aware(in_service), end))
         results = eng_hist.achieved_pfd_windows(hist, windows, as_of=end)
-        last12 = results[0]
+        observed = eng_obs.observed_windows(hist, windows, as_of=end)
+        last12, obs12 = results[0], observed[0]
         a.achieved_pfd_avg = last12.pfd_avg
+        a.observed_unavailability = obs12.unavailability
         if len(results) > 1:
             a.achieved_since_service_pfd_avg = results[1].pfd_avg
+            a.observed_since_service = observed[1].unavailability
         for entry in detail["subsystems"]:
             entry["achieved_pfd_avg"] = last12.groups.get(entry["name"])
+            entry["observed_unavailability"] = obs12.groups.get(entry["name"])
         detail["bypass_hours_12m"] = last12.bypass_hours
         detail["pfd_now"] = last12.pfd_at_end
+        detail["observed_unavailable_hours_12m"] = obs12.unavailable_hours
+        detail["observed_episodes"] = _episodes_detail(d, observed[-1], obs12)
+        detail["rates"] = _rates_detail(d, rates)
         flags.extend(last12.flags)
+        projection_missing = None
         if due_on:
             due_at = max(_aware(due_on), end)
             full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
@@ -568,16 +597,35 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
             a.projected_pfd_avg = proj.pfd_avg
             detail["projection"] = {"next_test_on": due_on.isoformat(),
                                     "horizon_end": proj.window_end.isoformat()}
+        else:
+            projection_missing = "no full proof test is planned, so nothing is due"
         target = design.target_pfd_avg
-        if sif.demand_mode == choices.DemandMode.LOW and target:
+        low = sif.demand_mode == choices.DemandMode.LOW
+        if low and a.achieved_pfd_avg is not None:
             a.achieved_sil = eng_sil.sil_from_pfd(a.achieved_pfd_avg)
-            a.meets_target = a.achieved_pfd_avg <= target and (
-                result.architectural_sil >= sif.target_sil)
-            if a.achieved_pfd_avg > target:
-                flags.append(f"Achieved PFDavg over the last 12 months {a.achieved_pfd_avg:.2e} "
-                             f"exceeds the required {target:.2e}"
-                             + _reasons(d, last12, start_12))
+        if low and target and a.achieved_pfd_avg > target:
+            flags.append(f"Achieved PFDavg over the last 12 months {a.achieved_pfd_avg:.2e} "
+                         f"exceeds the required {target:.2e}" + _reasons(d, last12, start_12))
+        if low and target and obs12.unavailability > target:
+            flags.append(f"Observed unavailability over the last 12 months "
+                         f"{obs12.unavailability:.2e} ({obs12.unavailable_hours:.0f} h) exceeds "
+                         f"the required {target:.2e}: failures found show the function could "
+                         "not act for part of the time.")
+        drivers = _drivers(d, design, result, last12, obs12, rates, start_12)
+        for entry in detail["subsystems"]:
+            entry["drivers"] = drivers.get(entry["name"], [])
+        detail["drivers"] = drivers.get(None, [])
         flags.extend(_field_flags(d, type_stats, as_of))
+        verdict = eng_verdict.judge(
+            target_sil=sif.target_sil, low_demand=low, target_pfd_avg=target,
+            target_pfh_per_hour=design.target_pfh_per_hour, design_pfd_avg=result.pfd_avg,
+            design_pfh_per_hour=result.pfh_per_hour, achieved_pfd_avg_12m=a.achieved_pfd_avg,
+            observed_unavailability_12m=a.observed_unavailability,
+            projected_pfd_avg=a.projected_pfd_avg, projection_missing=projection_missing,
+            architectural_sil=result.architectural_sil,
+            systematic_capability=result.systematic_capability)
+        a.verdict = verdict.as_dict()
+        a.meets_target = verdict.meets
         payload = {"design": [vars(s) | {"voting": str(s.voting)} for s in design.subsystems],
                    "events": [(c.obj.pk, [(e.at.isoformat(), e.kind, e.failed)
                                           for e in c.events]) for c in d.all_components()],
@@ -586,12 +634,105 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         a.inputs_digest = _digest(payload)
     except EngineError as exc:
         a.error = str(exc)
+        a.verdict = eng_verdict.judge(target_sil=sif.target_sil, error=str(exc)).as_dict()
         a.meets_target = None
         flags.append(f"Could not be calculated: {exc}")
         a.inputs_digest = _digest({"error": str(exc), "sif": sif.pk})
     a.flags = flags
     a.detail = detail
     return a
+
+
+def _episodes_detail(d: SifData, since: eng_obs.ObservedResult,
+                     last12: eng_obs.ObservedResult) -> list[dict]:
+    """Observed episodes since in service, with the hours inside the last 12 months."""
+    in12 = {(e.group, e.channels, e.found_at): e.hours_in_window for e in last12.episodes}
+    out = []
+    for e in since.episodes:
+        sub = next((s for s in d.subsystems if s.name == e.group), None)
+        comps = d.components.get(sub.pk, []) if sub else []
+        out.append({
+            "subsystem": e.group,
+            "components": [comps[i].obj.tag for i in e.channels if i < len(comps)],
+            "onset_from": e.onset_from.isoformat(), "onset_to": e.found_at.isoformat(),
+            "restored_at": e.restored_at.isoformat(),
+            "hours_in_window": in12.get((e.group, e.channels, e.found_at), 0.0),
+            "hours": e.hours_in_window, "common_cause": e.common_cause,
+            "found_by": {"full": "full test", "partial": "partial test"}.get(e.found_by,
+                                                                             e.found_by),
+        })
+    return out
+
+
+def _rates_detail(d: SifData, rates: RateTable) -> list[dict]:
+    """Each component's design, type and own rate, and whether it is a repeat offender."""
+    out = []
+    for cd in d.all_components():
+        c = cd.obj
+        dev = rates.device(c, cd.events)
+        out.append({
+            "component": c.tag, "component_id": c.pk,
+            "device_type": c.device_type.name if c.device_type_id else "",
+            "design_per_hour": c.lambda_du, "type_per_hour": rates.type_rate(c),
+            "own_per_hour": dev.rate, "used_per_hour": rates.lambda_du(c, cd.events),
+            "failures": dev.failures, "hours": dev.hours,
+            "repeat_offender": dev.repeat_offender,
+            "reason": ("fails significantly more often than its device type: "
+                       + dev.excess.reason.replace("the assumed rate is too low",
+                                                   "the type's rate does not fit this device")
+                       ) if dev.repeat_offender else dev.excess.reason,
+        })
+    return out
+
+
+def _drivers(d: SifData, design, result, last12, obs12, rates: RateTable, start_12
+             ) -> dict[str | None, list[str]]:
+    """What moves the achieved and observed figures away from the design, per subsystem
+    (key: its name) and for the whole SIF (key None), in plain words."""
+    out: dict[str | None, list[str]] = defaultdict(list)
+    end = last12.window_end
+    for sub, sin in zip(d.subsystems, design.subsystems):
+        lines = out[sub.name]
+        comps = d.components.get(sub.pk, [])
+        found = [(cd.obj.tag, e) for cd in comps for e in cd.events
+                 if e.failed and start_12 <= e.at <= end]
+        if found:
+            tags = sorted({t for t, _ in found})
+            lines.append(f"{len(found)} dangerous undetected failure(s) found in the last 12 "
+                         f"months ({', '.join(tags)}): the function was probably failed for "
+                         "part of the interval before each finding (observed figure)")
+        interval = sin.proof_test_interval_hours
+        late = []
+        for cd in comps:
+            full = [e.at for e in cd.events if e.kind == "full"]
+            prev = _aware(cd.obj.in_service_on) if cd.obj.in_service_on else None
+            for at in full + [end]:
+                if prev is not None and at >= start_12 and (
+                        at - prev).total_seconds() / 3600 > interval + 24:
+                    late.append(cd.obj.tag)
+                    break
+                prev = at
+        if late:
+            lines.append(f"full proof test later than its {interval / HOURS_PER_MONTH:.0f}-month "
+                         f"interval in the last 12 months or now overdue ({', '.join(late)}): "
+                         "the hidden-failure probability kept growing")
+        if sin.proof_test_coverage < 1:
+            lines.append(f"{1 - sin.proof_test_coverage:.0%} of λDU is not revealed by the proof "
+                         "test and keeps accumulating until replacement or overhaul")
+        high = []
+        for cd in comps:
+            used = rates.lambda_du(cd.obj, cd.events)
+            if cd.obj.lambda_du > 0 and used > 1.1 * cd.obj.lambda_du:
+                high.append(f"{cd.obj.tag} {used:.2e}/h = {used / cd.obj.lambda_du:.1f}x design")
+        if high:
+            lines.append("failure rate from field data above the design rate ("
+                         + "; ".join(high) + ")")
+    if last12.bypass_hours > 0:
+        out[None].append(f"{last12.bypass_hours:.0f} h in bypass without equivalent measures "
+                         "in the last 12 months (counted as unable to act)")
+    for sub in d.subsystems:
+        out[None].extend(f"{sub.name}: {x}" for x in out[sub.name])
+    return out
 
 
 def _reasons(d: SifData, res, start) -> str:
@@ -649,7 +790,7 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     types = {c.obj.device_type_id for d in loaded for c in d.all_components()}
     stats_by_site = {sid: device_type_stats(sid, as_of.date(), types) for sid in site_ids}
     sites = {d.sif.unit.site_id: d.sif.unit.site for d in loaded}
-    rates = {sid: rate_table(sites[sid], stats_by_site[sid]) for sid in site_ids}
+    rates = {sid: rate_table(sites[sid], stats_by_site[sid], as_of.date()) for sid in site_ids}
     dues = _full_due_dates(sif_queryset, as_of.date())
     out = []
     for d in loaded:
@@ -663,7 +804,11 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
                                   trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
                                   flags=[f"Could not be calculated: {exc}"],
                                   inputs_digest=_digest({"error": str(exc)})))
+    previous = latest_assessments([a.sif_id for a in out])
     Assessment.objects.bulk_create(out, batch_size=500)
+    from register.scan import notify_verdict_changes
+
+    notify_verdict_changes([(previous.get(a.sif_id), a) for a in out])
     return out
 
 
@@ -696,7 +841,7 @@ def pfd_series_for(sif: SafetyFunction, start: dt.datetime, end: dt.datetime, po
     """PFD(t) of one SIF between two dates, for charts."""
     d = load(SafetyFunction.objects.filter(pk=sif.pk))[0]
     stats = device_type_stats(sif.unit.site_id, end.date())
-    hist = history_input(d, rate_table(sif.unit.site, stats))
+    hist = history_input(d, rate_table(sif.unit.site, stats, end.date()))
     return eng_hist.pfd_series(hist, start, end, points, as_of=end)
 
 
@@ -707,7 +852,8 @@ def deferral_projection(plan: TestPlan, proposed_on: dt.date, as_of: dt.datetime
     as_of = as_of or timezone.now()
     d = load(SafetyFunction.objects.filter(pk=plan.sif_id))[0]
     stats = device_type_stats(plan.sif.unit.site_id, as_of.date())
-    hist = history_input(d, rate_table(plan.sif.unit.site, stats), assume_closed_after=as_of)
+    hist = history_input(d, rate_table(plan.sif.unit.site, stats, as_of.date()),
+                         assume_closed_after=as_of)
     due = status_of(plan, as_of.date()).due_on
     due_at = max(_aware(due), as_of)
     proposed_at = max(_aware(proposed_on), as_of)

@@ -26,6 +26,16 @@ class Assessment(models.Model):
     achieved_pfd_avg = models.FloatField(null=True)
     achieved_since_service_pfd_avg = models.FloatField(null=True)
     projected_pfd_avg = models.FloatField(null=True)
+    observed_unavailability = models.FloatField(
+        _("observed unavailability, last 12 months"), null=True,
+        help_text=_("Share of the time the function could not act, estimated from the "
+                    "failures found (onset after the last test that would have revealed "
+                    "them), repairs and bypasses."))
+    observed_since_service = models.FloatField(
+        _("observed unavailability since in service"), null=True)
+    verdict = models.JSONField(
+        default=dict, help_text=_("Every criterion of 'meets target' with pass / fail / "
+                                  "unknown and its reason (calcs.engine.verdict)."))
     achieved_sil = models.PositiveSmallIntegerField(null=True)
     architectural_sil = models.PositiveSmallIntegerField(null=True)
     systematic_sil = models.PositiveSmallIntegerField(null=True)

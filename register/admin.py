@@ -1,4 +1,10 @@
-"""Django admin for the whole register, usable by a safety lead on day one."""
+"""Django admin: set up sites, units, people and the device library; read the rest.
+
+Everything that moves a figure (design data, plans, test records, demands, bypasses,
+deferrals) is changed only through the register's pages and services, which record a
+reason and a change reference, validate, and recompute; the admin shows those records
+read-only with their change history.
+"""
 
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
@@ -8,6 +14,27 @@ from . import models as m
 
 class HistoryAdmin(SimpleHistoryAdmin):
     """Every register model keeps a change history, viewable from its admin page."""
+
+
+class ReadOnlyMixin:
+    """View and history only: writes go through register.services."""
+
+    def has_add_permission(self, request, obj=None):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_delete_permission(self, request, obj=None):
+        return False
+
+
+class ReadOnlyAdmin(ReadOnlyMixin, HistoryAdmin):
+    pass
+
+
+class ReadOnlyInline(ReadOnlyMixin, admin.TabularInline):
+    extra = 0
 
 
 @admin.register(m.Site)
@@ -38,23 +65,23 @@ class DeviceTypeAdmin(HistoryAdmin):
     search_fields = ("name", "source")
 
 
-class CauseInline(admin.TabularInline):
+class CauseInline(ReadOnlyInline):
     model = m.InitiatingCause
     extra = 0
 
 
-class LayerInline(admin.TabularInline):
+class LayerInline(ReadOnlyInline):
     model = m.ProtectionLayer
     extra = 0
 
 
-class ModifierInline(admin.TabularInline):
+class ModifierInline(ReadOnlyInline):
     model = m.ConditionalModifier
     extra = 0
 
 
 @admin.register(m.HazardScenario)
-class HazardScenarioAdmin(HistoryAdmin):
+class HazardScenarioAdmin(ReadOnlyAdmin):
     list_display = ("reference", "title", "site", "unit", "category",
                     "tolerable_frequency_per_year")
     list_filter = ("site", "unit", "category")
@@ -62,13 +89,13 @@ class HazardScenarioAdmin(HistoryAdmin):
     inlines = [CauseInline, LayerInline, ModifierInline]
 
 
-class SubsystemInline(admin.TabularInline):
+class SubsystemInline(ReadOnlyInline):
     model = m.Subsystem
     extra = 0
     show_change_link = True
 
 
-class PlanInline(admin.TabularInline):
+class PlanInline(ReadOnlyInline):
     model = m.TestPlan
     extra = 0
     fields = ("name", "kind", "interval_months", "coverage", "next_due_on", "cached_state")
@@ -77,7 +104,7 @@ class PlanInline(admin.TabularInline):
 
 
 @admin.register(m.SafetyFunction)
-class SafetyFunctionAdmin(HistoryAdmin):
+class SafetyFunctionAdmin(ReadOnlyAdmin):
     list_display = ("tag", "name", "unit", "target_sil", "demand_mode", "life_stage", "owner")
     list_filter = ("unit__site", "unit", "target_sil", "demand_mode", "life_stage")
     search_fields = ("tag", "name", "subsystems__components__tag")
@@ -86,7 +113,7 @@ class SafetyFunctionAdmin(HistoryAdmin):
     list_select_related = ("unit", "owner")
 
 
-class ComponentInline(admin.TabularInline):
+class ComponentInline(ReadOnlyInline):
     model = m.Component
     extra = 0
     fields = ("tag", "device_type", "in_service_on", "lambda_du_per_hour",
@@ -95,7 +122,7 @@ class ComponentInline(admin.TabularInline):
 
 
 @admin.register(m.Subsystem)
-class SubsystemAdmin(HistoryAdmin):
+class SubsystemAdmin(ReadOnlyAdmin):
     list_display = ("__str__", "role", "voting", "beta", "beta_d", "mttr_hours")
     list_filter = ("role", "voting")
     search_fields = ("sif__tag", "name")
@@ -103,20 +130,20 @@ class SubsystemAdmin(HistoryAdmin):
 
 
 @admin.register(m.Component)
-class ComponentAdmin(HistoryAdmin):
+class ComponentAdmin(ReadOnlyAdmin):
     list_display = ("tag", "device_type", "subsystem", "in_service_on", "data_basis")
     list_filter = ("device_type", "data_basis", "subsystem__role")
     search_fields = ("tag", "subsystem__sif__tag")
     list_select_related = ("device_type", "subsystem__sif")
 
 
-class StepInline(admin.TabularInline):
+class StepInline(ReadOnlyInline):
     model = m.TestStep
     extra = 0
 
 
 @admin.register(m.TestPlan)
-class TestPlanAdmin(HistoryAdmin):
+class TestPlanAdmin(ReadOnlyAdmin):
     list_display = ("__str__", "kind", "interval_months", "coverage", "next_due_on",
                     "cached_state")
     list_filter = ("kind", "cached_state", "sif__unit")
@@ -126,19 +153,19 @@ class TestPlanAdmin(HistoryAdmin):
     inlines = [StepInline]
 
 
-class ResultInline(admin.TabularInline):
+class ResultInline(ReadOnlyInline):
     model = m.ComponentResult
     extra = 0
 
 
-class AttachmentInline(admin.TabularInline):
+class AttachmentInline(ReadOnlyInline):
     model = m.Attachment
     extra = 0
     readonly_fields = ("original_name", "content_type", "size_bytes", "sha256", "uploaded_by")
 
 
 @admin.register(m.TestRecord)
-class TestRecordAdmin(HistoryAdmin):
+class TestRecordAdmin(ReadOnlyAdmin):
     """Signed records are read-only here as everywhere: corrections supersede them."""
 
     list_display = ("__str__", "kind", "status", "performed_by", "verified_by", "performed_at")
@@ -148,26 +175,16 @@ class TestRecordAdmin(HistoryAdmin):
     inlines = [ResultInline, AttachmentInline]
     list_select_related = ("sif", "performed_by", "verified_by")
 
-    def has_change_permission(self, request, obj=None):
-        if obj is not None and obj.is_signed:
-            return False
-        return super().has_change_permission(request, obj)
-
-    def has_delete_permission(self, request, obj=None):
-        if obj is not None and obj.is_signed:
-            return False
-        return super().has_delete_permission(request, obj)
-
 
 @admin.register(m.Demand)
-class DemandAdmin(HistoryAdmin):
+class DemandAdmin(ReadOnlyAdmin):
     list_display = ("sif", "occurred_at", "successful", "spurious")
     list_filter = ("successful", "spurious", "sif__unit")
     search_fields = ("sif__tag", "description")
 
 
 @admin.register(m.Bypass)
-class BypassAdmin(HistoryAdmin):
+class BypassAdmin(ReadOnlyAdmin):
     list_display = ("sif", "component", "started_at", "ended_at", "authorised_hours",
                     "authorised_by", "measures_effective")
     list_filter = ("measures_effective", "sif__unit")
@@ -175,7 +192,7 @@ class BypassAdmin(HistoryAdmin):
 
 
 @admin.register(m.Deferral)
-class DeferralAdmin(HistoryAdmin):
+class DeferralAdmin(ReadOnlyAdmin):
     list_display = ("plan", "due_on", "proposed_on", "status", "requested_by", "decided_by")
     list_filter = ("status",)
     search_fields = ("plan__sif__tag", "reason")

@@ -2,7 +2,9 @@
 
 Both charts must read in black and white and on paper: the SIL bands differ by hatch
 pattern and carry their name as text, the target is a dashed line with a label, and
-series differ by line style and marker, not only by colour.
+series differ by line style and marker, not only by colour. On the PFD(t) chart each
+observed episode (a failure found, from its estimated onset to its restoration) is a
+vertical band with its own hatch, and the moment it was found a dotted vertical line.
 """
 
 from __future__ import annotations
@@ -23,6 +25,12 @@ from calcs.engine.sil import sil_band
 BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
 BAND_GREY = {1: "#f2f2f2", 2: "#e4e4e4", 3: "#d6d6d6", 4: "#c8c8c8"}
 WIDTH_IN, HEIGHT_IN = 9.0, 3.6
+#: Observed episodes: vertical bands, hatched unlike any SIL band.
+EPISODE_HATCH = "||"
+EPISODE_FACE = "#f6d8d8"
+EPISODE_EDGE = "#7a1f1f"
+EPISODE_LABEL = "failed channel: possible onset to restoration"
+FOUND_LABEL = "failure found"
 
 
 def _figure(title: str):
@@ -64,6 +72,36 @@ def _limits(values, target):
     return max(low, 1e-7), min(max(high, low * 10), 1.0)
 
 
+def shade_episodes(ax, episodes, start: dt.datetime | None = None,
+                   end: dt.datetime | None = None) -> int:
+    """Shade each observed episode from its estimated onset (``onset_from``) to its
+    restoration (``restored_at``), clipped to ``start``..``end``, and mark the moment it was
+    found (``onset_to``) with a dotted line. Episodes carry datetimes (``presenters.observed_episodes``).
+    Adds one legend entry for the bands and one for the marks; returns how many were drawn.
+    """
+    drawn = 0
+    found = []
+    for ep in episodes or []:
+        lo, hi = ep["onset_from"], ep["restored_at"]
+        if start is not None:
+            lo = max(lo, start)
+        if end is not None:
+            hi = min(hi, end)
+        if hi <= lo:
+            continue
+        ax.axvspan(lo, hi, facecolor=EPISODE_FACE, edgecolor=EPISODE_EDGE, hatch=EPISODE_HATCH,
+                   linewidth=0.6, alpha=0.75, zorder=1,
+                   label=EPISODE_LABEL if drawn == 0 else None)
+        at = ep.get("onset_to")
+        if at is not None and lo <= at <= hi:
+            found.append(at)
+        drawn += 1
+    for i, at in enumerate(found):
+        ax.axvline(at, color=EPISODE_EDGE, linestyle=(0, (1, 1.5)), linewidth=1.3, zorder=5,
+                   label=FOUND_LABEL if i == 0 else None)
+    return drawn
+
+
 def _log_axis(ax, low: float, high: float):
     """Log scale with plain tick labels (1e-03), no math text."""
     ax.set_yscale("log")
@@ -81,14 +119,18 @@ def _svg(fig) -> bytes:
     return buf.getvalue()
 
 
-def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str) -> bytes:
-    """PFD(t): sawtooth from the recorded tests, target line, SIL bands hatched."""
+def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str,
+              episodes=None) -> bytes:
+    """PFD(t): sawtooth from the recorded tests, target line, SIL bands hatched, and the
+    observed episodes (see ``shade_episodes``) within the plotted period."""
     fig, ax = _figure(f"{tag}: probability of failure on demand over time")
     values = list(values)
     low, high = _limits(values, target)
     _shade_bands(ax, low, high)
     if times:
         ax.plot(times, values, color="black", linewidth=1.3, label="PFD(t)", zorder=4)
+        if shade_episodes(ax, episodes, min(times), max(times)) and len(times) > 1:
+            ax.set_xlim(min(times), max(times))
     _target(ax, target)
     _log_axis(ax, low, high)
     ax.set_ylabel("PFD(t)")

@@ -62,6 +62,7 @@ class DataBasis(models.TextChoices):
 class RateBasis(models.TextChoices):
     """Which failure rate the achieved PFDavg uses (a site setting)."""
 
+    FIELD = "field", _("Field: each device's own record, updated from its type's plant-wide rate")
     DESIGN = "design", _("Design rate")
     BAYES = "bayes", _("Design rate updated by field data (Bayesian mean)")
     UPPER = "upper", _("Field data upper confidence bound")

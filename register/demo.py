@@ -16,9 +16,11 @@ from pathlib import Path
 from django.conf import settings
 from django.contrib.auth import get_user_model
 from django.db import transaction
+from django.utils import timezone
 
 from . import choices, followup, services
 from .models import (
+    HOURS_PER_MONTH,
     Component,
     ConditionalModifier,
     DeviceType,
@@ -181,7 +183,7 @@ class _Builder:
         for day in dates:
             recent = day > self.today - dt.timedelta(days=3 * 365)
             self.record(sif, full_plan, choices.TestKind.FULL, day, components, rng, setpoint,
-                        tpl, fail_rate=0.006, force_fail=finals[0] if hot and recent else None)
+                        tpl, fail_rate=1.0, force_fail=finals[0] if hot and recent else None)
         if tpl["pst"]:
             pst_plan = TestPlan.objects.create(
                 sif=sif, name="Partial stroke test", kind=choices.TestKind.PARTIAL,
@@ -272,9 +274,13 @@ class _Builder:
         results = []
         steps = {s.position: s for s in plan.steps.all()} if plan else {}
         for comp in components:
-            # Shutdown valves fail more often than their library rate says, so the demo
-            # shows a device type flagged by the field-data test.
-            rate = fail_rate * 4 if comp.device_type.name.startswith("Shutdown valve") else fail_rate
+            # A test finds a DU failure about as often as the device's library rate says
+            # (lambda_DU x the plan interval); shutdown valves somewhat more often, so the
+            # demo shows a device type flagged by the field-data test.
+            interval_h = (plan.interval_months if plan else 12) * HOURS_PER_MONTH
+            rate = fail_rate * comp.lambda_du * interval_h
+            if comp.device_type.name.startswith("Shutdown valve"):
+                rate *= 1.5
             fails = comp == force_fail or rng.random() < rate
             role = comp.subsystem.role
             measurements = []
@@ -322,7 +328,7 @@ class _Builder:
         day = in_service + dt.timedelta(days=182)
         while day < self.today - dt.timedelta(days=20):
             if all(abs((day - f).days) > 45 for f in full_dates) and rng.random() < 0.9:
-                fails = rng.random() < 0.01
+                fails = rng.random() < 0.004
                 results = [services.ResultInput(
                     component=c,
                     as_found=choices.Verdict.FAIL if fails and i == 0 else choices.Verdict.PASS,
@@ -382,7 +388,10 @@ class _Builder:
                 measures_effective=False)
             services.close_bypass(b, lead, ended_at=start + dt.timedelta(
                 hours=hours * rng.uniform(0.3, 1.4)))
-        now = dt.datetime.combine(self.today, dt.time(12, 0), tzinfo=dt.UTC)
+        # noon of the demo day, or the present moment when loading before noon (a record
+        # is never dated in the future)
+        now = min(dt.datetime.combine(self.today, dt.time(12, 0), tzinfo=dt.UTC),
+                  timezone.now())
         services.open_bypass(user=lead, sif=sifs["U30-SIF-302"],
                              started_at=now - dt.timedelta(hours=3), authorised_hours=12,
                              reason="Level transmitter LT-302B replacement",

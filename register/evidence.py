@@ -29,7 +29,7 @@ from calcs import adapter
 from calcs.engine import history as eng_hist
 from calcs.engine.errors import EngineError
 
-from . import choices
+from . import choices, presenters
 from .audit import verify_chain
 from .models import (
     Bypass,
@@ -58,13 +58,18 @@ DESIGN_FORMULA = ("IEC 61508-6 Annex B simplified equations (PFDavg per subsyste
 ACHIEVED_FORMULA = ("Time-dependent model: PFD(t) rebuilt from the recorded tests, demands, "
                     "failures found and bypasses of each channel, averaged over the window "
                     "(site rate basis applied)")
+OBSERVED_METHOD = ("Observed unavailability: share of the time the function could not act, "
+                   "estimated from the failures actually found (each with an unknown onset "
+                   "after the last test that would have revealed it, counted as failed from "
+                   "that onset, weighted by probability, until restored) and from bypass "
+                   "time")
 CHART_DPI = 72
 CHART_POINTS = 240
 OVERDUE_STATES = {choices.PlanState.OVERDUE, choices.PlanState.ESCALATED,
                   choices.PlanState.ESCALATED_2}
 
-CSV_FILES = ("sifs", "tests", "failures", "demands", "bypasses", "deferrals", "overdue",
-             "changes")
+CSV_FILES = ("sifs", "criteria", "tests", "failures", "demands", "bypasses", "deferrals",
+             "overdue", "changes")
 
 
 def packs_dir() -> Path:
@@ -210,9 +215,17 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
                 "achieved_since_service_pfd_avg": a.achieved_since_service_pfd_avg,
                 "projected_pfd_avg": a.projected_pfd_avg, "achieved_sil": a.achieved_sil,
                 "architectural_sil": a.architectural_sil, "systematic_sil": a.systematic_sil,
-                "meets_target": a.meets_target, "rate_basis": a.rate_basis, "flags": a.flags,
-                "detail": a.detail, "inputs_digest": a.inputs_digest, "error": a.error,
-                "design_formula": DESIGN_FORMULA, "achieved_formula": ACHIEVED_FORMULA}
+                "observed_unavailability_12m": a.observed_unavailability,
+                "observed_since_service": a.observed_since_service,
+                "meets_target": a.meets_target,
+                "verdict_label": presenters.verdict_badge(a.meets_target).label,
+                "verdict_summary": presenters.verdict_summary(a),
+                "verdict": a.verdict or {},
+                "rate_basis": a.rate_basis,
+                "rate_basis_label": presenters.rate_basis_label(a.rate_basis),
+                "flags": a.flags, "detail": a.detail, "inputs_digest": a.inputs_digest,
+                "error": a.error, "design_formula": DESIGN_FORMULA,
+                "achieved_formula": ACHIEVED_FORMULA, "observed_method": OBSERVED_METHOD}
         per_sif[s.pk] = entry
         out.sifs.append(entry)
     if progress:
@@ -426,14 +439,17 @@ class ChartMaker:
         self.fig = Figure(figsize=(7.2, 2.6), dpi=CHART_DPI)
         FigureCanvasAgg(self.fig)
 
-    def png(self, tag, times, values, target, start, end) -> bytes:
+    def png(self, tag, times, values, target, start, end, episodes=()) -> bytes:
         import matplotlib.dates as mdates
         from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+        from .charts import shade_episodes
 
         fig = self.fig
         fig.clear()
         ax = fig.add_subplot(1, 1, 1)
         vals = [max(float(v), 1e-9) for v in values]
+        shade_episodes(ax, episodes, start, end)
         ax.plot(times, vals, color="black", linewidth=1.1, label="PFD(t)")
         data = [v for v in vals if v > 0] + ([target] if target else [])
         low = max(min(data) / 3, 1e-7) if data else 1e-5
@@ -467,7 +483,8 @@ def figures(pack: EvidencePack, col: Collected, progress=None) -> dict[int, byte
     t0 = _utc(pack.period_start)
     t1 = min(_utc(pack.period_end, end=True), timezone.now())
     types = {c.obj.device_type_id for d in col.loaded.values() for c in d.all_components()}
-    rates = adapter.rate_table(site, adapter.device_type_stats(site.pk, t1.date(), types))
+    rates = adapter.rate_table(site, adapter.device_type_stats(site.pk, t1.date(), types),
+                               as_of=t1.date())
     maker = ChartMaker()
     charts = {}
     entries = {e["id"]: e for e in col.sifs}
@@ -487,8 +504,10 @@ def figures(pack: EvidencePack, col: Collected, progress=None) -> dict[int, byte
             entry["period_achieved_pfd_avg"] = window.pfd_avg
             entry["period_window"] = [_iso(start), _iso(t1)]
             times, values = eng_hist.pfd_series(hist, start, t1, CHART_POINTS, as_of=t1)
+            episodes = presenters.observed_episodes(
+                (entry.get("assessment") or {}).get("detail"))
             charts[entry["id"]] = maker.png(entry["tag"], times, list(values),
-                                            entry.get("target_pfd_avg"), start, t1)
+                                            entry.get("target_pfd_avg"), start, t1, episodes)
         except EngineError as exc:
             entry["chart_note"] = f"No chart: {exc}"
         if progress and (i % 10 == 0 or i == n - 1):
@@ -520,14 +539,25 @@ def csv_files(col: Collected) -> dict[str, bytes]:
             "target_pfd_avg": e.get("target_pfd_avg"), "design_pfd_avg": a.get("design_pfd_avg"),
             "achieved_pfd_avg_12m": a.get("achieved_pfd_avg_12m"),
             "achieved_pfd_avg_period": e.get("period_achieved_pfd_avg"),
-            "meets_target": a.get("meets_target"), "assessed_at": a.get("computed_at"),
+            "observed_unavailability_12m": a.get("observed_unavailability_12m"),
+            "meets_target": a.get("meets_target"),
+            "verdict": a.get("verdict_label") if a else "no assessment",
+            "verdict_summary": a.get("verdict_summary"),
+            "rate_basis": a.get("rate_basis"), "assessed_at": a.get("computed_at"),
             "tests": len(e["tests"]), "failures": len(e["failures"]),
             "demands": len(e["demands"]), "bypasses": len(e["bypasses"]),
             "deferrals": len(e["deferrals"]), "overdue_spans": len(e["overdue"]),
             "changes": len(e["changes"])})
+    criteria = [{"sif": e["tag"], "criterion": line.get("key"), "label": line.get("label"),
+                 "status": line.get("status"), "reason": line.get("reason"),
+                 "value": line.get("value"), "limit": line.get("limit")}
+                for e in col.sifs
+                for line in ((e["assessment"] or {}).get("verdict") or {}).get("lines", [])]
     t = col.tables
     return {
         "sifs.csv": _csv(sif_rows, list(sif_rows[0]) if sif_rows else ["sif"]),
+        "criteria.csv": _csv(criteria, ["sif", "criterion", "label", "status", "reason",
+                                        "value", "limit"]),
         "tests.csv": _csv(t["tests"], ["sif", "id", "performed_at", "kind", "performer",
                                        "verifier", "status", "signed_at", "verified_at",
                                        "supersedes", "superseded_by", "correction_reason",
@@ -565,7 +595,8 @@ def cover_facts(pack: EvidencePack, chain) -> dict:
                   "verified_ok": chain.ok, "entries": chain.entries,
                   "first_break": str(chain.first_break) if chain.first_break else None},
         "caution": CAUTION,
-        "methods": {"design": DESIGN_FORMULA, "achieved": ACHIEVED_FORMULA},
+        "methods": {"design": DESIGN_FORMULA, "achieved": ACHIEVED_FORMULA,
+                    "observed": OBSERVED_METHOD},
     }
 
 
@@ -672,10 +703,6 @@ def _esc(text) -> str:
     return escape("" if text is None else str(text))
 
 
-def _yes_no(value) -> str:
-    return {True: "yes", False: "NO", None: "not known"}[value]
-
-
 def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress=None) -> bytes:
     _fonts()
     from reportlab import rl_config
@@ -755,8 +782,14 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
              Paragraph("<b>Caution:</b> " + _esc(CAUTION), caution),
              Paragraph("How to read this pack", h3),
              Paragraph(_esc(
-                 "Design PFDavg: " + DESIGN_FORMULA + ". Achieved PFDavg: " + ACHIEVED_FORMULA
-                 + ". The compliance summary uses the latest stored assessment of each SIF "
+                 "Design PFDavg: " + DESIGN_FORMULA + "; the method of each subsystem's figure "
+                 "is named with it. Achieved PFDavg: " + ACHIEVED_FORMULA + ". "
+                 + OBSERVED_METHOD + ". A SIF meets its target only when every criterion of "
+                 "its verdict passes (design, achieved and observed over the last 12 months, "
+                 "projected to the next due test, architecture, systematic capability); one "
+                 "failing criterion means it does not meet its target, and a criterion that "
+                 "cannot be calculated leaves it not shown to meet its target. "
+                 "The compliance summary uses the latest stored assessment of each SIF "
                  "(its date is shown); the achieved PFDavg over the period is recomputed "
                  "for this pack. Names of performers and verifiers are as signed on the "
                  "records. Overdue periods come from the test plan states at each month end "
@@ -770,12 +803,14 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
         rows.append([e["tag"], e["name"], (f"SIL {e['target_sil']}\n"
                      f"{_g(e.get('target_pfd_avg'))}"),
                      _g(a.get("design_pfd_avg")), _g(a.get("achieved_pfd_avg_12m")),
+                     _g(a.get("observed_unavailability_12m")),
                      _g(e.get("period_achieved_pfd_avg")),
-                     _yes_no(a.get("meets_target")) if a else "no assessment",
+                     a["verdict_label"] if a else "no assessment",
                      (a.get("computed_at") or "-")])
     story += table(["SIF", "Name", "Target", "Design PFDavg", "Achieved, 12 months",
-                    "Achieved, period", "Meets target", "Assessed at"], rows,
-                   [0.11, 0.25, 0.1, 0.1, 0.1, 0.1, 0.09, 0.15], empty="No SIF in scope.")
+                    "Observed, 12 months", "Achieved, period", "Verdict", "Assessed at"], rows,
+                   [0.1, 0.19, 0.09, 0.09, 0.1, 0.1, 0.09, 0.11, 0.13],
+                   empty="No SIF in scope.")
     n = len(sifs)
     for i, e in enumerate(sifs):
         story += [PageBreak(), Paragraph(_esc(f"{e['tag']}  {e['name']}"), h1)]
@@ -815,24 +850,73 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
         if a is None:
             story.append(Paragraph("No stored assessment.", base))
         else:
+            subs = (a.get("detail") or {}).get("subsystems", [])
+            methods = "; ".join(f"{s.get('name')}: {s['pfd_method']}" for s in subs
+                                if s.get("pfd_method")) or DESIGN_FORMULA
             story.append(kv([
-                ("Design PFDavg", f"{_g(a['design_pfd_avg'])} - {DESIGN_FORMULA}"),
+                ("Verdict", f"{a['verdict_label']}. {a['verdict_summary']}"),
+                ("Design PFDavg", f"{_g(a['design_pfd_avg'])} - method: {methods}"),
                 ("Achieved PFDavg, last 12 months", (f"{_g(a['achieved_pfd_avg_12m'])} - "
                                                     f"{ACHIEVED_FORMULA}")),
+                ("Observed unavailability, last 12 months",
+                 f"{_g(a['observed_unavailability_12m'])} (beside the achieved PFDavg "
+                 f"{_g(a['achieved_pfd_avg_12m'])})"),
                 ("Achieved PFDavg since in service", _g(a["achieved_since_service_pfd_avg"])),
+                ("Observed unavailability since in service", _g(a["observed_since_service"])),
                 ("Achieved PFDavg over the pack period",
                  _g(e.get("period_achieved_pfd_avg"))
                  + (f" (window {e['period_window'][0]} to {e['period_window'][1]})"
                     if e.get("period_window") else "")),
-                ("Meets target", (f"{_yes_no(a['meets_target'])} (architecture SIL "
-                                 f"{a['architectural_sil'] or '-'}, systematic SC "
-                                 f"{a['systematic_sil'] or '-'}, achieved SIL "
-                                 f"{a['achieved_sil'] or '-'})")),
+                ("Limits", (f"architecture SIL {a['architectural_sil'] or '-'}, systematic "
+                            f"SC {a['systematic_sil'] or '-'}, achieved SIL "
+                            f"{a['achieved_sil'] or '-'}")),
+                ("Failure-rate basis", a["rate_basis_label"]),
                 ("Assessment", (f"computed {a['computed_at']}, as of {a['as_of']}, trigger "
-                               f"'{a['trigger']}', rate basis {a['rate_basis']}, inputs "
+                               f"'{a['trigger']}', rate basis {a['rate_basis'] or '-'}, inputs "
                                f"digest {a['inputs_digest'][:16]}…")),
             ]))
-            subs = (a.get("detail") or {}).get("subsystems", [])
+            lines = presenters.verdict_lines_from(a["verdict"])
+            story.append(Paragraph("Verdict: every criterion", h3))
+            story += table(["Criterion", "Result", "Why"],
+                           [[x["label"], x["badge"].label.upper() if x["status"] == "fail"
+                             else x["badge"].label, x["reason"]] for x in lines],
+                           [0.36, 0.12, 0.52], empty=presenters.LEGACY_NOTE)
+            story.append(Paragraph("Design, achieved and observed per subsystem", h3))
+            story += table(["Subsystem", "Design PFDavg", "Method of the design figure",
+                            "Achieved 12 m", "Observed 12 m", "What drives the difference"],
+                           [[f"{s.get('name')} ({s.get('voting')})", _g(s.get("design_pfd_avg")),
+                             s.get("pfd_method") or DESIGN_FORMULA,
+                             _g(s.get("achieved_pfd_avg")),
+                             _g(s.get("observed_unavailability")),
+                             Paragraph("<br/>".join("• " + _esc(x) for x in s.get("drivers")
+                                                    or []) or "-", small)] for s in subs],
+                           [0.13, 0.1, 0.2, 0.1, 0.1, 0.37], empty="No inputs stored.")
+            for driver in presenters.sif_drivers(a.get("detail")):
+                story.append(P("• " + driver, base))
+            offenders = presenters.repeat_offenders(a.get("detail"))
+            if offenders:
+                story.append(Paragraph("Components failing far more often than their "
+                                       "device type", h3))
+                story += table(["Component", "Device type", "Own rate /h", "Type rate /h",
+                                "Design rate /h", "Rate used /h", "Failures / hours",
+                                "Why flagged"],
+                               [[r.get("component"), r.get("device_type"),
+                                 _g(r.get("own_per_hour")), _g(r.get("type_per_hour")),
+                                 _g(r.get("design_per_hour")), _g(r.get("used_per_hour")),
+                                 f"{r.get('failures')} / {_g(r.get('hours'), '.0f')}",
+                                 r.get("reason") or ""] for r in offenders],
+                               [0.11, 0.13, 0.09, 0.09, 0.09, 0.09, 0.1, 0.3])
+            episodes = presenters.observed_episodes(a.get("detail"))
+            if episodes:
+                story.append(Paragraph("Periods the function could not act (observed)", h3))
+                story += table(["Subsystem", "Components", "Onset between", "Found by",
+                                "Restored", "Hours, last 12 months"],
+                               [[ep.get("subsystem"), ", ".join(ep["components"])
+                                 + (" (common cause)" if ep.get("common_cause") else ""),
+                                 f"{_iso(ep['onset_from'])} and {_iso(ep['onset_to'])}",
+                                 ep.get("found_by") or "-", _iso(ep["restored_at"]),
+                                 _g(ep.get("hours_in_window"), ".0f")] for ep in episodes],
+                               [0.12, 0.18, 0.3, 0.1, 0.17, 0.13])
             story.append(Paragraph("Inputs used per subsystem", h3))
             story += table(["Subsystem", "Voting", "λDU /h", "λDD /h", "β / βD", "T1 (h)",
                             "PTC", "MTTR / MRT (h)", "Design PFDavg", "Achieved 12 m"],

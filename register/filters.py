@@ -23,12 +23,22 @@ from .models import (
     Site,
     TestPlan,
 )
+from .presenters import VERDICT_BADGE, sif_ids_with_repeat_offenders
 
 PlanState = choices.PlanState
 LATE_STATES = [PlanState.OVERDUE, PlanState.ESCALATED, PlanState.ESCALATED_2]
 ESCALATED_STATES = [PlanState.ESCALATED, PlanState.ESCALATED_2]
 DEMAND_FLAG_TEXT = "Observed demand rate"
 ANY = "Any"
+#: ``life_stage`` value for every SIF that is not decommissioned (the overview's SIFs).
+CURRENT = "current"
+
+
+def not_decommissioned(qs):
+    """The SIFs the plant overview counts against their target: in design or in service.
+    The ``meets`` and ``repeat_offender`` filters select among these, so each overview
+    figure equals the length of the list its link opens."""
+    return qs.exclude(life_stage=choices.LifeStage.DECOMMISSIONED)
 
 
 def _yes_no():
@@ -75,10 +85,17 @@ class SifFilter(df.FilterSet):
                                 label="Site", empty_label=ANY)
     unit = df.ModelChoiceFilter(queryset=PlantUnit.objects.none(), empty_label=ANY)
     target_sil = df.ChoiceFilter(label="Target SIL", empty_label=ANY, choices=[(i, f"SIL {i}") for i in (1, 2, 3, 4)])
-    life_stage = df.ChoiceFilter(empty_label=ANY, choices=choices.LifeStage.choices)
-    meets = df.ChoiceFilter(label="Meets target", empty_label=ANY, method="filter_meets",
-                            choices=[("yes", "Meets target"), ("no", "Does not meet"),
-                                     ("unknown", "Not calculated")])
+    life_stage = df.ChoiceFilter(empty_label=ANY, method="by_life_stage", choices=[
+        (CURRENT, "In design or in service"), *choices.LifeStage.choices])
+    meets = df.ChoiceFilter(label="Verdict (latest calculation)", empty_label=ANY,
+                            method="filter_meets", choices=[
+                                ("yes", VERDICT_BADGE[True].label.capitalize()),
+                                ("no", VERDICT_BADGE[False].label.capitalize()),
+                                ("unknown", VERDICT_BADGE[None].label.capitalize()
+                                 + " (or not calculated)")])
+    repeat_offender = df.BooleanFilter(
+        widget=_yes_no(), method="by_repeat_offender",
+        label="Repeat offender (a component far above its type)")
     device_type = df.ModelChoiceFilter(queryset=DeviceType.objects.all(), method="by_type",
                                        field_name="subsystems__components__device_type",
                                        label="Device type", empty_label=ANY)
@@ -135,13 +152,30 @@ class SifFilter(df.FilterSet):
         return qs.filter(Q(tag__icontains=value) | Q(name__icontains=value) | Exists(comp))
 
     def filter_meets(self, qs, name, value):
-        if value == "yes":
-            return qs.filter(latest_meets=True)
-        if value == "no":
-            return qs.filter(latest_meets=False)
-        if value == "unknown":
-            return qs.filter(latest_meets__isnull=True)
-        return qs
+        """The stored verdict of the latest assessment (``meets_target``); a SIF with no
+        assessment is "not shown to meet". Decommissioned SIFs are left out."""
+        lookup = {"yes": {"latest_meets": True}, "no": {"latest_meets": False},
+                  "unknown": {"latest_meets__isnull": True}}.get(value)
+        if lookup is None:
+            return qs
+        return not_decommissioned(qs).filter(**lookup)
+
+    def by_repeat_offender(self, qs, name, value):
+        """SIFs (not decommissioned) whose latest assessment flags a component as a repeat
+        offender (``detail["rates"]``)."""
+        if value is None:
+            return qs
+        ids = sif_ids_with_repeat_offenders(
+            not_decommissioned(self.queryset).filter(latest_id__isnull=False)
+            .values("latest_id"))
+        return not_decommissioned(qs).filter(pk__in=ids) if value else qs.exclude(pk__in=ids)
+
+    def by_life_stage(self, qs, name, value):
+        if not value:
+            return qs
+        if value == CURRENT:
+            return not_decommissioned(qs)
+        return qs.filter(life_stage=value)
 
     def by_type(self, qs, name, value):
         if not value:

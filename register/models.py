@@ -91,7 +91,10 @@ class Site(models.Model):
     )
     rate_basis = models.CharField(
         _("failure rate used for achieved PFDavg"), max_length=10,
-        choices=choices.RateBasis.choices, default=choices.RateBasis.DESIGN,
+        choices=choices.RateBasis.choices, default=choices.RateBasis.FIELD,
+        help_text=_("Field (the default): each component's rate is its device type's "
+                    "plant-wide estimate updated by the component's own failures and hours "
+                    "(empirical Bayes). Design: the rates entered in the register."),
     )
     confidence_level = models.FloatField(
         _("confidence level for field failure rates"), default=0.70,
@@ -537,11 +540,6 @@ class Component(models.Model):
     def effective_sc(self) -> int | None:
         return self.systematic_capability or self.device_type.systematic_capability
 
-    @property
-    def diagnostic_coverage(self) -> float:
-        """DC = λDD / (λDD + λDU); 0 when there are no dangerous failures."""
-        d = self.lambda_dd + self.lambda_du
-        return self.lambda_dd / d if d else 0.0
 
     @property
     def safe_failure_fraction(self) -> float:
@@ -754,9 +752,6 @@ class TestRecord(models.Model):
         """False once a later record supersedes this one (one query if not prefetched)."""
         return not hasattr(self, "superseded_by")
 
-    @property
-    def found_failure(self) -> bool:
-        return any(r.as_found == choices.Verdict.FAIL for r in self.results.all())
 
     def clean(self):
         errors = {}
@@ -824,7 +819,42 @@ def _earliest_in_service(record: TestRecord) -> dt.date | None:
     return record.sif.in_service_on
 
 
-class ComponentResult(models.Model):
+class PartOfRecord(models.Model):
+    """A row that belongs to a test record (result, measurement, attachment): once the
+    record is signed it can be neither changed, added to, nor deleted; a correction
+    supersedes the record instead. A database trigger enforces the same on PostgreSQL
+    (migration 0005), so a raw SQL write cannot bypass it."""
+
+    #: Path from this row to its test record's id.
+    record_id_path = "record_id"
+
+    class Meta:
+        abstract = True
+
+    def _record_signed(self) -> bool:
+        record_id = (ComponentResult.objects.filter(pk=self.result_id).values_list(
+            "record_id", flat=True).first() if self.record_id_path == "result__record_id"
+            else self.record_id)
+        if record_id is None:
+            return False
+        return TestRecord.objects.filter(pk=record_id).exclude(
+            status=choices.RecordStatus.DRAFT).exists()
+
+    def save(self, *args, **kwargs):
+        if self._record_signed():
+            raise SignedRecordError(_("The test record is signed: its results, measurements "
+                                      "and attachments cannot be changed. Record a "
+                                      "correction that supersedes it instead."))
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        if self._record_signed():
+            raise SignedRecordError(_("The test record is signed: its results, measurements "
+                                      "and attachments cannot be deleted."))
+        return super().delete(*args, **kwargs)
+
+
+class ComponentResult(PartOfRecord):
     """As-found and as-left result of one component in one test, and any failure found."""
 
     record = models.ForeignKey(TestRecord, on_delete=models.CASCADE, related_name="results")
@@ -876,8 +906,10 @@ class ComponentResult(models.Model):
         return self.failure_mode == choices.FailureMode.DANGEROUS_UNDETECTED
 
 
-class MeasuredValue(models.Model):
+class MeasuredValue(PartOfRecord):
     """A value measured during a test step (trip value, closing time...)."""
+
+    record_id_path = "result__record_id"
 
     result = models.ForeignKey(ComponentResult, on_delete=models.CASCADE,
                                related_name="measurements")
@@ -901,7 +933,7 @@ class MeasuredValue(models.Model):
         return f"{self.quantity} {self.phase}: {self.value:g} {self.unit}"
 
 
-class Attachment(models.Model):
+class Attachment(PartOfRecord):
     """A photo or file attached to a test record."""
 
     record = models.ForeignKey(TestRecord, on_delete=models.CASCADE, related_name="attachments")

@@ -29,7 +29,7 @@ import datetime as dt
 from collections import defaultdict
 from dataclasses import dataclass
 
-from django.db.models import Max, Q
+from django.db.models import Max
 
 from . import choices
 from .models import (
@@ -220,8 +220,3 @@ def refresh_plans(plan_queryset, as_of: dt.date) -> dict[int, PlanStatus]:
     if changed:
         TestPlan.objects.bulk_update(changed, ["next_due_on", "cached_state"])
     return statuses
-
-
-def overdue_filter() -> Q:
-    """Cached-state filter for lists: overdue or escalated."""
-    return Q(cached_state__in=[PlanState.OVERDUE, PlanState.ESCALATED, PlanState.ESCALATED_2])

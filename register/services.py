@@ -228,11 +228,6 @@ def start_correction(original: TestRecord, user, reason: str) -> TestRecord:
                       correction_reason=reason)
 
 
-def current_records(queryset):
-    """Records not superseded by a later correction."""
-    return queryset.filter(superseded_by__isnull=True)
-
-
 # ---------------------------------------------------------------------------------------
 # Demands, bypasses, deferrals
 # ---------------------------------------------------------------------------------------

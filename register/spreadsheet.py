@@ -415,7 +415,7 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
     file_sifs = set()
     tests = OrderedDict()
 
-    kinds = [k for k in ("sif", "component", "test")]
+    kinds = ["sif", "component", "test"]
     for number, cells in rows:
         row = _Row(number, cells, errors)
         kind = row.choice("record", kinds)

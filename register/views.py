@@ -21,8 +21,8 @@ from calcs.engine.errors import EngineError
 from calcs.engine.sil import sil_band
 from calcs.models import Assessment
 
-from . import charts, choices
-from .filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter
+from . import charts, choices, presenters
+from .filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter, not_decommissioned
 from .models import (
     Bypass,
     Component,
@@ -150,6 +150,8 @@ class UnitRow:
     deferrals: int = 0
     deferral_days: int = 0  # oldest request, days waiting
     demand_flags: int = 0
+    repeat_offenders: int = 0  # components flagged in the latest assessments
+    repeat_sifs: int = 0  # SIFs with at least one of them
     on_time_due: int = 0
     on_time_ok: int = 0
 
@@ -163,7 +165,8 @@ class UnitRow:
 
     def add(self, other: UnitRow):
         for name in ("sifs", "meets", "fails", "unknown", "due_soon", "overdue", "escalated",
-                     "bypasses", "deferrals", "demand_flags", "on_time_due", "on_time_ok"):
+                     "bypasses", "deferrals", "demand_flags", "repeat_offenders",
+                     "repeat_sifs", "on_time_due", "on_time_ok"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
         for name in ("overdue_days", "escalated_days", "bypass_hours", "deferral_days"):
             setattr(self, name, max(getattr(self, name), getattr(other, name)))
@@ -176,22 +179,26 @@ def plant_overview(user, today: dt.date):
     now = timezone.now()
     units = list(PlantUnit.objects.for_user(user).select_related("site"))
     rows = {u.pk: UnitRow(u, u.site) for u in units}
-    sifs = list(SafetyFunction.objects.for_user(user).exclude(
-        life_stage=choices.LifeStage.DECOMMISSIONED).values_list("pk", "unit_id"))
+    sifs = list(not_decommissioned(SafetyFunction.objects.for_user(user))
+                .values_list("pk", "unit_id"))
     unit_of = dict(sifs)
     latest = adapter.latest_assessments(list(unit_of))
     for sif_id, unit_id in sifs:
         row = rows[unit_id]
         row.sifs += 1
         a = latest.get(sif_id)
-        if a is None or a.meets_target is None:
+        meets = a.meets_target if a else None  # the stored verdict, never recomputed here
+        if meets is None:
             row.unknown += 1
-        elif a.meets_target:
+        elif meets:
             row.meets += 1
         else:
             row.fails += 1
         if a and any(DEMAND_FLAG_TEXT in f for f in a.flags):
             row.demand_flags += 1
+        offenders = presenters.repeat_offenders(a.detail) if a else []
+        row.repeat_offenders += len(offenders)
+        row.repeat_sifs += bool(offenders)
     plans = TestPlan.objects.for_user(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
     for unit_id, state, due in plans.values_list("sif__unit_id", "cached_state", "next_due_on"):
         row = rows[unit_id]
@@ -266,6 +273,7 @@ def sif_list(request):
     page = Paginator(qs, PAGE_SIZE).get_page(request.GET.get("page"))
     for sif in page.object_list:
         sif.state_badge = _state_badge(sif.worst_state)
+        sif.verdict_badge = presenters.verdict_badge(sif.latest_meets)
     params = request.GET.copy()
     params.pop("page", None)
     export_sites = [s for s in Site.objects.for_user(request.user)
@@ -417,6 +425,7 @@ def sif_detail(request, pk):
     return render(request, "register/sif_detail.html", {
         "sif": sif, "lopa": lopa, "lopa_error": lopa_error, "design": design,
         "design_error": design_error, "subsystems": subsystems, "assessment": assessment,
+        "verdict": presenters.assessment_view(assessment),
         "target": target, "band": band, "records": records, "demands": d.demands[::-1],
         "bypasses": bypasses, "deferrals": deferrals, "plans": plans,
         "history": _history(sif, [s.pk for s in d.subsystems], comp_ids),
@@ -440,7 +449,9 @@ def sif_chart(request, pk, which):
             times, values = adapter.pfd_series_for(sif, start, end, points=400)
         except EngineError:
             times, values = [], []
-        svg = charts.pfd_chart(times, values, target, sif.tag)
+        latest = adapter.latest_assessments([sif.pk]).get(sif.pk)
+        episodes = presenters.observed_episodes(latest.detail if latest else None)
+        svg = charts.pfd_chart(times, values, target, sif.tag, episodes=episodes)
     else:
         points = list(Assessment.objects.filter(sif=sif).order_by("computed_at").values_list(
             "computed_at", "achieved_pfd_avg", "design_pfd_avg")[:500])

@@ -206,7 +206,7 @@ def sif_as_of_data(sif: SafetyFunction, day: dt.date) -> dict:
         d = adapter.load(SafetyFunction.objects.filter(pk=sif.pk))[0]
         _cut(d, end)
         stats = adapter.device_type_stats(sif.unit.site_id, day)
-        computed = adapter.assess(d, end, adapter.rate_table(sif.unit.site, stats), stats,
+        computed = adapter.assess(d, end, adapter.rate_table(sif.unit.site, stats, as_of=day), stats,
                                   trigger="as-of view (not stored)")
         if computed.error:
             computed_error = computed.error

@@ -329,3 +329,60 @@ def pool_device_type(records: Iterable[tuple[float, int]], *,
                   "no assumed rate to compare with")
     return DeviceTypeStats(count, failures, hours, point, lo, up, cl, b_mean, b_lo, b_up,
                            assumed_rate, p_value, exceeds, reason)
+
+
+# --------------------------------------------------------------------------
+# one device's own rate (empirical Bayes)
+
+#: Weight, in equivalent failures, of the device type's plant-wide rate when it serves as
+#: the prior of one device's own rate. With 2, a device must show about two failures of
+#: its own before its record weighs as much as its type: a stated, adjustable assumption
+#: of this software (empirical Bayes shrinkage), not taken from a standard.
+DEVICE_PRIOR_STRENGTH = 2.0
+
+
+@dataclass(frozen=True)
+class DeviceRate:
+    """One device's DU rate: its type's estimate updated by its own record."""
+
+    type_rate: float
+    failures: int
+    hours: float
+    posterior: GammaRate
+    excess: ExcessTest
+    repeat_offender: bool
+
+    @property
+    def rate(self) -> float:
+        """Posterior mean rate (per hour), the figure the calculations use."""
+        return self.posterior.mean
+
+    @property
+    def ratio(self) -> float:
+        return self.rate / self.type_rate
+
+
+def device_rate(type_rate: float, failures: int, hours: float, *,
+                prior_strength: float = DEVICE_PRIOR_STRENGTH,
+                alpha: float = DEFAULT_ALPHA) -> DeviceRate:
+    """Empirical-Bayes rate of one device (gamma-Poisson, NIST e-Handbook 8.4.6).
+
+    Prior Gamma(a = prior_strength, b = a / type_rate) has the type's plant-wide rate as
+    its mean; after the device's own ``failures`` in ``hours`` the posterior is
+    Gamma(a + n, b + T) and its mean (a + n) / (b + T) is the device's rate. A clean
+    record pulls the rate slightly below the type's, repeated failures raise it.
+    ``repeat_offender``: the one-sided Poisson test P(N >= n | type_rate * T) < alpha
+    (see :func:`poisson_excess_test`): the device fails significantly more often than
+    its type.
+    """
+    lam0 = _positive(type_rate, "type_rate")
+    n = _count(failures, "failures")
+    t = float(hours)
+    if not math.isfinite(t) or t < 0:
+        raise InputError("hours", f"must be at least 0, got {hours!r}")
+    post = prior_from_rate(lam0, prior_strength).updated(n, t)
+    if t > 0:
+        excess = poisson_excess_test(n, t, lam0, alpha)
+    else:
+        excess = ExcessTest(n, 0.0, 1.0, alpha, False, "no service time yet")
+    return DeviceRate(lam0, n, t, post, excess, excess.exceeds)

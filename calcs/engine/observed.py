@@ -221,11 +221,17 @@ def observed_unavailability(sif: _h.SifHistory, window_start=None, window_end=No
         raise InputError("window_end", "an evaluation date is required")
     end_h = _h._hours(window_end, "window_end")
     cut_h = end_h if as_of is None else _h._hours(as_of, "as_of")
-    c = _h._compile(sif, cut_h, end_h)  # bypasses, start of service, flags
+    prepared = _h._compile(sif, cut_h, end_h), _episodes(sif, cut_h, [])
+    return _evaluate(sif, prepared, window_start, window_end, order, max_piece_hours)
+
+
+def _evaluate(sif: _h.SifHistory, prepared, window_start, window_end, order: int = 8,
+              max_piece_hours: float = 2190.0) -> ObservedResult:
+    c, eps = prepared  # c: bypasses, start of service, flags
+    end_h = _h._hours(window_end, "window_end")
     flags = list(c.flags)
     a = _h._resolve_start(c, window_start, _h._as_utc_naive(window_end, "window_end"))
     a, b = _h._window(c, a, end_h, flags)
-    eps = _episodes(sif, cut_h, [])
     bounds = [a, b]
     for ep in eps:
         bounds += [ep.a, ep.b, *ep.restored.values()]
@@ -263,5 +269,7 @@ def observed_unavailability(sif: _h.SifHistory, window_start=None, window_end=No
 
 
 def observed_windows(sif: _h.SifHistory, windows, *, as_of) -> list[ObservedResult]:
-    """Several windows sharing one evaluation date."""
-    return [observed_unavailability(sif, s, e, as_of=as_of) for s, e in windows]
+    """Several windows sharing one evaluation date (prepared once)."""
+    cut_h = _h._hours(as_of, "as_of")
+    prepared = _h._compile(sif, cut_h, cut_h), _episodes(sif, cut_h, [])
+    return [_evaluate(sif, prepared, s, e) for s, e in windows]

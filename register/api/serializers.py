@@ -373,8 +373,9 @@ class AssessmentSerializer(serializers.ModelSerializer):
         fields = ["id", "sif", "computed_at", "as_of", "inputs_digest", "trigger",
                   "target_pfd_avg", "target_sil", "design_pfd_avg", "design_pfh_per_hour",
                   "achieved_pfd_avg", "achieved_since_service_pfd_avg", "projected_pfd_avg",
+                  "observed_unavailability", "observed_since_service",
                   "achieved_sil", "architectural_sil", "systematic_sil", "meets_target",
-                  "rate_basis", "flags", "detail", "error"]
+                  "verdict", "rate_basis", "flags", "detail", "error"]
         read_only_fields = fields
 
 

@@ -12,6 +12,7 @@ import datetime as dt
 
 import pytest
 from django.core.cache import cache
+from django.db import transaction
 from django.utils import timezone
 
 from tests import factories as f
@@ -205,10 +206,18 @@ CASES = [
 ]
 
 
+@pytest.fixture(scope="module")
+def world(django_db_setup, django_db_blocker):
+    """One two-site world for the whole table, built once; each case runs in its own
+    savepoint inside it and is rolled back, and the world is rolled back at the end."""
+    with django_db_blocker.unblock(), transaction.atomic():
+        yield build_world()
+        transaction.set_rollback(True)
+
+
 @pytest.mark.parametrize(("row", "role", "where", "expected"), CASES)
-def test_status(row, role, where, expected):
+def test_status(world, row, role, where, expected):
     cache.clear()  # throttling counters
-    world = build_world()
     place = world.own if where == "own" else world.other
     name, method, url, body, _ = row
     client = world.client(role)

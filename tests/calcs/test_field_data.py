@@ -10,6 +10,7 @@ import math
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import stats
 
 from calcs.engine.errors import InputError
 from calcs.engine.field_data import (
@@ -190,3 +191,36 @@ def test_more_failures_give_higher_posterior(n, t, lam0, strength):
     assert b.mean > a.mean
     assert b.upper(0.7) > a.upper(0.7)
     assert poisson_excess_test(n + 1, t, lam0).p_value <= poisson_excess_test(n, t, lam0).p_value
+
+
+# --------------------------------------------------------------------------
+# one device's own rate (empirical Bayes)
+
+
+def test_device_rate_is_the_gamma_poisson_posterior_mean():
+    from calcs.engine.field_data import DEVICE_PRIOR_STRENGTH, device_rate
+
+    lam0, n, hours = 8e-7, 2, 5 * 8760.0
+    r = device_rate(lam0, n, hours)
+    a, b = DEVICE_PRIOR_STRENGTH, DEVICE_PRIOR_STRENGTH / lam0
+    # conjugate update Gamma(a + n, b + T), NIST/SEMATECH e-Handbook 8.4.6; mean by scipy
+    post = stats.gamma(a + n, scale=1.0 / (b + hours))
+    assert r.rate == pytest.approx(post.mean(), rel=1e-12)
+    assert r.posterior.upper(0.7) == pytest.approx(post.ppf(0.7), rel=1e-9)
+
+
+def test_clean_record_stays_near_its_type_and_three_failures_raise_it():
+    from calcs.engine.field_data import DEVICE_PRIOR_STRENGTH, device_rate
+
+    lam0 = 8e-7
+    clean = device_rate(lam0, 0, 10 * 8760.0)
+    assert 0.95 < clean.ratio < 1.0 and not clean.repeat_offender
+    three = device_rate(lam0, 3, 3 * 8760.0)
+    a = DEVICE_PRIOR_STRENGTH
+    expected_factor = (a + 3) / (a / lam0 + 3 * 8760.0) / lam0  # gamma-Poisson arithmetic
+    assert three.ratio == pytest.approx(expected_factor, rel=1e-12)
+    assert three.ratio > 2
+    # one-sided Poisson test against the type's rate: P(N >= 3 | mu) by scipy
+    mu = lam0 * 3 * 8760.0
+    assert three.excess.p_value == pytest.approx(stats.poisson.sf(2, mu), rel=1e-9)
+    assert three.repeat_offender

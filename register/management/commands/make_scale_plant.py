@@ -100,7 +100,7 @@ class Command(BaseCommand):
                 at = dt.datetime.combine(day, dt.time(10), tzinfo=dt.UTC)
                 records.append(TestRecord(
                     sif=s, plan=plan, kind=choices.TestKind.FULL, performed_at=at,
-                    performed_by=tech, verified_by=verifier, status="verified", signed_at=at,
+                    performed_by=tech, verified_by=verifier, status="draft", signed_at=at,
                     verified_at=at, performed_by_name=tech.username,
                     verified_by_name=verifier.username))
         records = TestRecord.objects.bulk_create(records, batch_size=5000)
@@ -112,5 +112,8 @@ class Command(BaseCommand):
                     failure_mode="du" if fail else "", failure_description="synthetic" if fail
                     else "", work_done="repaired" if fail else ""))
         ComponentResult.objects.bulk_create(results, batch_size=10000)
+        # Results go in while the records are drafts; then the records are signed (the
+        # database refuses results added to a signed record).
+        TestRecord.objects.filter(pk__in=[r.pk for r in records]).update(status="verified")
         self.stdout.write(f"Created {n} SIFs, {len(comps)} components, {len(records)} test "
                           f"records, {len(results)} component results.")

@@ -1,0 +1,84 @@
+"""A signed record is immutable all the way down: its results, measurements and
+attachments, in the model layer and (on PostgreSQL) in the database itself."""
+
+import datetime as dt
+
+import pytest
+from django.db import IntegrityError, InternalError, connection, transaction
+from django.utils import timezone
+
+from register import choices, services
+from register.models import (
+    Component,
+    ComponentResult,
+    MeasuredValue,
+    SignedRecordError,
+    TestRecord,
+)
+from tests import factories as f
+from tests.conftest import need
+
+pytestmark = pytest.mark.django_db
+
+
+@pytest.fixture
+def signed(db):
+    s = f.site()
+    u = f.unit(s)
+    tech = f.user("tech-x", site=s, role=choices.Role.TECHNICIAN)
+    sif = f.sif(u, in_service=dt.date(2022, 1, 1))
+    comps = list(Component.objects.filter(subsystem__sif=sif))
+    results = [services.ResultInput(
+        component=c, as_found="fail" if i == 0 else "pass", as_left="pass",
+        failure_mode="du" if i == 0 else "", failure_description="stuck" if i == 0 else "",
+        work_done="freed" if i == 0 else "",
+        measurements=[services.MeasurementInput("Closing time", 9.0, "found", "s", None)]
+        if i == 0 else []) for i, c in enumerate(comps)]
+    rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL, results=results,
+                              performed_at=timezone.now() - dt.timedelta(days=3))
+    return services.sign_record(rec, tech, f.PASSWORD)
+
+
+def test_model_layer_refuses_changing_a_signed_result(signed):
+    result = signed.results.get(failure_mode="du")
+    result.as_found = "pass"
+    with pytest.raises(SignedRecordError):
+        result.save()
+    with pytest.raises(SignedRecordError):
+        result.delete()
+    m = MeasuredValue.objects.filter(result=result).first()
+    if m is not None:
+        m.value = 1.0
+        with pytest.raises(SignedRecordError):
+            m.save()
+    extra = ComponentResult(record=signed, component=result.component, as_found="pass",
+                            as_left="pass")
+    with pytest.raises(SignedRecordError):
+        extra.save()
+    assert signed.results.get(pk=result.pk).as_found == "fail"
+
+
+def test_database_refuses_raw_changes_on_postgresql(signed):
+    need(connection.vendor == "postgresql", "the database trigger exists on PostgreSQL only")
+    result = signed.results.get(failure_mode="du")
+    for sql, args in [
+        ("UPDATE register_componentresult SET as_found = 'pass', failure_mode = '' "
+         "WHERE id = %s", [result.pk]),
+        ("DELETE FROM register_componentresult WHERE id = %s", [result.pk]),
+        ("UPDATE register_testrecord SET performed_at = performed_at - interval '1 day' "
+         "WHERE id = %s", [signed.pk]),
+        ("UPDATE register_testrecord SET status = 'draft' WHERE id = %s", [signed.pk]),
+        ("DELETE FROM register_testrecord WHERE id = %s", [signed.pk]),
+    ]:
+        with pytest.raises((IntegrityError, InternalError)), transaction.atomic(), \
+                connection.cursor() as cur:
+            cur.execute(sql, args)
+    assert TestRecord.objects.get(pk=signed.pk).status == choices.RecordStatus.SIGNED
+    assert signed.results.get(pk=result.pk).as_found == "fail"
+
+
+def test_countersignature_is_still_allowed(signed):
+    s = signed.sif.unit.site
+    verifier = f.user("verifier-x", site=s, role=choices.Role.VERIFIER)
+    services.verify_record(signed, verifier, f.PASSWORD)
+    assert TestRecord.objects.get(pk=signed.pk).status == choices.RecordStatus.VERIFIED
