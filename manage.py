@@ -6,6 +6,7 @@ import sys
 
 def main():
     os.environ.setdefault("DJANGO_SETTINGS_MODULE", "config.settings.base")
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # see config/celery.py
     from django.core.management import execute_from_command_line
 
     execute_from_command_line(sys.argv)

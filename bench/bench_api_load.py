@@ -50,7 +50,7 @@ def serve(database_url: str, workers: int = 4, threads: int = 8):
            "config.settings.base", "DEBUG": "false", "SIF_LEDGER_VAR_DIR": str(var),
            "CELERY_BROKER_URL": "filesystem://", "CELERY_TASK_ALWAYS_EAGER": "false",
            "DB_CONN_MAX_AGE": "60", "LOG_LEVEL": "WARNING"}
-    log = open(var / "server.log", "w")
+    log = open(var / "server.log", "w")  # noqa: SIM115 - the server writes to it until stopped
     proc = subprocess.Popen(
         [sys.executable, "-m", "gunicorn", "config.wsgi:application", "-b",
          f"127.0.0.1:{port}", "-w", str(workers), "-k", "gthread", "--threads", str(threads),
@@ -65,7 +65,7 @@ def serve(database_url: str, workers: int = 4, threads: int = 8):
                 break
             except requests.RequestException:
                 if proc.poll() is not None:
-                    raise RuntimeError((var / "server.log").read_text()[-3000:])
+                    raise RuntimeError((var / "server.log").read_text()[-3000:]) from None
                 time.sleep(0.2)
         yield base
     finally:

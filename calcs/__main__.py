@@ -7,7 +7,10 @@ Bad input: exit status 2 and one line on standard error naming the field.
 from __future__ import annotations
 
 import json
+import os
 import sys
+
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # before numpy: see config/celery.py
 
 USAGE = "usage: python -m calcs CASE.json   (use - to read the case from standard input)"
 

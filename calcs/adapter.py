@@ -312,6 +312,21 @@ def design_input(d: SifData) -> eng_design.SifDesign:
                                 target_pfh_per_hour=d.sif.target_pfh_per_hour)
 
 
+def evaluate_design(d: SifData) -> eng_design.SifResult:
+    """The design result of a loaded SIF (raises EngineError when it cannot be computed)."""
+    return eng_design.evaluate_sif(design_input(d))
+
+
+def period_figures(d: SifData, rates: RateTable, start: dt.datetime, end: dt.datetime,
+                   points: int = 600):
+    """Achieved PFDavg over [start, end] and PFD(t) samples for a chart of that period
+    (records after ``end`` not used): (pfd_avg, times, values)."""
+    hist = history_input(d, rates)
+    window = eng_hist.achieved_pfd_windows(hist, [(start, end)], as_of=end)[0]
+    times, values = eng_hist.pfd_series(hist, start, end, points, as_of=end)
+    return window.pfd_avg, times, values
+
+
 def target_pfd(d: SifData) -> float | None:
     if d.sif.target_pfd_avg is not None:
         return d.sif.target_pfd_avg

@@ -37,6 +37,7 @@ from django.utils import timezone
 from simple_history.signals import post_create_historical_record
 
 from .models_audit import GENESIS_HASH, ChainEntry, ChainHead
+from .people import person_name
 
 HEAD_PK = 1
 
@@ -145,10 +146,7 @@ def _row_of(model, history_id: int) -> dict | None:
 
 
 def _actor_name(history_instance) -> str:
-    user = getattr(history_instance, "history_user", None)
-    if user is None:
-        return ""
-    return (user.get_full_name() or user.get_username())[:200]
+    return person_name(getattr(history_instance, "history_user", None))[:200]
 
 
 def append(history_instance) -> ChainEntry:
@@ -322,3 +320,42 @@ class ChainEntryAdmin(admin.ModelAdmin):
 
     def has_delete_permission(self, request, obj=None):
         return False
+
+
+# ---------------------------------------------------------------------------------------
+# What a user may see of the chain
+# ---------------------------------------------------------------------------------------
+
+
+def entries_for(user, limit: int = 50, scan: int = 2000) -> list[ChainEntry]:
+    """The newest chain entries about records at the sites where ``user`` may read the
+    chain (``Action.VIEW_CHAIN``); a superuser sees all. An entry whose record no longer
+    exists, or has no site, is shown to superusers only. Looks through the newest ``scan``
+    entries, one query per historical model among them."""
+    from django.apps import apps
+
+    from .permissions import Action, sites_with
+
+    sites = sites_with(user, Action.VIEW_CHAIN)
+    newest = list(ChainEntry.objects.order_by("-seq")[:limit if sites is None else scan])
+    if sites is None:
+        return newest
+    wanted: dict[str, set[str]] = {}
+    for e in newest:
+        wanted.setdefault(e.model_label, set()).add(e.object_id)
+    site_of: dict[tuple[str, str], int | None] = {}
+    for label, ids in wanted.items():
+        history_model = apps.get_model(label)
+        model = history_model.instance_type
+        path = getattr(model, "site_path", "missing")
+        if path == "missing":
+            continue
+        pk = model._meta.pk.attname
+        column = f"{path}_id" if path else pk
+        if path is None:
+            rows = model.objects.filter(pk__in=ids).values_list(pk, pk)
+        else:
+            rows = model.objects.filter(pk__in=ids).values_list(pk, column)
+        for obj_id, site_id in rows:
+            site_of[(label, str(obj_id))] = site_id
+    return [e for e in newest if site_of.get((e.model_label, e.object_id)) in sites][:limit]

@@ -26,7 +26,6 @@ from django.db.models import Q
 from django.utils import timezone
 
 from calcs import adapter
-from calcs.engine import history as eng_hist
 from calcs.engine.errors import EngineError
 
 from . import choices, presenters
@@ -48,6 +47,7 @@ from .models import (
     TestRecord,
     TestStep,
 )
+from .people import person_name
 from .scheduling import compute_statuses
 
 CAUTION = ("Results support, and do not replace, a functional safety assessment by "
@@ -92,9 +92,7 @@ def _iso(value) -> str | None:
 
 
 def _name(user) -> str:
-    if user is None:
-        return ""
-    return user.get_full_name() or user.get_username()
+    return person_name(user)
 
 
 def _g(value, fmt=".2e") -> str:
@@ -499,11 +497,10 @@ def figures(pack: EvidencePack, col: Collected, progress=None) -> dict[int, byte
             entries[entry["id"]]["chart_note"] = "Not in service during the period."
             continue
         try:
-            hist = adapter.history_input(d, rates)
-            window = eng_hist.achieved_pfd_windows(hist, [(start, t1)], as_of=t1)[0]
-            entry["period_achieved_pfd_avg"] = window.pfd_avg
+            achieved, times, values = adapter.period_figures(d, rates, start, t1,
+                                                             CHART_POINTS)
+            entry["period_achieved_pfd_avg"] = achieved
             entry["period_window"] = [_iso(start), _iso(t1)]
-            times, values = eng_hist.pfd_series(hist, start, t1, CHART_POINTS, as_of=t1)
             episodes = presenters.observed_episodes(
                 (entry.get("assessment") or {}).get("detail"))
             charts[entry["id"]] = maker.png(entry["tag"], times, list(values),

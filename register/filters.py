@@ -127,10 +127,10 @@ class SifFilter(df.FilterSet):
     def __init__(self, data=None, queryset=None, *, request=None, prefix=None):
         user = request.user if request else None
         if queryset is None:
-            queryset = SafetyFunction.objects.for_user(user)
+            queryset = SafetyFunction.objects.restrict(user)
         super().__init__(data, queryset, request=request, prefix=prefix)
-        self.filters["site"].queryset = Site.objects.for_user(user)
-        self.filters["unit"].queryset = PlantUnit.objects.for_user(user).select_related("site")
+        self.filters["site"].queryset = Site.objects.restrict(user)
+        self.filters["unit"].queryset = PlantUnit.objects.restrict(user).select_related("site")
 
     @property
     def qs(self):

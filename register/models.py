@@ -20,10 +20,10 @@ from django.utils import timezone
 from django.utils.translation import gettext_lazy as _
 from simple_history.models import HistoricalRecords
 
+from calcs.engine.units import HOURS_PER_MONTH, HOURS_PER_YEAR  # noqa: F401 - re-exported
+
 from . import choices
 
-HOURS_PER_YEAR = 8760.0
-HOURS_PER_MONTH = HOURS_PER_YEAR / 12
 
 probability = [MinValueValidator(0.0), MaxValueValidator(1.0)]
 non_negative = [MinValueValidator(0.0)]
@@ -45,22 +45,16 @@ def _nonneg_check(field: str) -> models.CheckConstraint:
 
 
 class SiteScopedQuerySet(models.QuerySet):
-    """Querysets that can be restricted to the sites where a user holds a role.
+    """Querysets that can be restricted to the sites where a user has a right.
 
     ``site_path`` on the model names the lookup from the model to its Site.
     """
 
-    def for_user(self, user, roles=None):
-        if user is None or not user.is_authenticated:
-            return self.none()
-        if user.is_superuser:
-            return self
-        memberships = Membership.objects.filter(user=user)
-        if roles:
-            memberships = memberships.filter(role__in=roles)
-        path = self.model.site_path
-        key = f"{path}__in" if path else "pk__in"
-        return self.filter(**{key: memberships.values("site_id")})
+    def restrict(self, user, action: str = "view"):
+        """Only rows at sites where ``user`` has the right (``register.permissions``)."""
+        from .permissions import restrict
+
+        return restrict(self, user, action)
 
 
 # ---------------------------------------------------------------------------------------

@@ -1,7 +1,14 @@
-"""Who may do what, in one place. Web views, the API, exports and services all ask here.
+"""Who may do what, in one place. Web views, the API, exports, the admin and services all
+ask here; no other membership query decides access.
 
-Rights come from a person's roles at the site the object belongs to; a superuser may do
-everything. Auditors read and export; they never write.
+Rights come from a person's roles at the site the object belongs to (the one table
+``RIGHTS``); a superuser may do everything. Auditors read and export; they never write.
+
+* ``can(user, action, site_id)`` / ``require(...)``: one object's site.
+* ``restrict(queryset, user, action)`` (also ``Model.objects.restrict(user, action)``):
+  only rows at sites where the user has the right; the gate for every list and lookup.
+* ``can_somewhere(user, action)``: the right at any site (navigation, the API's door).
+* ``site_id_of(obj)``: the site of any site-scoped object.
 """
 
 from __future__ import annotations
@@ -13,6 +20,7 @@ from .choices import Role
 
 class Action:
     VIEW = "view"
+    VIEW_CHAIN = "view_chain"
     EXPORT = "export"
     EDIT_REGISTER = "edit_register"
     RECORD_TEST = "record_test"
@@ -25,6 +33,7 @@ class Action:
 
 RIGHTS: dict[str, frozenset[str]] = {
     Action.VIEW: frozenset({Role.LEAD, Role.TECHNICIAN, Role.VERIFIER, Role.AUDITOR}),
+    Action.VIEW_CHAIN: frozenset({Role.LEAD, Role.AUDITOR}),
     Action.EXPORT: frozenset({Role.LEAD, Role.VERIFIER, Role.AUDITOR}),
     Action.EDIT_REGISTER: frozenset({Role.LEAD}),
     Action.RECORD_TEST: frozenset({Role.TECHNICIAN, Role.LEAD}),
@@ -68,3 +77,40 @@ def require(user, action: str, site_id: int) -> None:
 
 def roles_for(action: str) -> frozenset[str]:
     return RIGHTS[action]
+
+
+def sites_with(user, action: str) -> set[int] | None:
+    """Ids of the sites where ``user`` has the right; None means every site (superuser)."""
+    if user is None or not user.is_authenticated or not user.is_active:
+        return set()
+    if user.is_superuser:
+        return None
+    roles_at(user, -1)  # fills the per-request cache
+    allowed = RIGHTS[action]
+    return {site for site, roles in user._ledger_roles.items() if roles & allowed}
+
+
+def can_somewhere(user, action: str) -> bool:
+    """True if the user holds a role with this right at any site."""
+    sites = sites_with(user, action)
+    return sites is None or bool(sites)
+
+
+def restrict(queryset, user, action: str = Action.VIEW):
+    """``queryset`` limited to the rows at sites where ``user`` has the right."""
+    sites = sites_with(user, action)
+    if sites is None:
+        return queryset
+    path = queryset.model.site_path
+    return queryset.filter(**{f"{path}__in" if path else "pk__in": sorted(sites)})
+
+
+def site_id_of(obj) -> int | None:
+    """Walk ``site_path`` from the object to its site id (no extra query when joined)."""
+    path = getattr(obj, "site_path", None)
+    if path is None:
+        return obj.pk if obj.__class__.__name__ == "Site" else None
+    parts = path.split("__")
+    for part in parts[:-1]:
+        obj = getattr(obj, part)
+    return getattr(obj, f"{parts[-1]}_id")

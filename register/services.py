@@ -29,7 +29,8 @@ from .models import (
     TestRecord,
     TestStep,
 )
-from .permissions import Action, require
+from .people import person_name
+from .permissions import Action, require, site_id_of
 
 
 def _attribute(instance, user, reason: str = ""):
@@ -40,8 +41,7 @@ def _attribute(instance, user, reason: str = ""):
     return instance
 
 
-def _full_name(user) -> str:
-    return user.get_full_name() or user.get_username()
+_full_name = person_name
 
 
 # ---------------------------------------------------------------------------------------
@@ -345,7 +345,7 @@ def update_design(instance, user, *, reason: str, reference: str, changes: dict)
     ``reason`` and ``reference`` (change request number) are required and are kept in the
     change history with the change.
     """
-    site_id = _site_id_of(instance)
+    site_id = site_id_of(instance)
     require(user, Action.EDIT_REGISTER, site_id)
     if not reason.strip() or not reference.strip():
         raise ValidationError({"reason": "A design change needs a reason and a change "
@@ -358,15 +358,6 @@ def update_design(instance, user, *, reason: str, reference: str, changes: dict)
     if sif_id:
         followup.after_test_change(sif_id)
     return instance
-
-
-def _site_id_of(instance) -> int:
-    obj = instance
-    for part in (instance.site_path or "").split("__"):
-        if part == "site":
-            return obj.site_id
-        obj = getattr(obj, part)
-    return obj.pk
 
 
 def _sif_id_of(instance) -> int | None:

@@ -16,9 +16,9 @@ from django.urls import reverse
 from django.utils import timezone
 
 from calcs import adapter
-from calcs.engine import design as eng_design
 from calcs.engine.errors import EngineError
 from calcs.engine.sil import sil_band
+from calcs.engine.units import HOURS_PER_MONTH
 from calcs.models import Assessment
 
 from . import charts, choices, presenters
@@ -35,6 +35,7 @@ from .models import (
     TestPlan,
     TestRecord,
 )
+from .people import person_name
 from .permissions import Action, can, require
 from .scan import bypass_state
 from .scheduling import FULL_CREDIT, PARTIAL_CREDIT, add_months
@@ -177,9 +178,9 @@ class UnitRow:
 
 def plant_overview(user, today: dt.date):
     now = timezone.now()
-    units = list(PlantUnit.objects.for_user(user).select_related("site"))
+    units = list(PlantUnit.objects.restrict(user).select_related("site"))
     rows = {u.pk: UnitRow(u, u.site) for u in units}
-    sifs = list(not_decommissioned(SafetyFunction.objects.for_user(user))
+    sifs = list(not_decommissioned(SafetyFunction.objects.restrict(user))
                 .values_list("pk", "unit_id"))
     unit_of = dict(sifs)
     latest = adapter.latest_assessments(list(unit_of))
@@ -199,7 +200,7 @@ def plant_overview(user, today: dt.date):
         offenders = presenters.repeat_offenders(a.detail) if a else []
         row.repeat_offenders += len(offenders)
         row.repeat_sifs += bool(offenders)
-    plans = TestPlan.objects.for_user(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
+    plans = TestPlan.objects.restrict(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
     for unit_id, state, due in plans.values_list("sif__unit_id", "cached_state", "next_due_on"):
         row = rows[unit_id]
         if state == PlanState.DUE_SOON:
@@ -216,11 +217,11 @@ def plant_overview(user, today: dt.date):
             else:
                 row.escalated += 1
                 row.escalated_days = max(row.escalated_days, late)
-    for b in Bypass.objects.for_user(user).filter(ended_at__isnull=True).select_related("sif"):
+    for b in Bypass.objects.restrict(user).filter(ended_at__isnull=True).select_related("sif"):
         row = rows[b.sif.unit_id]
         row.bypasses += 1
         row.bypass_hours = max(row.bypass_hours, b.duration_hours(now))
-    for unit_id, asked in Deferral.objects.for_user(user).filter(
+    for unit_id, asked in Deferral.objects.restrict(user).filter(
             status=choices.DeferralStatus.PENDING).values_list("plan__sif__unit_id",
                                                                "requested_at"):
         rows[unit_id].deferrals += 1
@@ -232,7 +233,7 @@ def plant_overview(user, today: dt.date):
         rows[plan_unit[plan_id]].on_time_ok += ok_n
 
     sites = []
-    for site in Site.objects.for_user(user):
+    for site in Site.objects.restrict(user):
         site_rows = [r for r in rows.values() if r.site.pk == site.pk]
         total = UnitRow(None, site)
         for r in site_rows:
@@ -276,13 +277,13 @@ def sif_list(request):
         sif.verdict_badge = presenters.verdict_badge(sif.latest_meets)
     params = request.GET.copy()
     params.pop("page", None)
-    export_sites = [s for s in Site.objects.for_user(request.user)
+    export_sites = [s for s in Site.objects.restrict(request.user)
                     if can(request.user, Action.EXPORT, s.pk)]
     return render(request, "register/sif_list.html", {
         "filter": f, "page": page, "query": params.urlencode(),
         "can_export": bool(export_sites),
         "can_import": any(can(request.user, Action.EDIT_REGISTER, s.pk)
-                          for s in Site.objects.for_user(request.user)),
+                          for s in Site.objects.restrict(request.user)),
     })
 
 
@@ -293,7 +294,7 @@ def sif_export(request, fmt):
     if fmt not in ("csv", "xlsx"):
         raise Http404
     f = SifFilter(request.GET, request=request)
-    allowed = [s.pk for s in Site.objects.for_user(request.user)
+    allowed = [s.pk for s in Site.objects.restrict(request.user)
                if can(request.user, Action.EXPORT, s.pk)]
     if not allowed:
         require(request.user, Action.EXPORT, -1)
@@ -349,9 +350,7 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
 
 
 def _name(user) -> str:
-    if user is None:
-        return "—"
-    return user.get_full_name() or user.get_username()
+    return person_name(user, "—")
 
 
 def _fmt_hours(hours: float) -> str:
@@ -360,7 +359,7 @@ def _fmt_hours(hours: float) -> str:
 
 @login_required
 def sif_detail(request, pk):
-    sif = get_object_or_404(SafetyFunction.objects.for_user(request.user)
+    sif = get_object_or_404(SafetyFunction.objects.restrict(request.user)
                             .select_related("unit__site", "owner"), pk=pk)
     site_id = sif.unit.site_id
     now = timezone.now()
@@ -374,8 +373,7 @@ def sif_detail(request, pk):
             lopa_error = str(exc)
     design, design_error = None, ""
     try:
-        design_in = adapter.design_input(d)
-        design = eng_design.evaluate_sif(design_in)
+        design = adapter.evaluate_design(d)
     except EngineError as exc:
         design_error = str(exc)
     subsystems = []
@@ -383,8 +381,8 @@ def sif_detail(request, pk):
     for sub in d.subsystems:
         full, partial = adapter.plan_intervals(d, sub)
         subsystems.append({"obj": sub, "components": [c.obj for c in d.components[sub.pk]],
-                           "full_months": round(full / 730, 1) if full else None,
-                           "partial_months": round(partial / 730, 1) if partial else None,
+                           "full_months": round(full / HOURS_PER_MONTH, 1) if full else None,
+                           "partial_months": round(partial / HOURS_PER_MONTH, 1) if partial else None,
                            "result": sub_results.get(sub.name)})
     assessment = adapter.latest_assessments([sif.pk]).get(sif.pk)
     target = adapter.target_pfd(d)
@@ -436,7 +434,7 @@ def sif_detail(request, pk):
 
 @login_required
 def sif_chart(request, pk, which):
-    sif = get_object_or_404(SafetyFunction.objects.for_user(request.user)
+    sif = get_object_or_404(SafetyFunction.objects.restrict(request.user)
                             .select_related("unit__site"), pk=pk)
     if which not in ("pfd", "trend"):
         raise Http404
@@ -463,7 +461,7 @@ def sif_chart(request, pk, which):
 
 @login_required
 def test_detail(request, pk):
-    record = get_object_or_404(TestRecord.objects.for_user(request.user).select_related(
+    record = get_object_or_404(TestRecord.objects.restrict(request.user).select_related(
         "sif", "plan"), pk=pk)
     results = record.results.select_related("component")
     return render(request, "register/test_detail.html", {"record": record,

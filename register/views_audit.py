@@ -19,32 +19,23 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_http_methods
 
-from . import choices
-from .audit import verify_chain
+from .audit import entries_for, verify_chain
 from .evidence import pack_file, request_pack
 from .models import (
-    ChainEntry,
     Component,
     EvidencePack,
-    Membership,
     PlantUnit,
     SafetyFunction,
     Site,
     Subsystem,
     TestPlan,
 )
-from .permissions import Action, can, roles_for
+from .permissions import Action, can, can_somewhere
 from .scheduling import compute_statuses
-
-CHAIN_ROLES = {choices.Role.AUDITOR, choices.Role.LEAD}
-
-
-def _export_roles() -> list[str]:
-    return sorted(roles_for(Action.EXPORT))
 
 
 def _export_sites(user):
-    return Site.objects.for_user(user, roles=_export_roles()).order_by("name")
+    return Site.objects.restrict(user, Action.EXPORT).order_by("name")
 
 
 # ---------------------------------------------------------------------------------------
@@ -56,11 +47,10 @@ def _export_sites(user):
 def chain(request):
     """Verify the chain now and show the result with the newest entries."""
     user = request.user
-    if not (user.is_superuser or Membership.objects.filter(user=user,
-                                                           role__in=CHAIN_ROLES).exists()):
+    if not can_somewhere(user, Action.VIEW_CHAIN):
         raise PermissionDenied("The change chain is open to auditors and leads.")
     result = verify_chain()
-    recent = list(ChainEntry.objects.order_by("-seq")[:50])
+    recent = entries_for(user)
     return render(request, "register/audit/chain.html", {"result": result, "recent": recent})
 
 
@@ -115,7 +105,7 @@ class PackForm(forms.Form):
 
 
 def _visible_packs(user):
-    return EvidencePack.objects.for_user(user, roles=_export_roles()).select_related(
+    return EvidencePack.objects.restrict(user, Action.EXPORT).select_related(
         "site", "unit", "sif", "requested_by")
 
 
@@ -126,20 +116,19 @@ def packs(request):
     if not _export_sites(user).exists():
         raise PermissionDenied("Evidence packs are for auditors, verifiers and leads.")
     form = PackForm(user, request.POST or None)
-    if request.method == "POST":
-        if form.is_valid():
-            d = form.cleaned_data
-            try:
-                pack = request_pack(user, scope=d["scope"], site=d["site"], unit=d["unit"],
-                                    sif=d["sif"], period_start=d["period_start"],
-                                    period_end=d["period_end"])
-            except ValidationError as exc:
-                for name, msgs in exc.message_dict.items():
-                    form.add_error(name if name in form.fields else None, msgs)
-            else:
-                messages.success(request, "The pack is being built. You can leave this page "
-                                          "and come back; it stays listed here.")
-                return redirect("audit:pack_detail", pack.pk)
+    if request.method == "POST" and form.is_valid():
+        d = form.cleaned_data
+        try:
+            pack = request_pack(user, scope=d["scope"], site=d["site"], unit=d["unit"],
+                                sif=d["sif"], period_start=d["period_start"],
+                                period_end=d["period_end"])
+        except ValidationError as exc:
+            for name, msgs in exc.message_dict.items():
+                form.add_error(name if name in form.fields else None, msgs)
+        else:
+            messages.success(request, "The pack is being built. You can leave this page "
+                                      "and come back; it stays listed here.")
+            return redirect("audit:pack_detail", pack.pk)
     rows = _visible_packs(user)[:100]
     return render(request, "register/audit/packs.html", {"form": form, "rows": rows})
 

@@ -25,7 +25,7 @@ from .scheduling import status_of
 
 
 def _plan_for(user, pk) -> TestPlan:
-    plan = TestPlan.objects.for_user(user).select_related("sif__unit__site").filter(pk=pk).first()
+    plan = TestPlan.objects.restrict(user).select_related("sif__unit__site").filter(pk=pk).first()
     if plan is None:
         raise Http404("No such test plan at your sites.")
     return plan
@@ -77,7 +77,7 @@ def request_deferral(request, plan_id):
 
 @login_required
 def deferral_list(request):
-    rows = (Deferral.objects.for_user(request.user)
+    rows = (Deferral.objects.restrict(request.user)
             .select_related("plan__sif__unit__site", "requested_by", "decided_by")
             .order_by("status", "-requested_at")[:200])
     return render(request, "register/deferral_list.html", {"rows": rows})
@@ -85,7 +85,7 @@ def deferral_list(request):
 
 @login_required
 def decide(request, pk):
-    deferral = get_object_or_404(Deferral.objects.for_user(request.user)
+    deferral = get_object_or_404(Deferral.objects.restrict(request.user)
                                  .select_related("plan__sif__unit__site"), pk=pk)
     if not can(request.user, Action.DECIDE_DEFERRAL, deferral.plan.sif.unit.site_id):
         raise PermissionDenied("Only the site's functional-safety lead decides deferrals.")

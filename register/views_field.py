@@ -28,8 +28,8 @@ from .forms_field import (
     PasswordForm,
     check_upload,
 )
-from .models import Attachment, Component, Membership, TestPlan, TestRecord
-from .permissions import Action, can, require, roles_for
+from .models import Attachment, Component, TestPlan, TestRecord
+from .permissions import Action, can, can_somewhere, require
 from .scheduling import compute_statuses, status_of
 
 PER_PAGE = 20
@@ -272,14 +272,11 @@ def _max_bytes():
 @login_required
 def worklist(request):
     user = request.user
-    record_roles = roles_for(Action.RECORD_TEST)
-    if not user.is_superuser and not Membership.objects.filter(
-            user=user, role__in=record_roles).exists():
-        if Membership.objects.filter(user=user,
-                                     role__in=roles_for(Action.VERIFY_TEST)).exists():
+    if not can_somewhere(user, Action.RECORD_TEST):
+        if can_somewhere(user, Action.VERIFY_TEST):
             return redirect("field:verify_queue")
         raise PermissionDenied("Only technicians and leads record tests.")
-    plans = TestPlan.objects.for_user(user, roles=record_roles).filter(
+    plans = TestPlan.objects.restrict(user, Action.RECORD_TEST).filter(
         sif__life_stage=choices.LifeStage.IN_SERVICE)
     q = request.GET.get("q", "").strip()[:60]
     if q:
@@ -318,7 +315,7 @@ def worklist(request):
 
 @login_required
 def start(request, plan_id):
-    plan = get_object_or_404(TestPlan.objects.for_user(request.user).select_related(
+    plan = get_object_or_404(TestPlan.objects.restrict(request.user).select_related(
         "sif__unit__site"), pk=plan_id)
     require(request.user, Action.RECORD_TEST, plan.sif.unit.site_id)
     if request.method == "POST":
@@ -337,7 +334,7 @@ def start(request, plan_id):
 
 @login_required
 def record_edit(request, pk):
-    record = get_object_or_404(TestRecord.objects.for_user(request.user).select_related(
+    record = get_object_or_404(TestRecord.objects.restrict(request.user).select_related(
         "sif__unit__site", "plan", "supersedes"), pk=pk)
     require(request.user, Action.RECORD_TEST, record.sif.unit.site_id)
     if record.is_signed:
@@ -379,7 +376,7 @@ def _detail_context(request, record, correction_form=None):
 
 
 def _record_for(request, pk):
-    return get_object_or_404(TestRecord.objects.for_user(request.user).select_related(
+    return get_object_or_404(TestRecord.objects.restrict(request.user).select_related(
         "sif__unit__site", "plan", "supersedes", "performed_by", "verified_by"), pk=pk)
 
 
@@ -433,12 +430,10 @@ def record_correct(request, pk):
 @login_required
 def verify_queue(request):
     user = request.user
-    roles = roles_for(Action.VERIFY_TEST)
-    if not user.is_superuser and not Membership.objects.filter(user=user,
-                                                               role__in=roles).exists():
+    if not can_somewhere(user, Action.VERIFY_TEST):
         raise PermissionDenied("Only verifiers and leads countersign tests.")
     records = (
-        TestRecord.objects.for_user(user, roles=roles)
+        TestRecord.objects.restrict(user, Action.VERIFY_TEST)
         .filter(status=choices.RecordStatus.SIGNED)
         .select_related("sif", "plan")
         .annotate(failures=Count("results", filter=Q(results__as_found=choices.Verdict.FAIL)))
@@ -450,7 +445,7 @@ def verify_queue(request):
 
 @login_required
 def attachment_download(request, pk):
-    att = get_object_or_404(Attachment.objects.for_user(request.user), pk=pk)
+    att = get_object_or_404(Attachment.objects.restrict(request.user), pk=pk)
     try:
         handle = att.file.open("rb")
     except FileNotFoundError as exc:

@@ -14,14 +14,13 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
 
 from calcs import adapter
-from calcs.engine import design as eng_design
 from calcs.engine.errors import EngineError
 from calcs.engine.sil import sil_from_pfd
 
 from . import choices, services, spreadsheet
 from .forms import FORMS, ImportForm
 from .models import SafetyFunction, Site
-from .permissions import Action, can, require
+from .permissions import Action, can, require, site_id_of
 from .views import list_url
 
 
@@ -38,7 +37,7 @@ def design_result(sif_id: int, kind: str | None = None, pk: int | None = None,
         for name, value in (changes or {}).items():
             setattr(target, name, value)
     try:
-        return eng_design.evaluate_sif(adapter.design_input(d)), adapter.target_pfd(d)
+        return adapter.evaluate_design(d), adapter.target_pfd(d)
     except EngineError as exc:
         return exc, adapter.target_pfd(d)
 
@@ -52,8 +51,8 @@ def edit_design(request, kind, pk):
     if kind not in FORMS:
         raise Http404
     model, form_class = FORMS[kind]
-    obj = get_object_or_404(model.objects.for_user(request.user), pk=pk)
-    require(request.user, Action.EDIT_REGISTER, services._site_id_of(obj))
+    obj = get_object_or_404(model.objects.restrict(request.user), pk=pk)
+    require(request.user, Action.EDIT_REGISTER, site_id_of(obj))
     sif_id = services._sif_id_of(obj)
     sif = SafetyFunction.objects.select_related("unit__site").get(pk=sif_id)
     before, target = design_result(sif_id)
@@ -105,7 +104,7 @@ SESSION_KEY = "register_import"
 
 @login_required
 def import_sheet(request):
-    sites = [s for s in Site.objects.for_user(request.user)
+    sites = [s for s in Site.objects.restrict(request.user)
              if can(request.user, Action.EDIT_REGISTER, s.pk)]
     if not sites:
         raise PermissionDenied("Only a functional-safety lead imports into the register.")

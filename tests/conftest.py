@@ -10,6 +10,7 @@ import shutil
 import pytest
 
 os.environ.setdefault("DJANGO_ALLOW_ASYNC_UNSAFE", "true")
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # see config/celery.py
 
 REQUIRE_SERVICES = os.environ.get("CI", "").lower() == "true" or os.environ.get(
     "REQUIRE_SERVICES", "") == "1"

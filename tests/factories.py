@@ -85,3 +85,19 @@ def sif(unit_obj, *, tag=None, target_sil=2, target_pfd=5e-3, in_service=None,
                                      device_type=typ, in_service_on=in_service)
     TestPlan.objects.create(sif=s, name="Full proof test", interval_months=interval_months)
     return s
+
+
+def full_test(sif, tech, when, fail_tag=None):
+    """Sign a full test of every component of ``sif``; ``fail_tag`` found failed DU."""
+    from register import services
+    from register.models import Component
+
+    results = [services.ResultInput(
+        component=c, as_found="fail" if c.tag == fail_tag else "pass", as_left="pass",
+        failure_mode="du" if c.tag == fail_tag else "",
+        failure_description="stuck" if c.tag == fail_tag else "",
+        work_done="fixed" if c.tag == fail_tag else "")
+        for c in Component.objects.filter(subsystem__sif=sif)]
+    rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL, results=results,
+                              performed_at=when)
+    return services.sign_record(rec, tech, PASSWORD)

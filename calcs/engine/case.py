@@ -25,6 +25,12 @@ JSON ``null`` for an optional key means "not given". Errors are raised as
 :class:`InputError` whose field is the path of the bad input, for example
 ``subsystems[0].beta``.
 
+Each subsystem of the output gives its design ``pfd_avg`` with ``pfd_method`` (which
+method set it: the simplified equations, the exact Markov model, or the exact value +
+25 %; see :mod:`calcs.engine.design`), ``pfd_avg_simplified`` (the simplified equations'
+value before clipping) and ``pfd_avg_exact`` (the exact Markov value; null for groups of
+more than four channels).
+
 If the case has a top-level "in_service" key or a subsystem has a "tests"
 key, the proof-test history part is evaluated by
 ``calcs.engine.history.evaluate_case_history(data)`` and its keys are merged
@@ -157,6 +163,9 @@ def evaluate_case(data: dict, *, today=None) -> dict:
             "voting": r.voting,
             "hft": r.hft,
             "pfd_avg": r.pfd_avg,
+            "pfd_method": r.pfd_method,
+            "pfd_avg_simplified": r.pfd_avg_simplified,
+            "pfd_avg_exact": r.pfd_avg_exact,
             "pfh_per_hour": r.pfh_per_hour,
             "effective_test_interval_hours": r.effective_test_interval_hours,
             "sff": r.sff,

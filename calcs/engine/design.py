@@ -54,6 +54,39 @@ while the other failed in a part found at T1); this is the conservative
 choice: evaluating each part alone and adding the results would drop those
 cross terms and understate the PFD.
 
+The design figure: simplified equations checked against an exact model
+-----------------------------------------------------------------------
+The simplified equations are linearised and multiply mean down times as if
+they were independent. Over the plausible range of inputs that makes them
+too low in some cases (the 1oo2D equation counts two thirds of
+lDU*lDD*T1*MTTR for one channel under repair while the other hides an
+undetected failure; the time average is the whole product) and far too high
+in others (groups of three or four channels with mostly detected failures
+and long repairs, large lambda*T). So for groups of up to four channels the
+IEC method computes the exact value of :mod:`calcs.engine.markov` (a
+periodic Markov model of the same group, tests and schedule) and reports:
+
+* the simplified value when exact <= simplified <= 1.25 * exact
+  (``pfd_method`` "simplified equations (IEC 61508-6 Annex B)");
+* the exact value when the simplified value is below it ("exact Markov
+  model"): the figure is never below the exact value;
+* 1.25 * exact when the simplified value is more than 25 % above it
+  ("exact Markov model + 25 %"), the upper edge of the accepted band.
+
+That is the simplified value clamped to [exact, 1.25 * exact]. Clamping
+(rather than switching to the exact value above the band) keeps the figure
+a continuous, non-decreasing function of every rate and of the test
+interval, which the longest-interval search and the test-moved comparison
+rely on; the figure is always within the band. A caution says why the exact
+model set the figure. Groups of more than four channels keep the simplified
+value (with a caution that it was not checked). The ISA-TR84.00.02 method is
+a chosen method and keeps its value; a caution says when it is below the
+exact value. The PFH (high demand) is not changed.
+
+:func:`subsystem_pfd_avg` returns that figure (the same as
+:func:`evaluate_subsystem`), :func:`subsystem_pfd_raw` the simplified
+equations before clipping, :func:`subsystem_pfd_exact` the exact value.
+
 A SIF is a series of subsystems; its PFDavg (PFH) is the sum of the
 subsystem values, the rare-event approximation of 1 - prod(1 - PFD_i).
 The linearised equations can exceed 1 for very large lambda*T; such a PFDavg
@@ -64,12 +97,18 @@ All rates are per hour, all times in hours (1 year = 8760 h).
 
 from __future__ import annotations
 
+import contextlib
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
+from functools import lru_cache
 
+from scipy.optimize import brentq as _brentq
+
+from . import markov as _markov
 from . import sil as _sil
 from .errors import InputError
+from .units import check_rate
 from .voting import Voting, parse_voting
 
 HOURS_PER_YEAR = 8760.0
@@ -83,6 +122,13 @@ PROOF_TEST_INTERVAL_CAP_HOURS = 20 * HOURS_PER_YEAR
 PROOF_TEST_INTERVAL_FLOOR_HOURS = 1.0
 #: lambda_DU * T above which the linearised equations are flagged as inaccurate.
 LAMBDA_T_CAUTION = 0.1
+#: The simplified value is used while it lies in [exact, EXACT_BAND * exact].
+EXACT_BAND = 1.25
+#: Values of ``SubsystemResult.pfd_method``.
+PFD_METHOD_SIMPLIFIED = "simplified equations (IEC 61508-6 Annex B)"
+PFD_METHOD_ISA = "simplified equations (ISA-TR84.00.02)"
+PFD_METHOD_EXACT = "exact Markov model"
+PFD_METHOD_CAPPED = "exact Markov model + 25 %"
 
 
 # ---------------------------------------------------------------------------
@@ -364,9 +410,9 @@ class Subsystem:
         if not isinstance(self.voting, Voting):
             put(self, "voting", parse_voting(self.voting, "voting"))
         for key in ("lambda_du_per_hour", "lambda_dd_per_hour", "lambda_sd_per_hour"):
-            put(self, key, _number(getattr(self, key), key))
+            put(self, key, check_rate(getattr(self, key), key))
         if self.lambda_s_per_hour is not None:
-            put(self, "lambda_s_per_hour", _number(self.lambda_s_per_hour, "lambda_s_per_hour"))
+            put(self, "lambda_s_per_hour", check_rate(self.lambda_s_per_hour, "lambda_s_per_hour"))
         for key in ("beta", "beta_d", "proof_test_coverage"):
             put(self, key, _probability(getattr(self, key), key))
         put(self, "proof_test_interval_hours",
@@ -457,17 +503,81 @@ class Subsystem:
 
 def subsystem_pfd_raw(sub: Subsystem, method: str = METHOD_IEC,
                       proof_test_interval_hours: float | None = None) -> float:
-    """PFDavg of ``sub`` before clipping to 1 (linearised equations)."""
+    """PFDavg of ``sub`` by the simplified equations alone, before clipping to 1."""
     t = sub.effective_interval(proof_test_interval_hours)
     return group_pfd(sub.voting, sub.lambda_du_per_hour, sub.lambda_dd_per_hour,
                      sub.lambda_sd_per_hour, sub.beta, sub.beta_d, sub.mttr_hours, sub.mrt_hours,
                      t, method)
 
 
+def subsystem_pfd_exact(sub: Subsystem,
+                        proof_test_interval_hours: float | None = None) -> float | None:
+    """Exact PFDavg of ``sub`` (:mod:`calcs.engine.markov`); None above four channels.
+
+    Same inputs and schedule as the simplified equations: T1 (or
+    ``proof_test_interval_hours``), proof test coverage with renewal at the mission
+    time, partial tests, MTTR for detected and MRT for revealed failures.
+    """
+    if sub.voting.n > _markov.MAX_CHANNELS:
+        return None
+    t1 = sub.proof_test_interval_hours if proof_test_interval_hours is None \
+        else proof_test_interval_hours
+    return _exact_cached(sub, float(t1))
+
+
+@lru_cache(maxsize=4096)
+def _exact_cached(sub: Subsystem, t1: float) -> float:
+    v = sub.voting
+    return _markov.pfd_avg(
+        v.m, v.n, ldu=sub.lambda_du_per_hour, ldd=sub.lambda_dd_per_hour,
+        lsd=sub.lambda_sd_per_hour, beta=sub.beta, beta_d=sub.beta_d, mttr=sub.mttr_hours,
+        mrt=sub.mrt_hours, t1=t1, ptc=sub.proof_test_coverage,
+        mission=sub.mission_time_hours if sub.proof_test_coverage < 1.0 else None,
+        t_pst=sub.partial_test_interval_hours, theta=sub.partial_test_coverage or 0.0,
+        diagnostic=v.diagnostic)
+
+
+@dataclass(frozen=True)
+class PfdFigure:
+    """The design PFDavg of one subsystem and how it was obtained.
+
+    ``pfd_avg`` is the figure (at most 1), ``method`` one of the ``PFD_METHOD_*``
+    texts, ``simplified`` the simplified equations' value before clipping, ``exact``
+    the exact Markov value (None when not computed).
+    """
+
+    pfd_avg: float
+    method: str
+    simplified: float
+    exact: float | None
+
+
+def pfd_figure(sub: Subsystem, method: str = METHOD_IEC,
+               proof_test_interval_hours: float | None = None) -> PfdFigure:
+    """Design PFDavg of ``sub``: the simplified value clamped to [exact, 1.25 * exact].
+
+    See the module text. With the ISA method the ISA value is kept as it is (the
+    exact value is not needed for the figure and is not computed here).
+    """
+    raw = subsystem_pfd_raw(sub, method, proof_test_interval_hours)
+    if method == METHOD_ISA:
+        return PfdFigure(min(1.0, raw), PFD_METHOD_ISA, raw, None)
+    exact = subsystem_pfd_exact(sub, proof_test_interval_hours)
+    if exact is None:
+        return PfdFigure(min(1.0, raw), PFD_METHOD_SIMPLIFIED, raw, None)
+    if raw < exact:
+        value, how = exact, PFD_METHOD_EXACT
+    elif raw > EXACT_BAND * exact:
+        value, how = EXACT_BAND * exact, PFD_METHOD_CAPPED
+    else:
+        value, how = raw, PFD_METHOD_SIMPLIFIED
+    return PfdFigure(min(1.0, value), how, raw, exact)
+
+
 def subsystem_pfd_avg(sub: Subsystem, method: str = METHOD_IEC,
                       proof_test_interval_hours: float | None = None) -> float:
-    """PFDavg of one subsystem, at most 1."""
-    return min(1.0, subsystem_pfd_raw(sub, method, proof_test_interval_hours))
+    """Design PFDavg of one subsystem, at most 1 (the figure :func:`evaluate_subsystem` reports)."""
+    return pfd_figure(sub, method, proof_test_interval_hours).pfd_avg
 
 
 def subsystem_pfh(sub: Subsystem, proof_test_interval_hours: float | None = None) -> float:
@@ -528,6 +638,14 @@ class SifDesign:
 
 @dataclass(frozen=True)
 class SubsystemResult:
+    """Design result of one subsystem.
+
+    ``pfd_avg`` is the design figure, ``pfd_method`` says which method gave it (one of
+    the ``PFD_METHOD_*`` texts), ``pfd_avg_simplified`` is the simplified equations'
+    value (before clipping to 1) and ``pfd_avg_exact`` the exact Markov value (None
+    where it was not computed: more than four channels).
+    """
+
     name: str
     voting: str
     hft: int
@@ -538,6 +656,9 @@ class SubsystemResult:
     architecture: _sil.ArchitectureLimit
     systematic_capability: int | None
     caution: tuple[str, ...] = ()
+    pfd_method: str = PFD_METHOD_SIMPLIFIED
+    pfd_avg_simplified: float | None = None
+    pfd_avg_exact: float | None = None
 
     @property
     def architectural_sil(self) -> int:
@@ -572,23 +693,46 @@ class SifResult:
 
 def evaluate_subsystem(sub: Subsystem, demand_mode: str = _sil.LOW, method: str = METHOD_IEC,
                        route: str = _sil.ROUTE_AUTO) -> SubsystemResult:
-    """PFDavg, PFH (high demand only) and architectural limit of one subsystem."""
+    """PFDavg, PFH (high demand only) and architectural limit of one subsystem.
+
+    The PFDavg is :func:`pfd_figure` (the same in both demand modes); the cautions
+    about how it was obtained are given in low demand mode, where it sets the SIL.
+    """
     teff = sub.effective_interval()
-    raw = group_pfd(sub.voting, sub.lambda_du_per_hour, sub.lambda_dd_per_hour,
-                    sub.lambda_sd_per_hour, sub.beta, sub.beta_d, sub.mttr_hours, sub.mrt_hours,
-                    teff, method)
+    fig = pfd_figure(sub, method)
+    raw, exact = fig.simplified, fig.exact
+    if method == METHOD_ISA and sub.voting.n <= _markov.MAX_CHANNELS:
+        exact = subsystem_pfd_exact(sub)
+    low = demand_mode == _sil.LOW
     caution: list[str] = []
-    if raw > 1.0:
-        caution.append(f"{sub.name}: the linearised PFDavg ({raw:.3g}) exceeds 1 and is "
+    name, voting = sub.name, str(sub.voting)
+    from_simplified = fig.method in (PFD_METHOD_SIMPLIFIED, PFD_METHOD_ISA)
+    if raw > 1.0 and from_simplified:
+        caution.append(f"{name}: the linearised PFDavg ({raw:.3g}) exceeds 1 and is "
                        f"reported as 1; the simplified equations are not valid here")
-        pfd = 1.0
-    else:
-        pfd = raw
+    if low and fig.method == PFD_METHOD_EXACT:
+        caution.append(f"{name}: the simplified {voting} equation is "
+                       f"{_percent(1.0 - raw / exact)} below the exact Markov value "
+                       f"({exact:.3g}); the exact value is used")
+    elif low and fig.method == PFD_METHOD_CAPPED:
+        caution.append(f"{name}: the simplified {voting} equations give {_times(raw, exact)} "
+                       f"the exact Markov value ({exact:.3g}); the figure is the exact value "
+                       f"+ 25 % (the upper edge of the accepted band)")
+    elif low and fig.method == PFD_METHOD_ISA and exact is not None and raw < exact:
+        caution.append(f"{name}: the ISA-TR84.00.02 value is {_percent(1.0 - raw / exact)} "
+                       f"below the exact Markov value ({exact:.3g}); it is reported as the "
+                       f"chosen method gives it")
+    elif low and exact is None and method == METHOD_IEC:
+        caution.append(f"{name}: {voting} has more than {_markov.MAX_CHANNELS} channels; the "
+                       f"simplified equations are not checked against the exact Markov model")
     lt = sub.lambda_du_per_hour * teff
-    if lt > LAMBDA_T_CAUTION:
-        caution.append(f"{sub.name}: lambda_DU x test interval = {lt:.3g} is above "
-                       f"{LAMBDA_T_CAUTION:g}; the simplified equations lose accuracy "
-                       f"(they overstate the PFDavg)")
+    if lt > LAMBDA_T_CAUTION and from_simplified:
+        text = (f"{name}: lambda_DU x test interval = {lt:.3g} is above "
+                f"{LAMBDA_T_CAUTION:g}; the simplified equations lose accuracy "
+                f"(they overstate the PFDavg)")
+        if exact and raw >= exact:
+            text += f"; here {_percent(raw / exact - 1.0)} above the exact Markov value"
+        caution.append(text)
     pfh = None
     if demand_mode == _sil.HIGH:
         pfh = group_pfh(sub.voting, sub.lambda_du_per_hour, sub.lambda_dd_per_hour,
@@ -597,10 +741,21 @@ def evaluate_subsystem(sub: Subsystem, demand_mode: str = _sil.LOW, method: str 
     sff_value = sub.safe_failure_fraction()
     arch = _sil.architectural_limit(sub.voting.hft, demand_mode, sff_value, sub.hft_type, route)
     return SubsystemResult(
-        name=sub.name, voting=str(sub.voting), hft=sub.voting.hft, pfd_avg=pfd, pfh_per_hour=pfh,
-        effective_test_interval_hours=teff, sff=sff_value, architecture=arch,
+        name=sub.name, voting=voting, hft=sub.voting.hft, pfd_avg=fig.pfd_avg,
+        pfh_per_hour=pfh, effective_test_interval_hours=teff, sff=sff_value, architecture=arch,
         systematic_capability=sub.systematic_capability, caution=tuple(caution),
+        pfd_method=fig.method, pfd_avg_simplified=raw, pfd_avg_exact=exact,
     )
+
+
+def _percent(fraction: float) -> str:
+    return f"{100.0 * fraction:.3g} %"
+
+
+def _times(value: float, reference: float) -> str:
+    if reference <= 0.0:
+        return "a positive value against 0 for"
+    return f"{value / reference:.3g} times"
 
 
 def sif_pfd_avg(subsystems: Iterable[Subsystem], method: str = METHOD_IEC) -> float:
@@ -712,10 +867,37 @@ def max_proof_test_interval(sif: SifDesign, target: float | None = None, *,
         return None
     if _total(sif, flags, cap, measure) <= target:
         return cap
-    hi = cap
+    return _longest_meeting(lambda t: _total(sif, flags, t, measure) <= target,
+                            lambda t: _total(sif, flags, t, measure) - target, lo, cap)
+
+
+def _longest_meeting(meets, excess, lo: float, hi: float) -> float:
+    """Largest t in [lo, hi) with meets(t), given meets(lo) and not meets(hi).
+
+    Brent's method on log t finds the crossing of the (non-decreasing) ``excess``
+    in a few evaluations (each may need an exact Markov solve); every evaluated point
+    narrows the bracket [lo, hi], which is then bisected down to a relative width of
+    1e-10, so the answer always meets the target.
+    """
+    bracket = [lo, hi]
+
+    def g(x: float) -> float:
+        t = min(max(math.exp(x), bracket[0]), bracket[1])
+        value = excess(t)
+        if value <= 0.0:
+            bracket[0] = max(bracket[0], t)
+        else:
+            bracket[1] = min(bracket[1], t)
+        return value
+
+    if hi > lo:
+        # on a failure to converge the bisection below finishes the job
+        with contextlib.suppress(RuntimeError, ValueError):
+            _brentq(g, math.log(lo), math.log(hi), xtol=1e-11, rtol=1e-14, maxiter=100)
+    lo, hi = bracket
     while hi - lo > 1e-10 * hi:
         mid = math.sqrt(lo * hi) if hi > 4.0 * lo else 0.5 * (lo + hi)
-        if _total(sif, flags, mid, measure) <= target:
+        if meets(mid):
             lo = mid
         else:
             hi = mid
@@ -741,11 +923,13 @@ def pfd_if_test_moved(item: Subsystem | SifDesign, planned_interval_hours: float
                       method: str | None = None) -> TestMoveResult:
     """PFDavg of the proof test cycle whose test was moved (late or early).
 
-    The design equation is evaluated twice: once with T1 = the planned
-    interval and once with T1 = the actual interval. The second value is the
-    time average of the PFD over that one stretched (or shortened) cycle,
-    assuming the cycle starts just after a perfect test; it is not a long-run
-    average over several cycles. ``item`` is one subsystem or a SIF; for a
+    The design figure (:func:`subsystem_pfd_avg`, the same one
+    :func:`evaluate_sif` reports) is evaluated twice: once with T1 = the
+    planned interval and once with T1 = the actual interval. The second value
+    is the figure of a schedule with that interval throughout, a stand-in for
+    the one stretched (or shortened) cycle; with the linearised equations it
+    equals the time average over that one cycle started just after a perfect
+    test. ``item`` is one subsystem or a SIF; for a
     SIF the interval is changed for every subsystem, or only for the one named
     ``subsystem``, and the others keep their own interval.
     """

@@ -35,7 +35,6 @@ from scipy import stats
 
 from .errors import InputError
 
-HOURS_PER_YEAR = 8760.0
 #: Upper-bound confidence for prior-use failure rates (IEC 61511-1:2016 cl. 11.9).
 IEC61511_PRIOR_USE_CL = 0.70
 #: Confidence for field-feedback failure rates under IEC 61508-2 Route 2H.

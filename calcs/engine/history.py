@@ -69,7 +69,6 @@ from .errors import InputError
 from .units import check_not_after, check_rate
 from .voting import parse_voting
 
-HOURS_PER_YEAR = 8760.0
 TEST_KINDS = ("full", "partial", "demand")
 
 #: Relative difference between the history model run on a perfect schedule and

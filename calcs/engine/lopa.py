@@ -33,8 +33,7 @@ from dataclasses import dataclass
 
 from .errors import InputError
 from .sil import sil_from_pfd
-
-HOURS_PER_YEAR = 8760.0
+from .units import HOURS_PER_YEAR
 
 NO_SIF_NEEDED = "no_sif_needed"
 BELOW_SIL1 = "below_sil1"

@@ -13,6 +13,8 @@ from .errors import InputError
 
 #: 1 year = 8760 h (the convention of IEC 61508-6 Annex B and of this software).
 HOURS_PER_YEAR = 8760.0
+#: One month of a test interval: a twelfth of a year (730 h).
+HOURS_PER_MONTH = HOURS_PER_YEAR / 12
 #: 1 FIT = 1e-9 failures per hour.
 FIT_PER_HOUR = 1e-9
 #: A failure rate above this (per hour) is refused as implausible: 1e-4 /h is 100 000 FIT,

@@ -99,6 +99,22 @@ def _figure(key: str, what: str, value: float | None, target: float | None,
                 value, target)
 
 
+def _sil_line(key: str, value: int | None, target_sil: int | None, what: str, unit: str,
+              missing: str) -> Line:
+    """A line comparing a SIL-like level (architecture, systematic capability) with the
+    target SIL."""
+    if target_sil is None:
+        return Line(key, LABELS[key], UNKNOWN, "no target SIL is set")
+    if value is None:
+        return Line(key, LABELS[key], UNKNOWN, missing)
+    if value >= target_sil:
+        return Line(key, LABELS[key], PASS, f"{what} {unit} {value}, target SIL {target_sil}",
+                    value, target_sil)
+    return Line(key, LABELS[key], FAIL,
+                f"{what} only {unit} {value}, below the target SIL {target_sil}", value,
+                target_sil)
+
+
 def judge(*, target_sil: int | None, low_demand: bool = True,
           target_pfd_avg: float | None = None, target_pfh_per_hour: float | None = None,
           design_pfd_avg: float | None = None, design_pfh_per_hour: float | None = None,
@@ -145,33 +161,11 @@ def judge(*, target_sil: int | None, low_demand: bool = True,
             lines.append(Line(key, LABELS[key], UNKNOWN,
                               "a PFDavg is a low-demand measure; this function runs in high "
                               "demand or continuous mode"))
-    if target_sil is None:
-        lines.append(Line(ARCHITECTURE, LABELS[ARCHITECTURE], UNKNOWN, "no target SIL is set"))
-        lines.append(Line(SYSTEMATIC, LABELS[SYSTEMATIC], UNKNOWN, "no target SIL is set"))
-    else:
-        if architectural_sil is None:
-            lines.append(Line(ARCHITECTURE, LABELS[ARCHITECTURE], UNKNOWN,
-                              "the architectural limit could not be determined"))
-        elif architectural_sil >= target_sil:
-            lines.append(Line(ARCHITECTURE, LABELS[ARCHITECTURE], PASS,
-                              f"the architecture allows SIL {architectural_sil}, target SIL "
-                              f"{target_sil}", architectural_sil, target_sil))
-        else:
-            lines.append(Line(ARCHITECTURE, LABELS[ARCHITECTURE], FAIL,
-                              f"the architecture allows only SIL {architectural_sil}, below the "
-                              f"target SIL {target_sil}", architectural_sil, target_sil))
-        if systematic_capability is None:
-            lines.append(Line(SYSTEMATIC, LABELS[SYSTEMATIC], UNKNOWN,
-                              "no systematic capability is recorded for the devices"))
-        elif systematic_capability >= target_sil:
-            lines.append(Line(SYSTEMATIC, LABELS[SYSTEMATIC], PASS,
-                              f"the lowest systematic capability is SC {systematic_capability}, "
-                              f"target SIL {target_sil}", systematic_capability, target_sil))
-        else:
-            lines.append(Line(SYSTEMATIC, LABELS[SYSTEMATIC], FAIL,
-                              f"the lowest systematic capability is SC {systematic_capability}, "
-                              f"below the target SIL {target_sil}", systematic_capability,
-                              target_sil))
+    lines.append(_sil_line(ARCHITECTURE, architectural_sil, target_sil, "the architecture allows",
+                           "SIL", "the architectural limit could not be determined"))
+    lines.append(_sil_line(SYSTEMATIC, systematic_capability, target_sil,
+                           "the lowest systematic capability is", "SC",
+                           "no systematic capability is recorded for the devices"))
     statuses = {x.status for x in lines}
     meets = False if FAIL in statuses else (True if statuses == {PASS} else None)
     return Verdict(meets, tuple(lines))

@@ -12,26 +12,7 @@ from __future__ import annotations
 
 from rest_framework.permissions import SAFE_METHODS, BasePermission
 
-from register.models import Membership
-from register.permissions import can, roles_for
-
-
-def site_id_of(obj) -> int | None:
-    """Walk ``site_path`` from the object to its site id (no extra query when joined)."""
-    path = getattr(obj, "site_path", None)
-    if path is None:
-        return obj.pk if obj.__class__.__name__ == "Site" else None
-    parts = path.split("__")
-    for part in parts[:-1]:
-        obj = getattr(obj, part)
-    return getattr(obj, f"{parts[-1]}_id")
-
-
-def can_somewhere(user, action: str) -> bool:
-    """True if the user holds a role with this right at any site."""
-    if user.is_superuser:
-        return True
-    return Membership.objects.filter(user=user, role__in=roles_for(action)).exists()
+from register.permissions import can, can_somewhere, site_id_of
 
 
 class LedgerPermission(BasePermission):

@@ -39,8 +39,8 @@ class VisiblePK(serializers.PrimaryKeyRelatedField):
     def get_queryset(self):
         qs = super().get_queryset()
         request = self.context.get("request")
-        if hasattr(qs, "for_user"):
-            return qs.for_user(request.user if request else None)
+        if hasattr(qs, "restrict"):
+            return qs.restrict(request.user if request else None)
         return qs
 
 

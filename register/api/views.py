@@ -45,7 +45,7 @@ from register.models import (
     TestPlan,
     TestRecord,
 )
-from register.permissions import Action, roles_for
+from register.permissions import Action
 
 from . import filters
 from . import serializers as s
@@ -93,7 +93,7 @@ class LedgerViewSet(viewsets.GenericViewSet):
     write_rights: dict[str, str] = {}
 
     def get_queryset(self):
-        return super().get_queryset().for_user(self.request.user)
+        return super().get_queryset().restrict(self.request.user)
 
     def created(self, obj, code=status.HTTP_201_CREATED):
         return Response(self.get_serializer(obj).data, status=code)
@@ -398,7 +398,7 @@ class EvidencePackViewSet(mixins.CreateModelMixin, ReadViewSet):
     def get_queryset(self):
         from register.models import EvidencePack
 
-        return (EvidencePack.objects.for_user(self.request.user, roles=roles_for(Action.EXPORT))
+        return (EvidencePack.objects.restrict(self.request.user, Action.EXPORT)
                 .select_related("site", "unit", "sif", "requested_by"))
 
     def perform_create(self, serializer):
@@ -535,7 +535,7 @@ class BulkTestResults(APIView):
 
     def _resolve(self, user, index, item):
         errors = []
-        sifs = SafetyFunction.objects.for_user(user).select_related("unit")
+        sifs = SafetyFunction.objects.restrict(user).select_related("unit")
         if item.get("sif"):
             sif = sifs.filter(pk=item["sif"]).first()
         else:

@@ -15,6 +15,7 @@ from django.core.cache import cache
 from django.db import transaction
 from django.utils import timezone
 
+from register.models import ChainEntry
 from tests import factories as f
 from tests.api import ROLES, build_world
 
@@ -224,5 +225,8 @@ def test_status(world, row, role, where, expected):
     kwargs = {"format": "json"}
     if body is not None:
         kwargs["data"] = body(place)
+    before = ChainEntry.objects.count()
     response = getattr(client, method)(url(place, world, role), **kwargs)
     assert response.status_code == expected, (name, role, where, response.content[:400])
+    if expected >= 400:  # a refused request wrote nothing (every write appends to the chain)
+        assert ChainEntry.objects.count() == before, (name, role, where)

@@ -47,7 +47,7 @@ def make(voting, data, **override):
 
 
 @settings(max_examples=300, deadline=None)
-@given(st.sampled_from(VOTINGS), channel(ldu=st.floats(0.0, 1e-2),
+@given(st.sampled_from(VOTINGS), channel(ldu=st.floats(0.0, 1e-4),
                                          t1=st.floats(1.0, 175200.0)))
 def test_pfd_in_unit_interval(voting, data):
     pfd = subsystem_pfd_avg(make(voting, data))

@@ -26,16 +26,7 @@ def plant():
     return s, u, tech, lead
 
 
-def _full_test(sif, tech, when, fail_tag=None):
-    results = [services.ResultInput(
-        component=c, as_found="fail" if c.tag == fail_tag else "pass", as_left="pass",
-        failure_mode="du" if c.tag == fail_tag else "",
-        failure_description="stuck" if c.tag == fail_tag else "",
-        work_done="fixed" if c.tag == fail_tag else "")
-        for c in Component.objects.filter(subsystem__sif=sif)]
-    rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL, results=results,
-                              performed_at=when)
-    return services.sign_record(rec, tech, f.PASSWORD)
+_full_test = f.full_test
 
 
 def test_assessment_keeps_design_achieved_and_flags(plant):
