@@ -145,6 +145,25 @@ class BypassState(models.TextChoices):
     CLOSED = "closed", _("Closed")
 
 
+BYPASS_STATE_STYLE = {
+    BypassState.OPEN: "badge-soon",
+    BypassState.OVERDUE: "badge-late",
+    BypassState.ESCALATED: "badge-alarm",
+    BypassState.CLOSED: "badge-neutral",
+}
+
+
+def plan_state_badge(state: str | None) -> dict:
+    """Label and badge style of a plan state (no state: not scheduled)."""
+    st = PlanState(state or PlanState.NO_PLAN)
+    return {"label": st.label, "style": PLAN_STATE_STYLE[st]}
+
+
+def bypass_state_badge(state: str) -> dict:
+    st = BypassState(state)
+    return {"label": st.label, "style": BYPASS_STATE_STYLE[st]}
+
+
 class NotificationKind(models.TextChoices):
     PLAN_STATE = "plan_state", _("Test plan state changed")
     BYPASS_STATE = "bypass_state", _("Bypass state changed")

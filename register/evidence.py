@@ -30,6 +30,7 @@ from calcs.engine.errors import EngineError
 
 from . import choices, presenters
 from .audit import verify_chain
+from .days import end_of_day, start_of_day
 from .models import (
     Bypass,
     Component,
@@ -79,8 +80,7 @@ def packs_dir() -> Path:
 
 
 def _utc(day: dt.date, end=False) -> dt.datetime:
-    t = dt.time.max if end else dt.time.min
-    return dt.datetime.combine(day, t, tzinfo=dt.UTC)
+    return end_of_day(day) if end else start_of_day(day)
 
 
 def _iso(value) -> str | None:
@@ -1035,9 +1035,35 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
 # ---------------------------------------------------------------------------------------
 
 
+#: The longest period one pack may cover (a pack reads every record of the period).
+MAX_PACK_YEARS = 25
+
+
+def pack_request_errors(*, scope: str, site, period_start: dt.date | None,
+                        period_end: dt.date | None, unit=None, sif=None) -> dict[str, str]:
+    """The one validation of a pack request (page, API and command): field -> message."""
+    errors = {}
+    if scope == EvidencePack.Scope.UNIT and (unit is None or site is None
+                                             or unit.site_id != site.pk):
+        errors["unit"] = "Choose a unit of this site for a unit pack."
+    if scope == EvidencePack.Scope.SIF and (sif is None or site is None
+                                            or sif.unit.site_id != site.pk):
+        errors["sif"] = "Choose a SIF of this site for a one-SIF pack."
+    if period_start and period_end:
+        if period_end < period_start:
+            errors["period_end"] = "The period cannot end before it starts."
+        elif period_end > timezone.localdate():
+            errors["period_end"] = "The period cannot end in the future."
+        elif (period_end - period_start).days > MAX_PACK_YEARS * 366:
+            errors["period_start"] = (f"A pack covers at most {MAX_PACK_YEARS} years; "
+                                      "ask for several packs.")
+    return errors
+
+
 def request_pack(user, *, scope: str, site, period_start: dt.date, period_end: dt.date,
-                 unit=None, sif=None) -> EvidencePack:
-    """Record a pack request and start its build once the request is committed.
+                 unit=None, sif=None, build_in_background: bool = True) -> EvidencePack:
+    """Record a pack request and start its build once the request is committed
+    (``build_in_background=False``: the caller builds it, as the command does).
 
     Needs the export right at the site (auditors, verifiers, leads). Asking for a pack
     writes only this request, never a register or test record.
@@ -1048,13 +1074,8 @@ def request_pack(user, *, scope: str, site, period_start: dt.date, period_end: d
     from .permissions import Action, require
 
     require(user, Action.EXPORT, site.pk)
-    errors = {}
-    if scope == EvidencePack.Scope.UNIT and (unit is None or unit.site_id != site.pk):
-        errors["unit"] = "Choose a unit of this site for a unit pack."
-    if scope == EvidencePack.Scope.SIF and (sif is None or sif.unit.site_id != site.pk):
-        errors["sif"] = "Choose a SIF of this site for a one-SIF pack."
-    if period_end < period_start:
-        errors["period_end"] = "The period cannot end before it starts."
+    errors = pack_request_errors(scope=scope, site=site, period_start=period_start,
+                                 period_end=period_end, unit=unit, sif=sif)
     if errors:
         raise ValidationError(errors)
     with transaction.atomic():
@@ -1069,7 +1090,8 @@ def request_pack(user, *, scope: str, site, period_start: dt.date, period_end: d
 
             build_evidence_pack.delay(pack.pk)
 
-        transaction.on_commit(start)
+        if build_in_background:
+            transaction.on_commit(start)
     return pack
 
 

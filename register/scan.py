@@ -26,6 +26,7 @@ from django.urls import reverse
 from django.utils import timezone
 
 from . import choices, presenters
+from .days import end_of_day
 from .filters import not_decommissioned
 from .models import Bypass, Membership, Notification, SafetyFunction, TestPlan
 from .scheduling import PlanStatus, active_plans, refresh_plans
@@ -75,7 +76,7 @@ def scan(as_of: dt.date | None = None, *, notify: bool = True) -> ScanResult:
         result.plans = compute_statuses(plans, as_of)
     result.counts = Counter(s.state for s in result.plans.values())
 
-    at = dt.datetime.combine(as_of, dt.time(23, 59, 59), tzinfo=dt.UTC)
+    at = end_of_day(as_of)
     if as_of == timezone.localdate():
         at = timezone.now()
     bypasses = list(Bypass.objects.filter(started_at__lte=at).exclude(ended_at__lt=at)

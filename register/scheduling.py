@@ -32,6 +32,7 @@ from dataclasses import dataclass
 from django.db.models import Max
 
 from . import choices
+from .days import end_of_day
 from .models import (
     Component,
     ComponentResult,
@@ -114,7 +115,7 @@ def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
         return {}
     plan_ids = [p.pk for p in plans]
     sif_ids = {p.sif_id for p in plans}
-    cutoff = dt.datetime.combine(as_of, dt.time.max, tzinfo=dt.UTC)
+    cutoff = end_of_day(as_of)
 
     # 1. Plan -> named components.
     named: dict[int, list[int]] = defaultdict(list)

@@ -260,11 +260,7 @@ def home(request):
 # ---------------------------------------------------------------------------------------
 
 
-def _state_badge(state):
-    if not state:
-        state = PlanState.NO_PLAN
-    state = PlanState(state)
-    return {"label": state.label, "style": choices.PLAN_STATE_STYLE[state]}
+_state_badge = choices.plan_state_badge
 
 
 @login_required
@@ -394,11 +390,9 @@ def sif_detail(request, pk):
                .select_related("plan").order_by("-performed_at"))
     bypasses = []
     for b in d.bypasses[::-1]:
-        state = choices.BypassState(bypass_state(b, now))
-        bypasses.append({"obj": b, "state": state.label, "duration": _fmt_hours(
-            b.duration_hours(now)), "open": b.ended_at is None,
-            "style": {"open": "badge-soon", "overdue": "badge-late",
-                      "escalated": "badge-alarm", "closed": "badge-neutral"}[state.value]})
+        badge = choices.bypass_state_badge(bypass_state(b, now))
+        bypasses.append({"obj": b, "state": badge["label"], "duration": _fmt_hours(
+            b.duration_hours(now)), "open": b.ended_at is None, "style": badge["style"]})
     may_decide = can(request.user, Action.DECIDE_DEFERRAL, site_id)
     deferrals = []
     for df_ in Deferral.objects.filter(plan__sif=sif).select_related(

@@ -20,7 +20,8 @@ from django.utils import timezone
 from django.views.decorators.http import require_http_methods
 
 from .audit import entries_for, verify_chain
-from .evidence import pack_file, request_pack
+from .days import end_of_day
+from .evidence import pack_file, pack_request_errors, request_pack
 from .models import (
     Component,
     EvidencePack,
@@ -86,21 +87,11 @@ class PackForm(forms.Form):
 
     def clean(self):
         data = super().clean()
-        site, scope = data.get("site"), data.get("scope")
-        start, end = data.get("period_start"), data.get("period_end")
-        if start and end:
-            if end < start:
-                self.add_error("period_end", "The period must end after it starts.")
-            if end > timezone.localdate():
-                self.add_error("period_end", "The period cannot end in the future.")
-        if site and scope == EvidencePack.Scope.UNIT:
-            unit = data.get("unit")
-            if unit is None or unit.site_id != site.pk:
-                self.add_error("unit", "Choose a unit of this site.")
-        if site and scope == EvidencePack.Scope.SIF:
-            sif = data.get("sif")
-            if sif is None or sif.unit.site_id != site.pk:
-                self.add_error("sif", "Choose a SIF of this site.")
+        for name, message in pack_request_errors(
+                scope=data.get("scope"), site=data.get("site"),
+                period_start=data.get("period_start"), period_end=data.get("period_end"),
+                unit=data.get("unit"), sif=data.get("sif")).items():
+            self.add_error(name, message)
         return data
 
 
@@ -177,7 +168,7 @@ def sif_as_of_data(sif: SafetyFunction, day: dt.date) -> dict:
     from calcs.engine.errors import EngineError
     from calcs.models import Assessment
 
-    end = dt.datetime.combine(day, dt.time.max, tzinfo=dt.UTC)
+    end = end_of_day(day)
     # The newest history row on or before the date (a deleted SIF shows as "-").
     then = (SafetyFunction.history.filter(id=sif.pk, history_date__lte=end)
             .order_by("-history_date", "-history_id").first())

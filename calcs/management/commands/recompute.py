@@ -7,6 +7,7 @@ from django.utils import timezone
 
 from calcs.adapter import recompute_many
 from register import choices
+from register.days import end_of_day
 from register.models import SafetyFunction
 
 
@@ -27,7 +28,7 @@ class Command(BaseCommand):
             qs = qs.filter(tag=opts["tag"])
         as_of = None
         if opts["as_of"]:
-            as_of = dt.datetime.combine(opts["as_of"], dt.time(23, 59), tzinfo=dt.UTC)
+            as_of = end_of_day(opts["as_of"])
         started = time.perf_counter()
         queries_before = len(connection.queries) if connection.queries_logged else None
         reset_queries()

@@ -4,9 +4,10 @@ import datetime as dt
 import shutil
 
 from django.contrib.auth import get_user_model
+from django.core.exceptions import ValidationError
 from django.core.management.base import BaseCommand, CommandError
 
-from register.evidence import run
+from register.evidence import request_pack, run
 from register.models import EvidencePack, PlantUnit, SafetyFunction, Site
 from register.permissions import Action, can
 
@@ -44,11 +45,15 @@ class Command(BaseCommand):
             if unit is None:
                 raise CommandError(f"No unit {o['unit']!r} at this site.")
             scope = EvidencePack.Scope.UNIT
-        if o["end"] < o["start"]:
-            raise CommandError("The period must end after it starts.")
-        pack = EvidencePack.objects.create(scope=scope, site=site, unit=unit, sif=sif,
-                                           period_start=o["start"], period_end=o["end"],
-                                           requested_by=user)
+        start, end = (dt.date.fromisoformat(x) if isinstance(x, str) else x
+                      for x in (o["start"], o["end"]))  # call_command passes text as is
+        try:
+            pack = request_pack(user, scope=scope, site=site, unit=unit, sif=sif,
+                                period_start=start, period_end=end,
+                                build_in_background=False)
+        except ValidationError as exc:
+            raise CommandError("; ".join(f"{k}: {' '.join(v)}" for k, v in
+                                         exc.message_dict.items())) from None
         pack = run(pack.pk)
         from django.conf import settings
 
