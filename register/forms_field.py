@@ -11,7 +11,7 @@ from django import forms
 from django.conf import settings
 from django.utils import timezone
 
-from . import choices
+from . import choices, rules
 from .models import Component, SafetyFunction, TestStep
 
 FIELD_KINDS = [choices.TestKind.FULL, choices.TestKind.PARTIAL, choices.TestKind.DEMAND]
@@ -28,27 +28,6 @@ def parse_number(text: str) -> float:
     if not math.isfinite(value):
         raise ValueError(text)
     return value
-
-
-def is_timing_step(step: TestStep) -> bool:
-    return step.unit.strip().lower() in ("s", "sec", "seconds") and \
-        "time" in step.measured_quantity.lower()
-
-
-def judge(step: TestStep, sif: SafetyFunction, value: float) -> bool | None:
-    """The step's own criterion, and for a timing step also the SIF's required response time."""
-    verdict = step.judge(value)
-    if is_timing_step(step) and sif.required_response_time_s is not None:
-        within_time = value <= sif.required_response_time_s
-        verdict = within_time if verdict is None else (verdict and within_time)
-    return verdict
-
-
-def criterion_text(step: TestStep, sif: SafetyFunction) -> str:
-    parts = [step.describe_criterion()] if step.describe_criterion() else []
-    if is_timing_step(step) and sif.required_response_time_s is not None:
-        parts.append(f"SIF response ≤ {sif.required_response_time_s:g} s")
-    return "; ".join(parts)
 
 
 class HeaderForm(forms.Form):
@@ -82,7 +61,12 @@ class HeaderForm(forms.Form):
 
 
 class ComponentForm(forms.Form):
-    """As-found / as-left verdicts, values measured on the steps, work done, failure found."""
+    """As-found / as-left verdicts, values measured on the steps, work done, failure found.
+
+    ``steps`` are the steps that apply to this component (``rules.steps_for``). Values are
+    judged by ``register.rules`` only; the page shows that judgement live (htmx) or after
+    submit, and :meth:`apply_proposals` preselects what it proposes.
+    """
 
     as_found = forms.ChoiceField(label="As found", choices=VERDICT_CHOICES, required=False,
                                  widget=forms.RadioSelect)
@@ -96,11 +80,17 @@ class ComponentForm(forms.Form):
     failure_description = forms.CharField(label="Failure description", required=False,
                                           widget=forms.Textarea(attrs={"rows": 2}))
 
+    #: Name (after the prefix) of the hidden input listing the choices the page preselected
+    #: from the judgement and the technician has not changed. Page state, not a result.
+    PROPOSED = "proposed"
+    PROPOSABLE = ("as_found", "as_left", "failure_mode")
+
     def __init__(self, *args, component: Component, steps: list[TestStep],
                  sif: SafetyFunction, signing: bool = False, **kwargs):
         kwargs.setdefault("prefix", f"c{component.pk}")
         super().__init__(*args, **kwargs)
         self.component, self.steps, self.sif, self.signing = component, steps, sif, signing
+        self.proposal = rules.Proposal({}, set(self._marked()), {})
         for step in steps:
             for phase in ("found", "left"):
                 self.fields[self.value_name(step, phase)] = forms.CharField(
@@ -112,23 +102,75 @@ class ComponentForm(forms.Form):
     def value_name(step: TestStep, phase: str) -> str:
         return f"v{step.pk}_{phase}"
 
+    # -- judging, for the page ----------------------------------------------------------
+    def _marked(self) -> list[str]:
+        raw = self.data.get(self.add_prefix(self.PROPOSED), "") if self.is_bound else ""
+        return [f for f in raw.split(",") if f in self.PROPOSABLE]
+
+    def judgement(self, step: TestStep, phase: str) -> rules.Judgement | None:
+        """The rule's judgement of the value shown in the box (typed or saved), or None."""
+        raw = self[self.value_name(step, phase)].value()
+        if raw in (None, ""):
+            return None
+        try:
+            value = parse_number(str(raw))
+        except ValueError:
+            return rules.not_a_number(str(raw))
+        return rules.judge_measurement(step, value, sif=self.sif)
+
     def measurement_rows(self):
-        """For the template: one row per step with its two bound fields."""
+        """For the template: one row per step with its two bound fields and judgements."""
         return [
-            {"step": step, "criterion": criterion_text(step, self.sif),
-             "max_time": self.sif.required_response_time_s if is_timing_step(step) else None,
+            {"step": step, "criterion": rules.criterion_text(step, self.sif),
              "found": self[self.value_name(step, "found")],
-             "left": self[self.value_name(step, "left")]}
+             "left": self[self.value_name(step, "left")],
+             "found_judgement": self.judgement(step, "found"),
+             "left_judgement": self.judgement(step, "left")}
             for step in self.steps
         ]
 
+    def live_params(self) -> str:
+        """The inputs the live judging request sends (htmx ``hx-params``)."""
+        names = [self.add_prefix(self.value_name(s, p)) for s in self.steps
+                 for p in ("found", "left")]
+        names += [self.add_prefix(n) for n in (*self.PROPOSABLE, self.PROPOSED)]
+        return ",".join(names)
+
+    def apply_proposals(self) -> rules.Proposal:
+        """Preselect what the judgement proposes (``rules.propose``) in the displayed
+        choices; nothing is saved. The technician can change every choice."""
+        outside = {"found": False, "left": False}
+        for step in self.steps:
+            for phase in outside:
+                judged = self.judgement(step, phase)
+                outside[phase] = outside[phase] or bool(judged and judged.outside)
+        current = {n: self[n].value() or "" for n in self.PROPOSABLE}
+        self.proposal = rules.propose(outside_found=outside["found"],
+                                      outside_left=outside["left"], marked=self._marked(),
+                                      **current)
+        if self.proposal.changes and self.is_bound:
+            self.data = self.data.copy()
+            for name, value in self.proposal.changes.items():
+                self.data[self.add_prefix(name)] = value
+        return self.proposal
+
+    def proposed_fields(self) -> list[dict]:
+        """The choices the last :meth:`apply_proposals` changed, with their notes."""
+        return [{"bf": self[name], "note": self.proposal.notes.get(name, "")}
+                for name in self.PROPOSABLE if name in self.proposal.changes]
+
+    @property
+    def proposed_marker(self) -> str:
+        return ",".join(sorted(self.proposal.marked))
+
+    # -- validation ---------------------------------------------------------------------
     def has_entries(self) -> bool:
         data = self.cleaned_data
         return any(data.get(k) not in (None, "") for k in data)
 
     def clean(self):
         data = super().clean()
-        values = {}
+        values, judged = {}, []
         for step in self.steps:
             for phase in ("found", "left"):
                 name = self.value_name(step, phase)
@@ -136,9 +178,13 @@ class ComponentForm(forms.Form):
                 if raw in ("", None):
                     continue
                 try:
-                    values[(step, phase)] = parse_number(raw)
+                    values[(step, phase)] = value = parse_number(raw)
                 except ValueError:
-                    self.add_error(name, f"“{raw}” is not a number. Type digits, e.g. 12.5.")
+                    self.add_error(name, rules.not_a_number(raw).reason)
+                    continue
+                judged.append(rules.JudgedValue(
+                    step, phase, value, rules.judge_measurement(step, value, sif=self.sif),
+                    rules.criterion_text(step, self.sif)))
         self.values = values
         anything = any(v not in (None, "") for v in data.values())
         found, left = data.get("as_found"), data.get("as_left")
@@ -147,23 +193,12 @@ class ComponentForm(forms.Form):
                 self.add_error("as_found", "Choose pass, fail or not tested.")
             if not left:
                 self.add_error("as_left", "Choose pass, fail or not tested.")
-        for (step, phase), value in values.items():
-            ok = judge(step, self.sif, value)
-            verdict = found if phase == "found" else left
-            if ok is False and verdict == choices.Verdict.PASS:
-                self.add_error(
-                    f"as_{phase}",
-                    f"The {step.measured_quantity.lower()} as {phase} ({value:g} {step.unit}) "
-                    f"is outside {criterion_text(step, self.sif)}: mark it fail, or correct "
-                    "the value.")
-        if found == choices.Verdict.FAIL and not data.get("failure_mode"):
-            self.add_error("failure_mode", "Classify the failure found (DU, DD or safe).")
-        if (found == choices.Verdict.FAIL or data.get("failure_mode")) and \
-                not data.get("failure_description", "").strip():
-            self.add_error("failure_description", "Describe the failure found.")
-        if left == choices.Verdict.FAIL and not data.get("work_done", "").strip():
-            self.add_error("work_done", "A device left failed needs a note of what was done "
-                                        "and what follows (bypass, work order).")
+        problems = rules.result_problems(
+            as_found=found, as_left=left, failure_mode=data.get("failure_mode"),
+            failure_description=data.get("failure_description"),
+            work_done=data.get("work_done"), judged=judged, ahead=True)
+        for name, message in problems.items():
+            self.add_error(name, message)
         return data
 
 

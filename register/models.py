@@ -24,7 +24,6 @@ from calcs.engine.units import HOURS_PER_MONTH, HOURS_PER_YEAR  # noqa: F401 - r
 
 from . import choices
 
-
 probability = [MinValueValidator(0.0), MaxValueValidator(1.0)]
 non_negative = [MinValueValidator(0.0)]
 positive_frequency = [MinValueValidator(0.0)]
@@ -645,14 +644,13 @@ class TestStep(models.Model):
             raise ValidationError({"limit": _("This criterion needs a limit.")})
 
     def judge(self, value: float | None) -> bool | None:
-        """True if ``value`` meets the criterion, False if not, None when nothing to judge."""
-        if value is None or self.criterion == choices.CriterionKind.NONE:
+        """True if ``value`` meets the criterion, False if not, None when nothing to judge
+        (the one rule, ``register.rules.judge_measurement``)."""
+        from .rules import judge_measurement
+
+        if value is None:
             return None
-        if self.criterion == choices.CriterionKind.AROUND_SETPOINT:
-            return abs(value - self.target_value) <= self.tolerance
-        if self.criterion == choices.CriterionKind.AT_MOST:
-            return value <= self.limit
-        return value >= self.limit
+        return judge_measurement(self, value).within
 
     def describe_criterion(self) -> str:
         u = f" {self.unit}" if self.unit else ""
@@ -881,14 +879,11 @@ class ComponentResult(PartOfRecord):
         return f"{self.component} found {self.as_found}, left {self.as_left}"
 
     def clean(self):
-        errors = {}
-        if self.as_found == choices.Verdict.FAIL and not self.failure_mode:
-            errors["failure_mode"] = _("Classify the failure found (DU, DD or safe).")
-        if self.failure_mode and not self.failure_description.strip():
-            errors["failure_description"] = _("Describe the failure found.")
-        if self.as_left == choices.Verdict.FAIL and not self.work_done.strip():
-            errors["work_done"] = _("A component left failed needs a note of what was done "
-                                    "and what follows (bypass, work order).")
+        from .rules import result_problems  # the result rules and their messages
+
+        errors = result_problems(
+            as_found=self.as_found, as_left=self.as_left, failure_mode=self.failure_mode,
+            failure_description=self.failure_description, work_done=self.work_done)
         if self.record_id and self.component_id and \
                 self.component.subsystem.sif_id != self.record.sif_id:
             errors["component"] = _("The component belongs to another SIF.")
@@ -901,7 +896,12 @@ class ComponentResult(PartOfRecord):
 
 
 class MeasuredValue(PartOfRecord):
-    """A value measured during a test step (trip value, closing time...)."""
+    """A value measured during a test step (trip value, closing time...).
+
+    ``within_criterion`` is the verdict of ``register.rules.judge_measurement`` on the
+    step (and, for a timing step, the SIF's required response time); it is set on every
+    save of a value with a step, so the stored flag is always the one rule's.
+    """
 
     record_id_path = "result__record_id"
 
@@ -925,6 +925,19 @@ class MeasuredValue(PartOfRecord):
 
     def __str__(self):
         return f"{self.quantity} {self.phase}: {self.value:g} {self.unit}"
+
+    def judge(self):
+        """The rule's :class:`register.rules.Judgement` of this value (needs a step)."""
+        from .rules import is_timing_step, judge_measurement
+
+        timed = self.result_id is not None and is_timing_step(self.step)
+        return judge_measurement(self.step, self.value,
+                                 sif=self.result.record.sif if timed else None)
+
+    def save(self, *args, **kwargs):
+        if self.step_id is not None:
+            self.within_criterion = self.judge().within
+        super().save(*args, **kwargs)
 
 
 class Attachment(PartOfRecord):

@@ -136,10 +136,10 @@ def save_draft(
             continue
         _attribute(result, user).save()
         for mv in item.measurements:
-            judged = mv.step.judge(mv.value) if mv.step else None
+            # MeasuredValue.save judges a value with a step by the one rule
             MeasuredValue.objects.create(
                 result=result, step=mv.step, phase=mv.phase, quantity=mv.quantity,
-                value=mv.value, unit=mv.unit, within_criterion=judged,
+                value=mv.value, unit=mv.unit, within_criterion=None,
             )
     if errors:
         raise ValidationError(errors)

@@ -37,6 +37,7 @@ from .models import (
     TestRecord,
 )
 from .permissions import Action, require
+from .rules import result_problems
 
 COLUMNS = [
     "record", "unit", "sif_tag", "sif_name", "safe_state", "demand_mode", "target_sil",
@@ -564,12 +565,8 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
             seen_comp
         if comp_tag and not known:
             row.err("component_tag", f"Component {comp_tag} is not part of SIF {tag}.")
-        if result["as_found"] == "fail" and not result["failure_mode"]:
-            row.err("failure_mode", "A failure found needs its mode (du, dd or safe).")
-        if result["failure_mode"] and not result["failure_description"]:
-            row.err("failure_description", "Describe the failure found.")
-        if result["as_left"] == "fail" and not result["work_done"]:
-            row.err("work_done", "A component left failed needs a note of what was done.")
+        for column, message in result_problems(**result).items():
+            row.err(column, message)  # the result columns are named like the fields
         if not (at and test_kind and unit):
             continue
         tkey = (unit_code, tag, at, test_kind)

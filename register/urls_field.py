@@ -7,6 +7,7 @@ app_name = "field"
 urlpatterns = [
     path("", views.worklist, name="worklist"),
     path("plans/<int:plan_id>/start/", views.start, name="start"),
+    path("plans/<int:plan_id>/judge/<int:component_id>/", views.judge, name="judge"),
     path("records/<int:pk>/", views.record_detail, name="record_detail"),
     path("records/<int:pk>/edit/", views.record_edit, name="record_edit"),
     path("records/<int:pk>/verify/", views.record_verify, name="record_verify"),

@@ -16,7 +16,7 @@ from django.http import FileResponse, Http404
 from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
 from django.utils import timezone
-from django.views.decorators.http import require_POST
+from django.views.decorators.http import require_GET, require_POST
 
 from calcs.adapter import latest_assessments
 
@@ -30,6 +30,7 @@ from .forms_field import (
 )
 from .models import Attachment, Component, TestPlan, TestRecord
 from .permissions import Action, can, can_somewhere, require
+from .rules import steps_for
 from .scheduling import compute_statuses, status_of
 
 PER_PAGE = 20
@@ -92,6 +93,12 @@ def _initial_from(record: TestRecord | None):
     return header, per_component
 
 
+def _component_form(data, *, component, steps, roles, sif, **kwargs):
+    """The form of one device, asking only for the steps that apply to it."""
+    return ComponentForm(data, component=component, sif=sif, **kwargs,
+                         steps=steps_for(component, steps, roles_present=roles, sif=sif))
+
+
 def _build_forms(request, *, sif, plan, record=None):
     signing = request.method == "POST" and request.POST.get("action") == "sign"
     data = request.POST if request.method == "POST" else None
@@ -99,10 +106,12 @@ def _build_forms(request, *, sif, plan, record=None):
     header = HeaderForm(data, initial=header_initial or {"kind": plan.kind if plan else ""},
                         extra_kind=record.kind if record else None)
     steps = _steps(plan)
+    components = _components(plan, sif)
+    roles = {c.subsystem.role for c in components}
     comp_forms = [
-        ComponentForm(data, component=c, steps=steps, sif=sif, signing=signing,
-                      initial=comp_initial.get(c.pk, {}))
-        for c in _components(plan, sif)
+        _component_form(data, component=c, steps=steps, roles=roles, sif=sif,
+                        signing=signing, initial=comp_initial.get(c.pk, {}))
+        for c in components
     ]
     return header, comp_forms
 
@@ -248,6 +257,9 @@ def _entry(request, *, sif, plan, record=None):
     attachments = list(record.attachments.all()) if record else []
     has_errors = bool(header.errors or upload_errors or password_error
                       or any(f.errors for f in comp_forms))
+    if has_errors:
+        for form in comp_forms:  # without JavaScript, the proposals show after submit
+            form.apply_proposals()
     return render(request, "register/field/entry.html", {
         "sif": sif, "plan": plan, "record": record, "header": header,
         "comp_forms": comp_forms, "upload_errors": upload_errors,
@@ -330,6 +342,27 @@ def start(request, plan_id):
                     return redirect("field:record_detail", pk=existing.pk)
                 return redirect("field:record_edit", pk=existing.pk)
     return _entry(request, sif=plan.sif, plan=plan)
+
+
+@login_required
+@require_GET
+def judge(request, plan_id, component_id):
+    """The server's judgement of one device's typed values, as htmx out-of-band fragments:
+    each value's verdict and reason, and the choices the judgement preselects. Nothing is
+    saved. The same right as recording the test at the plan's site."""
+    plan = get_object_or_404(TestPlan.objects.restrict(request.user).select_related(
+        "sif__unit__site"), pk=plan_id)
+    require(request.user, Action.RECORD_TEST, plan.sif.unit.site_id)
+    components = _components(plan, plan.sif)
+    component = next((c for c in components if c.pk == component_id), None)
+    if component is None:
+        raise Http404("This device is not part of the test.")
+    form = _component_form(request.GET, component=component, steps=_steps(plan),
+                           roles={c.subsystem.role for c in components}, sif=plan.sif)
+    form.apply_proposals()
+    response = render(request, "register/field/_judged.html", {"cf": form})
+    response["Cache-Control"] = "private, no-store"
+    return response
 
 
 @login_required

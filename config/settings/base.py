@@ -5,11 +5,16 @@ filesystem broker (no Redis needed). Set ``DATABASE_URL`` and
 ``CELERY_BROKER_URL`` to use PostgreSQL and Redis.
 """
 
+import os
 from pathlib import Path
 
 import dj_database_url
 
 from .env import env_bool, env_int, env_list, env_str
+
+# One BLAS thread per process, for every entry point that loads these settings (see
+# config/celery.py); set before the engine first imports numpy.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 BASE_DIR = Path(__file__).resolve().parent.parent.parent
 VAR_DIR = Path(env_str("SIF_LEDGER_VAR_DIR", str(BASE_DIR / "var")))

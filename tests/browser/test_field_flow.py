@@ -75,6 +75,14 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     expect(lt.locator("output.judge").first).to_have_text("Outside criterion")
     # The out-of-tolerance value proposes a failed as-found verdict.
     assert lt.locator("input[name$='-as_found'][value='fail']").is_checked()
+    # ... and a dangerous undetected failure, so the first sign attempt is not refused for
+    # a missing failure mode (the server's judgement, shown through htmx).
+    assert lt.get_by_label("Dangerous, undetected (found by this test)").is_checked()
+    # The transmitter is asked for its trip value only, not for the valve's closing time.
+    expect(lt.get_by_label("As found (s)")).to_have_count(0)
+    # On the tolerance boundary (80 ± 1 %) the server judges within.
+    lt.get_by_label("As left (%)").fill("81")
+    expect(lt.locator("output.judge").nth(1)).to_have_text("Within criterion")
     lt.get_by_label("As left (%)").fill("80.2")
     lt.locator("label.choice", has_text="Pass").nth(1).click()  # as left
     lt.get_by_label("Dangerous, undetected (found by this test)").check()
@@ -86,6 +94,7 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
         device.locator("input[name$='-as_found'][value='pass']").check()
         device.locator("input[name$='-as_left'][value='pass']").check()
     xv = page.locator("fieldset.device", has_text="XV-101")
+    expect(xv.get_by_label("As found (%)")).to_have_count(0)
     closing = xv.get_by_label("As found (s)")
     closing.fill("6.4")
     judged = page.locator(f"#{closing.get_attribute('id')}-judge")

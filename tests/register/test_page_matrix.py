@@ -62,6 +62,8 @@ PAGES = [
     ("start test", lambda p, w: f"/field/plans/{p.plan.pk}/start/", RECORD_PAGE),
     ("record detail", lambda p, w: f"/field/records/{p.signed.pk}/", SITE_READ),
     ("record edit", lambda p, w: f"/field/records/{p.draft.pk}/edit/", DRAFT_PAGE),
+    ("judge value", lambda p, w: f"/field/plans/{p.plan.pk}/judge/{p.components[0].pk}/",
+     RECORD_PAGE),
     ("verify queue", lambda p, w: "/field/verify/", VERIFIERS),
     ("deferral list", lambda p, w: "/deferrals/", ALL),
     ("deferral request", lambda p, w: f"/deferrals/plans/{p.plan.pk}/new/", RECORD_PAGE),

@@ -111,23 +111,6 @@ def test_rate_basis_upper_bound_raises_achieved_pfd(plant):
     assert upper.rate_basis == "upper"
 
 
-def test_demo_load_is_idempotent(db):
-    from register import demo
-    from register.models import Site, TestRecord
-
-    today = timezone.localdate()
-    demo.load(today)
-    counts = (SafetyFunction.objects.count(), TestRecord.objects.count(), Site.objects.count())
-    with pytest.raises(demo.DemoAlreadyLoaded):
-        demo.load(today)
-    assert (SafetyFunction.objects.count(), TestRecord.objects.count(),
-            Site.objects.count()) == counts
-    assert counts[0] >= 40
-    states = set(__import__("register.models", fromlist=["x"]).TestPlan.objects.values_list(
-        "cached_state", flat=True))
-    assert {"due_soon", "overdue", "escalated", "escalated_2"} <= states
-
-
 def test_cached_field_statistics_follow_a_new_failure(plant):
     from calcs.adapter import device_type_stats
 
