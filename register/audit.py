@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import datetime as dt
 import decimal
+import functools
 import hashlib
 import json
 import uuid
@@ -90,6 +91,7 @@ def entry_hash(prev_hash: str, entry: ChainEntry) -> str:
     return sha256_text(prev_hash + canonical_json(entry_payload(entry)))
 
 
+@functools.cache
 def _is_history(model) -> bool:
     names = {f.name for f in model._meta.get_fields()}
     return {"history_id", "history_type", "history_date"} <= names and hasattr(
@@ -101,7 +103,8 @@ def historical_models() -> dict[str, type]:
     return {m._meta.label: m for m in apps.get_models() if _is_history(m)}
 
 
-def m2m_history_models(model) -> list[type]:
+@functools.cache
+def m2m_history_models(model) -> tuple[type, ...]:
     """The many-to-many history tables hanging off a historical model (their rows are
     written just before the parent's signal and are hashed with the parent row)."""
     out = []
@@ -112,7 +115,7 @@ def m2m_history_models(model) -> list[type]:
                    and getattr(f, "related_model", None) is model), None)
         if fk is not None:
             out.append(m)
-    return sorted(out, key=lambda m: m._meta.label)
+    return tuple(sorted(out, key=lambda m: m._meta.label))
 
 
 def _m2m_rows(model, history_ids) -> dict[int, dict[str, list]]:

@@ -32,6 +32,7 @@ from . import choices, presenters
 from .audit import verify_chain
 from .days import end_of_day, start_of_day
 from .models import (
+    Attachment,
     Bypass,
     Component,
     ComponentResult,
@@ -238,6 +239,13 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
     for r in ComponentResult.objects.filter(record__in=[x.pk for x in records]).order_by(
             "record_id", "component__tag"):
         results[r.record_id].append(r)
+    files = defaultdict(list)
+    for att in Attachment.objects.filter(record__in=[x.pk for x in records]).select_related(
+            "uploaded_by").order_by("record_id", "id"):
+        files[att.record_id].append({
+            "name": att.original_name, "content_type": att.content_type,
+            "size_bytes": att.size_bytes, "sha256": att.sha256,
+            "uploaded_by": _name(att.uploaded_by), "uploaded_at": _iso(att.uploaded_at)})
     for rec in records:
         entry = per_sif[rec.sif_id]
         res = results.get(rec.pk, [])
@@ -253,6 +261,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
             "results": [{"component": comp_by_id[r.component_id].tag
                          if r.component_id in comp_by_id else str(r.component_id),
                          "as_found": r.as_found, "as_left": r.as_left} for r in res],
+            "attachments": files.get(rec.pk, []),
         })
         for r in res:
             if r.as_found == choices.Verdict.FAIL or r.failure_mode:

@@ -954,6 +954,7 @@ class Attachment(PartOfRecord):
 
     site_path = "record__sif__unit__site"
     objects = SiteScopedQuerySet.as_manager()
+    history = HistoricalRecords()
 
     def __str__(self):
         return self.original_name
@@ -1108,7 +1109,14 @@ class Notification(models.Model):
     message = models.TextField()
     link = models.CharField(max_length=300, blank=True)
     created_at = models.DateTimeField(auto_now_add=True)
-    emailed_at = models.DateTimeField(null=True, blank=True)
+    emailed_at = models.DateTimeField(null=True, blank=True,
+                                      help_text="When the mail server accepted the e-mail.")
+    email_claimed_at = models.DateTimeField(
+        null=True, blank=True, help_text="A sender is working on it since (a lease, so two "
+                                         "workers never send the same e-mail).")
+    email_attempts = models.PositiveSmallIntegerField(default=0)
+    email_error = models.CharField(max_length=300, blank=True,
+                                   help_text="Why the last attempt failed (retried later).")
     read_at = models.DateTimeField(null=True, blank=True)
 
     site_path = "site"

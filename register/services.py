@@ -16,8 +16,9 @@ from django.core.exceptions import PermissionDenied, ValidationError
 from django.db import transaction
 from django.utils import timezone
 
-from . import choices, followup
+from . import choices, followup, rules
 from .models import (
+    Attachment,
     Bypass,
     Component,
     ComponentResult,
@@ -134,6 +135,17 @@ def save_draft(
             for key, msgs in exc.message_dict.items():
                 errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {m}" for m in msgs]
             continue
+        judged = [rules.JudgedValue(mv.step, mv.phase, mv.value,
+                                    rules.judge_measurement(mv.step, mv.value, sif=sif))
+                  for mv in item.measurements if mv.step is not None]
+        outside = {k: v for k, v in rules.result_problems(
+            as_found=item.as_found, as_left=item.as_left, failure_mode=item.failure_mode,
+            failure_description=item.failure_description, work_done=item.work_done,
+            judged=judged).items() if k in ("as_found", "as_left")}
+        if outside:  # a value outside its criterion cannot be passed (every entry point)
+            for key, msg in outside.items():
+                errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {msg}"]
+            continue
         _attribute(result, user).save()
         for mv in item.measurements:
             # MeasuredValue.save judges a value with a step by the one rule
@@ -226,6 +238,22 @@ def start_correction(original: TestRecord, user, reason: str) -> TestRecord:
                       performed_at=original.performed_at, results=results,
                       remarks=original.remarks, supersedes=original,
                       correction_reason=reason)
+
+
+@transaction.atomic
+def add_attachment(*, user, record: TestRecord, file, original_name: str, content_type: str,
+                   size_bytes: int, sha256: str) -> Attachment:
+    """Attach a checked file (photo, scan) to a draft by its performer, with history (so
+    it is chained and listed in evidence packs). A signed record takes no more files."""
+    require(user, Action.RECORD_TEST, site_id_of(record))
+    if record.status != choices.RecordStatus.DRAFT or record.performed_by_id != user.pk:
+        raise ValidationError({"attachments": "Files can be added to your own draft only."})
+    att = Attachment(record=record, file=file, original_name=original_name[:200],
+                     content_type=content_type, size_bytes=size_bytes, sha256=sha256,
+                     uploaded_by=user)
+    att.full_clean(exclude=["file"])
+    _attribute(att, user, "file attached").save()
+    return att
 
 
 # ---------------------------------------------------------------------------------------

@@ -218,10 +218,10 @@ def _entry(request, *, sif, plan, record=None):
                                         (token if TOKEN_RE.match(token) else None)),
                         )
                         for upload, content_type, digest in checked:
-                            Attachment.objects.create(
-                                record=saved, file=upload, original_name=upload.name[:200],
-                                content_type=content_type, size_bytes=upload.size,
-                                sha256=digest, uploaded_by=request.user)
+                            services.add_attachment(
+                                user=request.user, record=saved, file=upload,
+                                original_name=upload.name, content_type=content_type,
+                                size_bytes=upload.size, sha256=digest)
                 except services.StaleDraftError as exc:
                     stale = True
                     header.add_error(None, exc.messages)

@@ -214,3 +214,19 @@ def test_a_value_outside_cannot_be_passed(world):
                               {**passed, f"v{step.pk}_found": "2,4"}.items()},
                              component=world["comp"], steps=[step], sif=world["sif"])
     assert boundary.is_valid(), boundary.errors
+
+
+@pytest.mark.django_db
+def test_the_service_refuses_a_passed_value_outside_its_criterion(world):
+    """Every entry point (API, import, form) goes through save_draft: a value the rule
+    judges outside cannot be recorded as passed there either, with the rule's message."""
+    with pytest.raises(ValidationError) as exc:
+        services.save_draft(
+            user=world["tech"], sif=world["sif"], plan=world["plan"], kind="full",
+            performed_at=dt.datetime(2024, 5, 3, 9, 0, tzinfo=dt.UTC),
+            results=[services.ResultInput(
+                component=world["comp"], as_found="pass", as_left="pass",
+                measurements=[services.MeasurementInput("Trip value", 2.41, "found", "bar",
+                                                        world["step"])])])
+    [(key, [msg])] = exc.value.message_dict.items()
+    assert key == "results[0].as_found" and "2.41 bar" in msg

@@ -82,3 +82,40 @@ def test_countersignature_is_still_allowed(signed):
     verifier = f.user("verifier-x", site=s, role=choices.Role.VERIFIER)
     services.verify_record(signed, verifier, f.PASSWORD)
     assert TestRecord.objects.get(pk=signed.pk).status == choices.RecordStatus.VERIFIED
+
+
+def test_attachments_go_through_the_service_with_history(db, settings, tmp_path):
+    from django.core.exceptions import PermissionDenied, ValidationError
+    from django.core.files.uploadedfile import SimpleUploadedFile
+
+    from register import audit
+    from register.models import Attachment, ChainEntry
+
+    settings.MEDIA_ROOT = tmp_path
+    s = f.site()
+    u = f.unit(s)
+    tech = f.user("tech-att", site=s, role=choices.Role.TECHNICIAN)
+    other = f.user("tech-att-2", site=s, role=choices.Role.TECHNICIAN)
+    auditor = f.user("aud-att", site=s, role=choices.Role.AUDITOR)
+    sif = f.sif(u, in_service=dt.date(2022, 1, 1))
+    comp = Component.objects.filter(subsystem__sif=sif).first()
+    draft = services.save_draft(
+        user=tech, sif=sif, kind=choices.TestKind.FULL,
+        performed_at=timezone.now() - dt.timedelta(days=1),
+        results=[services.ResultInput(component=comp, as_found="pass", as_left="pass")])
+    args = dict(file=SimpleUploadedFile("gauge.png", b"\x89PNG\r\n\x1a\n0000"),
+                original_name="gauge.png", content_type="image/png", size_bytes=12,
+                sha256="a" * 64)
+    before = ChainEntry.objects.count()
+    att = services.add_attachment(user=tech, record=draft, **args)
+    assert att.history.get().history_user == tech
+    assert ChainEntry.objects.count() == before + 1  # chained like every other write
+    assert audit.verify_chain().ok
+    with pytest.raises(ValidationError):  # not the performer
+        services.add_attachment(user=other, record=draft, **args)
+    with pytest.raises(PermissionDenied):  # auditors never write
+        services.add_attachment(user=auditor, record=draft, **args)
+    services.sign_record(draft, tech, f.PASSWORD)
+    with pytest.raises(ValidationError):  # a signed record takes no more files
+        services.add_attachment(user=tech, record=draft, **args)
+    assert Attachment.objects.filter(record=draft).count() == 1
