@@ -26,6 +26,22 @@ from . import choices
 
 probability = [MinValueValidator(0.0), MaxValueValidator(1.0)]
 non_negative = [MinValueValidator(0.0)]
+
+
+def _plausible_rate(value):
+    """The one plausibility rule for failure rates (calcs.engine.units.check_rate)."""
+    from calcs.engine.errors import InputError
+    from calcs.engine.units import check_rate
+
+    if value is None:
+        return
+    try:
+        check_rate(value, "rate")
+    except InputError as exc:
+        raise ValidationError(exc.message) from None
+
+
+plausible_rate = [_plausible_rate]
 positive_frequency = [MinValueValidator(0.0)]
 
 
@@ -169,9 +185,9 @@ class DeviceType(models.Model):
 
     name = models.CharField(_("name"), max_length=200, unique=True)
     role = models.CharField(_("used for"), max_length=10, choices=choices.SubsystemRole.choices)
-    lambda_du_per_hour = models.FloatField(_("λDU (per hour)"), validators=non_negative)
+    lambda_du_per_hour = models.FloatField(_("λDU (per hour)"), validators=plausible_rate)
     lambda_dd_per_hour = models.FloatField(_("λDD (per hour)"), default=0.0,
-                                           validators=non_negative)
+                                           validators=plausible_rate)
     lambda_s_per_hour = models.FloatField(_("λS (per hour)"), default=0.0,
                                           validators=non_negative)
     device_class = models.CharField(_("type A/B"), max_length=1,
@@ -459,9 +475,9 @@ class Component(models.Model):
                                     related_name="components")
     in_service_on = models.DateField(_("in service since"))
     lambda_du_per_hour = models.FloatField(_("λDU (per hour)"), null=True, blank=True,
-                                           validators=non_negative)
+                                           validators=plausible_rate)
     lambda_dd_per_hour = models.FloatField(_("λDD (per hour)"), null=True, blank=True,
-                                           validators=non_negative)
+                                           validators=plausible_rate)
     lambda_s_per_hour = models.FloatField(_("λS (per hour)"), null=True, blank=True,
                                           validators=non_negative)
     proof_test_coverage = models.FloatField(

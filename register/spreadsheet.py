@@ -24,6 +24,8 @@ from django.utils import timezone
 from openpyxl import Workbook, load_workbook
 from openpyxl.utils import get_column_letter
 
+from calcs.engine.units import MAX_PLAUSIBLE_RATE_PER_HOUR
+
 from . import choices, followup, services
 from .models import (
     Component,
@@ -52,7 +54,7 @@ FULL_PLAN_NAME = "Full proof test"
 #: A failure rate above this (per hour) is refused as implausible: 1e-4 /h is 100 000 FIT,
 #: a dangerous failure about once a year, far above any device fit for a SIF. A value
 #: such as 500 is almost always a rate in FIT written without its unit.
-MAX_RATE_PER_HOUR = 1e-4
+MAX_RATE_PER_HOUR = MAX_PLAUSIBLE_RATE_PER_HOUR  # the one rule: calcs.engine.units
 FIT = 1e-9
 RATE_FIELDS = {"lambda_du": "lambda_du_per_hour", "lambda_dd": "lambda_dd_per_hour",
                "lambda_s": "lambda_s_per_hour"}

@@ -138,3 +138,16 @@ def test_response_time_must_be_within_process_safety_time(plant):
     sif = plant[2]
     sif.process_safety_time_s, sif.required_response_time_s = 10, 12
     assert "required_response_time_s" in errors_of(sif)
+
+
+def test_an_implausible_failure_rate_is_refused_by_the_model(db):
+    # the same rule as the command and the import (calcs.engine.units.check_rate): 500 is
+    # almost always FIT written without its unit
+    from django.core.exceptions import ValidationError
+
+    dtype = f.device_type(lambda_du_per_hour=500)
+    with pytest.raises(ValidationError) as exc:
+        dtype.full_clean()
+    assert "implausible" in str(exc.value.message_dict["lambda_du_per_hour"])
+    dtype.lambda_du_per_hour = 5e-7
+    dtype.full_clean()
