@@ -21,3 +21,17 @@ def end_of_day(day: dt.date) -> dt.datetime:
     """The last instant of ``day`` (aware, in the project's time zone)."""
     return timezone.make_aware(dt.datetime.combine(day, dt.time.max),
                                timezone.get_default_timezone())
+
+
+#: Clock difference allowed between a device (phone, tablet) and the server.
+CLOCK_SKEW = dt.timedelta(minutes=5)
+
+
+def is_future(value: dt.date | dt.datetime | None) -> bool:
+    """The one rule for "a record cannot be dated in the future": a datetime later than
+    now (plus CLOCK_SKEW), a date later than today."""
+    if value is None:
+        return False
+    if isinstance(value, dt.datetime):
+        return value > timezone.now() + CLOCK_SKEW
+    return value > timezone.localdate()

@@ -16,13 +16,13 @@ from django.core.validators import MaxValueValidator, MinValueValidator
 from django.db import models
 from django.db.models import Q
 from django.urls import reverse
-from django.utils import timezone
 from django.utils.translation import gettext_lazy as _
 from simple_history.models import HistoricalRecords
 
 from calcs.engine.units import HOURS_PER_MONTH, HOURS_PER_YEAR  # noqa: F401 - re-exported
 
 from . import choices
+from .days import is_future
 
 probability = [MinValueValidator(0.0), MaxValueValidator(1.0)]
 non_negative = [MinValueValidator(0.0)]
@@ -525,7 +525,7 @@ class Component(models.Model):
                 raise ValidationError({"partial_test_coverage": _(
                     "A partial test cannot reveal more than the full proof test "
                     "(%(full)g).") % {"full": self.proof_test_coverage}})
-        if self.in_service_on and self.in_service_on > timezone.localdate():
+        if is_future(self.in_service_on):
             raise ValidationError({"in_service_on": _("The in-service date is in the future.")})
 
     # Effective data: own value, else the device type's.
@@ -763,8 +763,7 @@ class TestRecord(models.Model):
 
     def clean(self):
         errors = {}
-        now = timezone.now()
-        if self.performed_at and self.performed_at > now + dt.timedelta(minutes=5):
+        if is_future(self.performed_at):
             errors["performed_at"] = _("The test date is in the future.")
         if self.performed_at and self.sif_id:
             started = _earliest_in_service(self)
@@ -1003,7 +1002,7 @@ class Demand(models.Model):
         return f"{self.sif.tag} demand {self.occurred_at:%Y-%m-%d}"
 
     def clean(self):
-        if self.occurred_at and self.occurred_at > timezone.now() + dt.timedelta(minutes=5):
+        if is_future(self.occurred_at):
             raise ValidationError({"occurred_at": _("The demand date is in the future.")})
         if self.spurious and not self.successful:
             raise ValidationError({"spurious": _("A spurious trip is a trip: mark it "
@@ -1053,7 +1052,7 @@ class Bypass(models.Model):
         errors = {}
         if self.started_at and self.ended_at and self.ended_at < self.started_at:
             errors["ended_at"] = _("The bypass cannot end before it starts.")
-        if self.started_at and self.started_at > timezone.now() + dt.timedelta(minutes=5):
+        if is_future(self.started_at):
             errors["started_at"] = _("The bypass start is in the future.")
         if self.component_id and self.sif_id and self.component.subsystem.sif_id != self.sif_id:
             errors["component"] = _("The component belongs to another SIF.")
