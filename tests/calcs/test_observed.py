@@ -51,7 +51,7 @@ def test_mean_fraction_matches_conditional_mean_onset(x):
     # Mean fraction of the interval the channel was failed = 1 - E[tau | tau <= T]/T with
     # E[tau | tau <= T] = 1/lam - T e^{-x}/(1 - e^{-x}) (exponential distribution truncated
     # at T; e.g. any reliability textbook's truncated exponential, such as Rausand &
-    # Hoyland, System Reliability Theory, 2nd ed., ch. 2): 1/(1 - e^{-x}) - 1/x.
+    # Hoyland, System Reliability Theory, 2nd ed., ch. 2, from memory): 1/(1 - e^{-x}) - 1/x.
     T = 8760.0
     lam = x / T
     ch = Channel(lambda_du=lam, in_service=T0,
