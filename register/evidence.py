@@ -30,6 +30,7 @@ from calcs.engine.errors import EngineError
 
 from . import choices, presenters
 from .audit import verify_chain
+from .changes import field_changes, row_of
 from .days import end_of_day, start_of_day
 from .models import (
     Attachment,
@@ -396,25 +397,18 @@ def _changes(per_sif, loaded, ids, sub_by_id, t0, t1):
         (ConditionalModifier, Q(scenario_id__in=list(sc_sifs)),
          lambda r: sc_sifs.get(r["scenario_id"], [])),
     ]
-    skip = {"history_id", "history_date", "history_change_reason", "history_type",
-            "history_user_id"}
     for model, cond, sifs_of in sources:
         hist = model.history.model
         rows = hist.objects.filter(cond, history_date__lte=t1).select_related(
             "history_user").order_by("id", "history_date", "history_id")
         previous: dict[int, dict] = {}
         for h in rows.iterator(chunk_size=2000):
-            row = {f.attname: getattr(h, f.attname) for f in hist._meta.concrete_fields}
+            row = row_of(h)
             before = previous.get(row["id"])
             previous[row["id"]] = row
             if not (h.history_change_reason and h.history_date >= t0):
                 continue
-            if before is None:
-                what = "created"
-            else:
-                diffs = [f"{k}: {_g(before[k], 'g')} → {_g(row[k], 'g')}"
-                         for k in row if k not in skip and before.get(k) != row[k]]
-                what = "; ".join(diffs) or "no field change"
+            what = "; ".join(field_changes(before, row)) or "no field change"
             for sif_id in sifs_of(row):
                 if sif_id in per_sif:
                     per_sif[sif_id]["changes"].append({

@@ -21,6 +21,7 @@ from calcs.engine.sil import sil_band
 from calcs.engine.units import HOURS_PER_MONTH
 from calcs.models import Assessment
 
+from . import changes as changes_mod
 from . import charts, choices, presenters
 from .filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter, not_decommissioned
 from .models import (
@@ -325,17 +326,10 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
                                                                     "history_id"))
         previous = {}
         for rec in records:
+            row = changes_mod.row_of(rec)
             prev = previous.get(rec.id)
-            changes = []
-            if prev is not None:
-                try:
-                    delta = rec.diff_against(prev)
-                    changes = [f"{c.field}: {c.old} → {c.new}"
-                               if not isinstance(c.new, list) else f"{c.field} changed"
-                               for c in delta.changes]
-                except Exception:
-                    changes = []
-            previous[rec.id] = rec
+            changes = changes_mod.field_changes(prev, row) if prev is not None else []
+            previous[rec.id] = row
             name = getattr(rec, "tag", None) or getattr(rec, "name", "")
             entries.append({"when": rec.history_date, "what": f"{label} {name}",
                             "kind": rec.get_history_type_display(),

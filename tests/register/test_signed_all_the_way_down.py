@@ -119,3 +119,23 @@ def test_attachments_go_through_the_service_with_history(db, settings, tmp_path)
     with pytest.raises(ValidationError):  # a signed record takes no more files
         services.add_attachment(user=tech, record=draft, **args)
     assert Attachment.objects.filter(record=draft).count() == 1
+
+
+def test_a_change_reads_the_same_on_the_page_and_in_the_pack(db):
+    from register.changes import field_changes, row_of
+    from register.models import Component
+    from register.views import _history
+
+    s = f.site()
+    lead = f.user("lead-diff", site=s, role=choices.Role.LEAD)
+    sif = f.sif(f.unit(s), in_service=dt.date(2022, 1, 1))
+    plan = sif.plans.first()
+    services.update_design(plan, lead, reason="Longer run", reference="CR-9",
+                           changes={"interval_months": 24})
+    before, after = (row_of(h) for h in plan.history.order_by("history_id"))
+    pack_text = "; ".join(field_changes(before, after))
+    subs = list(sif.subsystems.values_list("pk", flat=True))
+    comps = list(Component.objects.filter(subsystem__sif=sif).values_list("pk", flat=True))
+    page = next(e for e in _history(sif, subs, comps) if e["reason"].startswith("[CR-9]"))
+    assert "; ".join(page["changes"]) == pack_text
+    assert f"interval_months: {before['interval_months']} → 24" in pack_text
