@@ -248,6 +248,7 @@ class RateTable:
     basis: str
     by_type: dict[int, float]
     as_of: dt.date | None = None
+    _devices: dict = field(default_factory=dict, compare=False, repr=False)
 
     def lambda_du(self, comp: Component, events: list | None = None) -> float:
         if self.basis == choices.RateBasis.FIELD:
@@ -262,7 +263,14 @@ class RateTable:
         return rate if rate and rate > 0 else comp.lambda_du
 
     def device(self, comp: Component, events: list) -> eng_field.DeviceRate:
+        """The component's own rate (computed once per component, history and figures)."""
         failures = sum(1 for e in events if e.failed)
+        key = (comp.pk, failures)
+        if key not in self._devices:
+            self._devices[key] = self._device(comp, failures)
+        return self._devices[key]
+
+    def _device(self, comp: Component, failures: int) -> eng_field.DeviceRate:
         hours = 0.0
         if self.as_of is not None and comp.in_service_on:
             hours = max(0.0, (self.as_of - comp.in_service_on).days * 24.0)

@@ -93,10 +93,6 @@ def _iso(value) -> str | None:
     return value.isoformat()
 
 
-def _name(user) -> str:
-    return person_name(user)
-
-
 def _g(value, fmt=".2e") -> str:
     if value is None or value == "":
         return "-"
@@ -246,15 +242,15 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
         files[att.record_id].append({
             "name": att.original_name, "content_type": att.content_type,
             "size_bytes": att.size_bytes, "sha256": att.sha256,
-            "uploaded_by": _name(att.uploaded_by), "uploaded_at": _iso(att.uploaded_at)})
+            "uploaded_by": person_name(att.uploaded_by), "uploaded_at": _iso(att.uploaded_at)})
     for rec in records:
         entry = per_sif[rec.sif_id]
         res = results.get(rec.pk, [])
         superseded = getattr(rec, "superseded_by", None)
         entry["tests"].append({
             "id": rec.pk, "performed_at": _iso(rec.performed_at), "kind": rec.get_kind_display(),
-            "performer": rec.performed_by_name or _name(rec.performed_by),
-            "verifier": rec.verified_by_name or _name(rec.verified_by),
+            "performer": rec.performed_by_name or person_name(rec.performed_by),
+            "verifier": rec.verified_by_name or person_name(rec.verified_by),
             "status": rec.get_status_display(), "signed_at": _iso(rec.signed_at),
             "verified_at": _iso(rec.verified_at),
             "supersedes": rec.supersedes_id, "superseded_by": superseded.pk if superseded else None,
@@ -289,7 +285,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
         entry["demands"].append({
             "occurred_at": _iso(dm.occurred_at), "successful": dm.successful,
             "spurious": dm.spurious, "description": dm.description,
-            "failed_components": failed, "recorded_by": _name(dm.recorded_by)})
+            "failed_components": failed, "recorded_by": person_name(dm.recorded_by)})
         for tag in failed:
             entry["failures"].append({
                 "found_on": _iso(dm.occurred_at), "source": "real demand", "component": tag,
@@ -309,7 +305,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
             "over_authorised": hours > b.authorised_hours,
             "component": comp_by_id[b.component_id].tag if b.component_id in comp_by_id
             else ("whole SIF" if b.component_id is None else str(b.component_id)),
-            "reason": b.reason, "authorised_by": _name(b.authorised_by),
+            "reason": b.reason, "authorised_by": person_name(b.authorised_by),
             "compensating_measures": b.compensating_measures,
             "measures_effective": b.measures_effective})
 
@@ -321,9 +317,9 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
             "plan", "requested_by", "decided_by").order_by("requested_at"):
         per_sif[plan_sif[df.plan_id]]["deferrals"].append({
             "plan": df.plan.name, "due_on": _iso(df.due_on), "proposed_on": _iso(df.proposed_on),
-            "reason": df.reason, "requested_by": _name(df.requested_by),
+            "reason": df.reason, "requested_by": person_name(df.requested_by),
             "requested_at": _iso(df.requested_at), "status": df.get_status_display(),
-            "decided_by": _name(df.decided_by), "decided_at": _iso(df.decided_at),
+            "decided_by": person_name(df.decided_by), "decided_at": _iso(df.decided_at),
             "decision_note": df.decision_note, "projected_pfd_avg": df.projected_pfd_avg})
     if progress:
         progress(18, "Tests, demands, bypasses and deferrals loaded")
@@ -416,7 +412,7 @@ def _changes(per_sif, loaded, ids, sub_by_id, t0, t1):
                         "record": f"{model._meta.verbose_name} #{row['id']}",
                         "action": {"+": "created", "~": "changed", "-": "deleted"}[
                             h.history_type],
-                        "by": _name(h.history_user), "reason": h.history_change_reason,
+                        "by": person_name(h.history_user), "reason": h.history_change_reason,
                         "what_changed": what, "history_id": h.history_id})
     for entry in per_sif.values():
         entry["changes"].sort(key=lambda c: c["at"])
@@ -589,7 +585,7 @@ def cover_facts(pack: EvidencePack, chain) -> dict:
         "pack_id": pack.pk, "site": pack.site.name, "site_code": pack.site.code,
         "scope": pack.scope, "scope_label": pack.scope_label,
         "period_start": pack.period_start.isoformat(), "period_end": pack.period_end.isoformat(),
-        "generated_by": _name(pack.requested_by),
+        "generated_by": person_name(pack.requested_by),
         "generated_at": _iso(pack.started_at or timezone.now()),
         "chain": {"head_seq": chain.head_seq, "head_hash": chain.head_hash,
                   "verified_ok": chain.ok, "entries": chain.entries,

@@ -839,12 +839,16 @@ class PartOfRecord(models.Model):
         abstract = True
 
     def _record_signed(self) -> bool:
-        record_id = (ComponentResult.objects.filter(pk=self.result_id).values_list(
-            "record_id", flat=True).first() if self.record_id_path == "result__record_id"
-            else self.record_id)
-        if record_id is None:
+        """One query: is the record this row belongs to signed?"""
+        if self.record_id_path == "result__record_id":
+            if self.result_id is None:
+                return False
+            lookup = {"results__pk": self.result_id}
+        elif self.record_id is None:
             return False
-        return TestRecord.objects.filter(pk=record_id).exclude(
+        else:
+            lookup = {"pk": self.record_id}
+        return TestRecord.objects.filter(**lookup).exclude(
             status=choices.RecordStatus.DRAFT).exists()
 
     def save(self, *args, **kwargs):

@@ -45,10 +45,8 @@ RIGHTS: dict[str, frozenset[str]] = {
 }
 
 
-def roles_at(user, site_id: int) -> set[str]:
-    """The roles ``user`` holds at the site (cached on the user object per request)."""
-    if user is None or not user.is_authenticated:
-        return set()
+def _roles_by_site(user) -> dict[int, set[str]]:
+    """Site id -> the roles ``user`` holds there (one query, cached on the user object)."""
     cache = getattr(user, "_ledger_roles", None)
     if cache is None:
         from .models import Membership
@@ -57,7 +55,14 @@ def roles_at(user, site_id: int) -> set[str]:
         for site, role in Membership.objects.filter(user=user).values_list("site_id", "role"):
             cache.setdefault(site, set()).add(role)
         user._ledger_roles = cache
-    return cache.get(site_id, set())
+    return cache
+
+
+def roles_at(user, site_id: int) -> set[str]:
+    """The roles ``user`` holds at the site."""
+    if user is None or not user.is_authenticated:
+        return set()
+    return _roles_by_site(user).get(site_id, set())
 
 
 def can(user, action: str, site_id: int) -> bool:
@@ -85,9 +90,8 @@ def sites_with(user, action: str) -> set[int] | None:
         return set()
     if user.is_superuser:
         return None
-    roles_at(user, -1)  # fills the per-request cache
     allowed = RIGHTS[action]
-    return {site for site, roles in user._ledger_roles.items() if roles & allowed}
+    return {site for site, roles in _roles_by_site(user).items() if roles & allowed}
 
 
 def can_somewhere(user, action: str) -> bool:

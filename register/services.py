@@ -42,9 +42,6 @@ def _attribute(instance, user, reason: str = ""):
     return instance
 
 
-_full_name = person_name
-
-
 # ---------------------------------------------------------------------------------------
 # Test records
 # ---------------------------------------------------------------------------------------
@@ -179,7 +176,7 @@ def sign_record(record: TestRecord, user, password: str | None, *, check_passwor
     record.full_clean()
     record.status = choices.RecordStatus.SIGNED
     record.signed_at = signed_at or timezone.now()
-    record.performed_by_name = _full_name(user)
+    record.performed_by_name = person_name(user)
     _attribute(record, user, "signed by performer").save()
     followup.after_test_change(record.sif_id)
     return record
@@ -201,7 +198,7 @@ def verify_record(record: TestRecord, user, password: str | None, *, check_passw
         raise ValidationError({"password": "The password is not correct; nothing was "
                                            "countersigned."})
     record.verified_by = user
-    record.verified_by_name = _full_name(user)
+    record.verified_by_name = person_name(user)
     record.verified_at = verified_at or timezone.now()
     record.status = choices.RecordStatus.VERIFIED
     _attribute(record, user, "countersigned by verifier").save()

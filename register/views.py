@@ -333,14 +333,10 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
             name = getattr(rec, "tag", None) or getattr(rec, "name", "")
             entries.append({"when": rec.history_date, "what": f"{label} {name}",
                             "kind": rec.get_history_type_display(),
-                            "who": _name(rec.history_user), "reason": rec.history_change_reason or "",
+                            "who": person_name(rec.history_user, "—"), "reason": rec.history_change_reason or "",
                             "changes": changes})
     entries.sort(key=lambda e: e["when"], reverse=True)
     return entries[:limit]
-
-
-def _name(user) -> str:
-    return person_name(user, "—")
 
 
 def _fmt_hours(hours: float) -> str:

@@ -108,10 +108,9 @@ from scipy.optimize import brentq as _brentq
 from . import markov as _markov
 from . import sil as _sil
 from .errors import InputError
-from .units import check_rate
+from .units import HOURS_PER_YEAR, check_rate
 from .voting import Voting, parse_voting
 
-HOURS_PER_YEAR = 8760.0
 METHOD_IEC = "iec61508-6"
 METHOD_ISA = "isa-tr84.00.02"
 METHODS = (METHOD_IEC, METHOD_ISA)

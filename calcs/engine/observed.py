@@ -190,7 +190,9 @@ def _group_q(n: int, m: int, eps: list[_Ep], t: np.ndarray) -> np.ndarray:
     for ep in eps:
         pre = _q(t, ep.a, ep.b, ep.lam)
         if len(ep.channels) == 1:
-            q_ind[ep.channels[0]] += pre
+            # a channel's episodes do not overlap (each starts after the last restoration);
+            # a finding during an earlier repair must not count the channel twice
+            np.maximum(q_ind[ep.channels[0]], pre, out=q_ind[ep.channels[0]])
         else:
             blocks.append((len(ep.channels), pre))
         for ci in ep.channels:
