@@ -222,7 +222,7 @@ def main():
         from django.core.management import call_command
 
         call_command("migrate", verbosity=0)
-        from register import followup
+        from register.schedule import followup
 
         with followup.suspended():
             tokens, targets = build_plant()

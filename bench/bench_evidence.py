@@ -48,7 +48,7 @@ def main() -> int:
     from django.utils import timezone
 
     from calcs.adapter import recompute_many
-    from register import evidence
+    from register.audit import evidence
     from register.models import EvidencePack, SafetyFunction, Site
 
     print(f"database: {connection.vendor} {connection.settings_dict['NAME']}; data: {var}")

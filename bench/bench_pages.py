@@ -30,7 +30,7 @@ def build(n_sifs: int):
     from django.utils import timezone
 
     from calcs import adapter
-    from register import choices, followup, services
+    from register import choices, services
     from register.models import (
         Component,
         DeviceType,
@@ -41,7 +41,8 @@ def build(n_sifs: int):
         Subsystem,
         TestPlan,
     )
-    from register.scheduling import refresh_plans
+    from register.schedule import followup
+    from register.schedule.due import refresh_plans
 
     today = timezone.localdate()
     site = Site.objects.create(code="bench", name="Bench plant (invented)")

@@ -30,7 +30,7 @@ def main():
 
     from calcs.adapter import recompute_many
     from register.models import SafetyFunction, Site
-    from register.scan import scan
+    from register.schedule.scan import scan
 
     call_command("migrate", verbosity=0)
     code = f"scale{args.sifs}"
@@ -60,8 +60,9 @@ def main():
     from django.contrib.auth import get_user_model
     from django.utils import timezone
 
-    from register import choices, followup, services
+    from register import choices, services
     from register.models import Component
+    from register.schedule import followup
 
     tech = get_user_model().objects.get(username=f"{code}-tech")
     sif = SafetyFunction.objects.get(pk=one[0]["pk"])

@@ -9,7 +9,7 @@ from register.models import SafetyFunction
 @shared_task(name="calcs.recompute_sif", acks_late=True)
 def recompute_sif(sif_id: int, trigger: str = "record changed") -> int:
     """Recompute one SIF after a record changed (enqueued after commit)."""
-    from .adapter import recompute_many
+    from calcs.adapter import recompute_many
 
     return len(recompute_many(SafetyFunction.objects.filter(pk=sif_id), trigger=trigger))
 
@@ -17,7 +17,7 @@ def recompute_sif(sif_id: int, trigger: str = "record changed") -> int:
 @shared_task(name="calcs.recompute_all", acks_late=True)
 def recompute_all() -> int:
     """Nightly: recompute every SIF in service."""
-    from .adapter import recompute_many
+    from calcs.adapter import recompute_many
 
     qs = SafetyFunction.objects.filter(life_stage=choices.LifeStage.IN_SERVICE)
     return len(recompute_many(qs, trigger="nightly"))

@@ -9,10 +9,24 @@ read-only with their change history.
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
-from . import models as m
+from register import models as m
+from register.permissions import Action, restrict
 
 
-class HistoryAdmin(SimpleHistoryAdmin):
+class SiteScopedAdmin:
+    """A staff member who is not a superuser sees only the rows of the sites where they
+    hold a role (the one gate, ``register.permissions.restrict``)."""
+
+    admin_action = Action.VIEW
+
+    def get_queryset(self, request):
+        qs = super().get_queryset(request)
+        if hasattr(qs.model, "site_path"):
+            return restrict(qs, request.user, self.admin_action)
+        return qs
+
+
+class HistoryAdmin(SiteScopedAdmin, SimpleHistoryAdmin):
     """Every register model keeps a change history, viewable from its admin page."""
 
 
@@ -199,6 +213,26 @@ class DeferralAdmin(ReadOnlyAdmin):
 
 
 @admin.register(m.Notification)
-class NotificationAdmin(admin.ModelAdmin):
+class NotificationAdmin(SiteScopedAdmin, admin.ModelAdmin):
     list_display = ("created_at", "recipient", "kind", "message", "read_at")
     list_filter = ("kind", "site")
+
+
+
+
+@admin.register(m.ChainEntry)
+class ChainEntryAdmin(ReadOnlyMixin, admin.ModelAdmin):
+    """The whole chain, for superusers; everyone else reads their sites' part of it on the
+    chain page (``register.audit.chain.entries_for``)."""
+
+    def has_view_permission(self, request, obj=None):
+        return request.user.is_superuser
+
+    def has_module_permission(self, request):
+        return request.user.is_superuser
+
+    list_display = ("seq", "created_at", "model_label", "object_id", "action", "actor",
+                    "reason", "entry_hash")
+    list_filter = ("model_label", "action")
+    search_fields = ("object_id", "actor", "reason", "entry_hash")
+

@@ -7,4 +7,8 @@ class RegisterConfig(AppConfig):
     verbose_name = "SIF register"
 
     def ready(self):
-        from . import signals  # noqa: F401
+        from simple_history.signals import post_create_historical_record
+
+        from register.audit.chain import on_history
+
+        post_create_historical_record.connect(on_history, dispatch_uid="register.audit.chain")

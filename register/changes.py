@@ -34,3 +34,15 @@ def field_changes(before: dict | None, after: dict) -> list[str]:
         label = name[:-3] if name.endswith("_id") else name
         out.append(f"{label}: {_shown(before.get(name))} → {_shown(new)}")
     return out
+
+
+def attribute(instance, user, reason: str = "", at=None):
+    """Make the history entry of the next save of ``instance`` name the actor and the reason,
+    and, when ``at`` is given, the moment the change happened (django-simple-history reads
+    ``_history_user``, ``_change_reason`` and ``_history_date``)."""
+    instance._history_user = user
+    if reason:
+        instance._change_reason = reason[:100]
+    if at is not None:
+        instance._history_date = at
+    return instance

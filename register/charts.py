@@ -1,4 +1,5 @@
-"""Charts of one SIF, drawn with matplotlib (Agg) as SVG.
+"""Every chart of the project, for the SIF page (SVG) and the evidence pack (PNG at print
+resolution): one drawing per chart, one scaling, one set of SIL bands.
 
 Both charts must read in black and white and on paper: the SIL bands differ by hatch
 pattern and carry their name as text, the target is a dashed line with a label, and
@@ -16,15 +17,18 @@ import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.dates as mdates
-import matplotlib.pyplot as plt
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
-from calcs.engine.sil import sil_band
+from register.calculations import calculations
 
 #: Hatch per SIL band: distinct patterns so bands differ without colour.
 BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
 BAND_GREY = {1: "#f2f2f2", 2: "#e4e4e4", 3: "#d6d6d6", 4: "#c8c8c8"}
 WIDTH_IN, HEIGHT_IN = 9.0, 3.6
+#: The pack's charts: sized for an A4 page, rasterised at print resolution.
+PACK_WIDTH_IN, PACK_HEIGHT_IN, PACK_DPI = 7.2, 2.8, 200
 #: Observed episodes: vertical bands, hatched unlike any SIL band.
 EPISODE_HATCH = "||"
 EPISODE_FACE = "#f6d8d8"
@@ -33,9 +37,12 @@ EPISODE_LABEL = "failed channel: possible onset to restoration"
 FOUND_LABEL = "failure found"
 
 
-def _figure(title: str):
-    fig, ax = plt.subplots(figsize=(WIDTH_IN, HEIGHT_IN), dpi=100)
-    ax.set_title(title, fontsize=11, loc="left")
+def _figure(title: str, size=(WIDTH_IN, HEIGHT_IN), dpi=100, fontsize=11):
+    """A figure of its own (no pyplot state, so safe in threads) with one titled axis."""
+    fig = Figure(figsize=size, dpi=dpi)
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(1, 1, 1)
+    ax.set_title(title, fontsize=fontsize, loc="left")
     ax.grid(True, which="major", color="#999999", linewidth=0.4, linestyle=":")
     return fig, ax
 
@@ -43,7 +50,7 @@ def _figure(title: str):
 def _shade_bands(ax, low: float, high: float, mode: str = "low"):
     """Shade the SIL bands that fall inside the visible range, labelled at the right."""
     for sil in (1, 2, 3, 4):
-        lo, hi = sil_band(sil, mode)
+        lo, hi = calculations().sil_band(sil, mode)
         if hi <= low or lo >= high:
             continue
         ax.axhspan(max(lo, low), min(hi, high), facecolor=BAND_GREY[sil],
@@ -111,32 +118,55 @@ def _log_axis(ax, low: float, high: float):
     ax.yaxis.set_minor_formatter(NullFormatter())
 
 
-def _svg(fig) -> bytes:
-    fig.tight_layout()
+def _save(fig, fmt: str) -> bytes:
+    fig.tight_layout(pad=0.5)
     buf = io.BytesIO()
-    fig.savefig(buf, format="svg")
-    plt.close(fig)
+    fig.savefig(buf, format=fmt)
     return buf.getvalue()
 
 
-def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str,
-              episodes=None) -> bytes:
+def _svg(fig) -> bytes:
+    return _save(fig, "svg")
+
+
+def _draw_pfd(ax, times, values, target, start=None, end=None, episodes=None):
     """PFD(t): sawtooth from the recorded tests, target line, SIL bands hatched, and the
-    observed episodes (see ``shade_episodes``) within the plotted period."""
-    fig, ax = _figure(f"{tag}: probability of failure on demand over time")
-    values = list(values)
+    observed episodes (see ``shade_episodes``) within ``start``..``end`` (default: the
+    plotted times)."""
+    values = [max(float(v), 1e-9) for v in values]
     low, high = _limits(values, target)
     _shade_bands(ax, low, high)
     if times:
+        start = start or min(times)
+        end = end or max(times)
         ax.plot(times, values, color="black", linewidth=1.3, label="PFD(t)", zorder=4)
-        if shade_episodes(ax, episodes, min(times), max(times)) and len(times) > 1:
-            ax.set_xlim(min(times), max(times))
+        shade_episodes(ax, episodes, start, end)
+        if end > start:
+            ax.set_xlim(start, end)
     _target(ax, target)
     _log_axis(ax, low, high)
     ax.set_ylabel("PFD(t)")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m"))
     ax.legend(loc="lower right", fontsize=8, framealpha=1)
+
+
+def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str,
+              episodes=None) -> bytes:
+    """The SIF page's PFD(t) chart (SVG)."""
+    fig, ax = _figure(f"{tag}: probability of failure on demand over time")
+    _draw_pfd(ax, times, list(values), target, episodes=episodes)
     return _svg(fig)
+
+
+def pack_pfd_chart(tag: str, times, values, target: float | None, start: dt.datetime,
+                   end: dt.datetime, episodes=()) -> bytes:
+    """The evidence pack's PFD(t) chart over the pack's period: the page's drawing (same
+    scale, SIL bands, target and episodes) as a PNG at ``PACK_DPI`` for the PDF."""
+    fig, ax = _figure(f"{tag}: PFD(t) over the period", size=(PACK_WIDTH_IN, PACK_HEIGHT_IN),
+                      dpi=PACK_DPI, fontsize=9)
+    ax.tick_params(labelsize=7)
+    _draw_pfd(ax, times, list(values), target, start, end, episodes)
+    return _save(fig, "png")
 
 
 def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],

@@ -18,9 +18,9 @@ from django.contrib.auth import get_user_model
 from django.db import transaction
 from django.utils import timezone
 
-from . import choices, followup, services
-from .models import (
-    HOURS_PER_MONTH,
+from register import changes, choices, services
+from register.calculations import calculations
+from register.models import (
     Component,
     ConditionalModifier,
     DeviceType,
@@ -35,10 +35,14 @@ from .models import (
     TestPlan,
     TestStep,
 )
-from .scheduling import add_months, refresh_plans
+from register.schedule import followup
+from register.schedule import services as schedule_services
+from register.schedule.due import add_months, refresh_plans
 
 DEMO_FILE = Path(settings.BASE_DIR) / "fixtures" / "demo_plant.json"
 DEMO_PASSWORD = "demo-pass-2026"
+#: The change request under which the demo plant's design rows are recorded.
+DEMO_REFERENCE = "CR-DEMO-0001"
 TAG_PREFIX = {"pt": "PT", "lt": "LT", "tt": "TT", "ft": "FT", "ls": "LSLL", "plc": "SLS",
               "xv": "XV", "bdv": "BDV", "mcc": "HS"}
 # Required PFDavg placed inside each SIL band (for the LOPA arithmetic of the demo).
@@ -61,9 +65,8 @@ def load(today: dt.date, *, path: Path = DEMO_FILE, stdout=None) -> Site:
         builder = _Builder(spec, today)
         site = builder.build()
     refresh_plans(TestPlan.objects.filter(sif__unit__site=site), today)
-    from calcs.adapter import recompute_many
 
-    recompute_many(SafetyFunction.objects.filter(unit__site=site), trigger="demo load")
+    calculations().recompute_many(SafetyFunction.objects.filter(unit__site=site), trigger="demo load")
     return site
 
 
@@ -79,11 +82,15 @@ class _Builder:
     # -- people, site, library ----------------------------------------------------------
     def build(self) -> Site:
         s = self.spec["site"]
-        self.site = Site.objects.create(
+        # The plant's design was recorded before its oldest SIF went into service (at most
+        # 12 years ago); the history of every design row is dated then.
+        self.designed_at = _at(self.today - dt.timedelta(days=12 * 365 + 90))
+        self.site = changes.attribute(Site(
             code=s["code"], name=s["name"], due_soon_days=s["due_soon_days"],
             escalate_share=s["escalate_share"], escalate_days=s["escalate_days"],
             second_escalation_days=s["second_escalation_days"],
-        )
+        ), None, "demo plant", at=self.designed_at)
+        self.site.save()
         User = get_user_model()
         self.people = {}
         for person in self.spec["people"]:
@@ -97,8 +104,12 @@ class _Builder:
             for role in person["roles"]:
                 Membership.objects.create(user=user, site=self.site, role=role)
             self.people[person["username"]] = user
-        self.units = {u["code"]: PlantUnit.objects.create(site=self.site, **u)
-                      for u in self.spec["units"]}
+        self.units = {}
+        for u in self.spec["units"]:
+            unit = changes.attribute(PlantUnit(site=self.site, **u), None, "demo plant",
+                                     at=self.designed_at)
+            unit.save()
+            self.units[u["code"]] = unit
         self.types = {}
         for t in self.spec["device_types"]:
             self.types[t["key"]], _ = DeviceType.objects.get_or_create(
@@ -113,6 +124,12 @@ class _Builder:
         self.build_open_items()
         return self.site
 
+    def design(self, instance, at: dt.datetime | None = None):
+        """Add a design row through the one write path, by the site's lead, dated (in its
+        history) when the plant's design was recorded: before the SIF went into service."""
+        return services.create_design(instance, self.people["lead"], reason="demo plant",
+                                      reference=DEMO_REFERENCE, at=at or self.designed_at)
+
     # -- one SIF -------------------------------------------------------------------------
     def build_sif(self, index: int, entry: dict):
         rng = random.Random(entry["tag"])
@@ -125,7 +142,7 @@ class _Builder:
         years = rng.uniform(8.0, 12.0)
         in_service = self.today - dt.timedelta(days=int(years * 365))
         setpoint, sp_unit = tpl["setpoint"]
-        sif = SafetyFunction.objects.create(
+        sif = self.design(SafetyFunction(
             unit=unit, tag=entry["tag"], name=tpl["name"].format(eq=eq),
             safe_state=tpl["safe_state"], demand_mode=choices.DemandMode.LOW,
             target_pfd_avg=required, target_sil=sil,
@@ -134,7 +151,7 @@ class _Builder:
             trip_setpoint=setpoint, setpoint_unit=sp_unit,
             life_stage=choices.LifeStage.IN_SERVICE, in_service_on=in_service,
             owner=self.people["lead"],
-        )
+        ))
         sif.scenarios.add(scenario)
         sensor_voting = entry.get("sensor_voting", "1oo1")
         final_voting = entry.get("final_voting", "1oo1")
@@ -148,30 +165,30 @@ class _Builder:
                                       beta=0.1 if final_voting != "1oo1" else 0.0,
                                       partial=0.6 if tpl["pst"] else 0.0)
         interval = FULL_INTERVAL_MONTHS[sil]
-        full_plan = TestPlan.objects.create(
+        full_plan = self.design(TestPlan(
             sif=sif, name="Full proof test", kind=choices.TestKind.FULL,
             interval_months=interval, coverage=0.95 if tpl["final"] == "xv" else 0.9,
             demand_counts_as_test=tpl["final"] == "mcc", assignee=self.people["tech"],
-        )
-        TestStep.objects.create(
+        ))
+        self.design(TestStep(
             plan=full_plan, position=1,
             instruction="Apply a test signal to each transmitter; record the value at which "
                         "the trip is initiated.",
             measured_quantity="Trip value", unit=sp_unit,
             criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=setpoint,
             tolerance=round(abs(setpoint) * 0.02, 3),
-        )
-        TestStep.objects.create(
+        ))
+        self.design(TestStep(
             plan=full_plan, position=2,
             instruction="Confirm the logic solver sets its outputs and the trip alarm shows "
                         "in the control room.",
-        )
-        TestStep.objects.create(
+        ))
+        self.design(TestStep(
             plan=full_plan, position=3,
             instruction="Trip the final elements; time the stroke from trip to safe state.",
             measured_quantity="Closing time", unit="s",
             criterion=choices.CriterionKind.AT_MOST, limit=float(tpl["closing_s"]),
-        )
+        ))
         components = sensors + logic + finals
         pattern = DUE_PATTERN[index % len(DUE_PATTERN)]
         if entry["tag"] == "U10-SIF-101":
@@ -185,16 +202,16 @@ class _Builder:
             self.record(sif, full_plan, choices.TestKind.FULL, day, components, rng, setpoint,
                         tpl, fail_rate=1.0, force_fail=finals[0] if hot and recent else None)
         if tpl["pst"]:
-            pst_plan = TestPlan.objects.create(
+            pst_plan = self.design(TestPlan(
                 sif=sif, name="Partial stroke test", kind=choices.TestKind.PARTIAL,
                 interval_months=6, coverage=0.6, assignee=self.people["tech2"],
-            )
+            ))
             pst_plan.components.set(finals)
-            TestStep.objects.create(
+            self.design(TestStep(
                 plan=pst_plan, position=1,
                 instruction="Run the partial stroke from the valve controller; confirm the "
                             "valve moves and returns.",
-            )
+            ))
             self.partial_tests(sif, pst_plan, finals, in_service, dates, rng)
 
     def build_scenario(self, unit, entry, tpl, rng):
@@ -206,40 +223,39 @@ class _Builder:
         other = sum(f for _, f, _ in sc["causes"][1:])
         needed = sc["tolerable"] / (required * layers * mods)
         first = max(needed - other, needed * 0.2)
-        scenario = HazardScenario.objects.create(
+        scenario = self.design(HazardScenario(
             site=self.site, unit=unit, reference=f"HZ-{entry['tag'][-3:]}-{unit.code}",
             title=sc["title"].format(eq=eq), consequence=sc["consequence"],
             category=sc["category"], tolerable_frequency_per_year=sc["tolerable"],
-        )
+        ))
         for n, (desc, freq, basis) in enumerate(sc["causes"]):
-            InitiatingCause.objects.create(scenario=scenario, description=desc,
+            self.design(InitiatingCause(scenario=scenario, description=desc,
                                            frequency_per_year=round(first if n == 0 else freq, 6),
-                                           basis=basis)
+                                           basis=basis))
         for desc, pfd, basis in sc["layers"]:
-            ProtectionLayer.objects.create(scenario=scenario, description=desc, pfd=pfd,
-                                           basis=basis)
+            self.design(ProtectionLayer(scenario=scenario, description=desc, pfd=pfd,
+                                           basis=basis))
         for kind, p, basis in sc["modifiers"]:
-            ConditionalModifier.objects.create(scenario=scenario, kind=kind, probability=p,
-                                               basis=basis)
-        from calcs.adapter import lopa_for_scenarios
+            self.design(ConditionalModifier(scenario=scenario, kind=kind, probability=p,
+                                               basis=basis))
 
-        result = lopa_for_scenarios([scenario])
+        result = calculations().lopa_for_scenarios([scenario])
         return scenario, float(f"{result.required_pfd_avg:.3g}")
 
     def build_subsystem(self, sif, role, name, voting, type_key, number, in_service, *,
                         beta, partial=0.0):
         n = int(voting.split("oo")[1].rstrip("D"))
-        sub = Subsystem.objects.create(sif=sif, role=role, name=name, voting=voting,
+        sub = self.design(Subsystem(sif=sif, role=role, name=name, voting=voting,
                                        beta=beta, beta_d=beta / 2, mttr_hours=8.0,
                                        mrt_hours=8.0,
-                                       position={"sensing": 1, "logic": 2, "final": 3}[role])
+                                       position={"sensing": 1, "logic": 2, "final": 3}[role]))
         comps = []
         for i in range(n):
             suffix = "ABC"[i] if n > 1 else ""
             tag = f"{TAG_PREFIX[type_key]}-{number}{suffix}"
             if type_key == "plc":
                 tag = f"SLS-{sif.unit.code}-{number}"
-            comps.append(Component.objects.create(
+            comps.append(self.design(Component(
                 subsystem=sub, tag=tag, device_type=self.types[type_key],
                 in_service_on=in_service,
                 proof_test_coverage=0.95 if role != choices.SubsystemRole.FINAL else 0.98,
@@ -247,7 +263,7 @@ class _Builder:
                 partial_test_coverage=partial,
                 data_basis=choices.DataBasis.GENERIC if type_key != "plc"
                 else choices.DataBasis.CERTIFICATE,
-            ))
+            )))
         return comps
 
     def full_test_dates(self, rng, in_service, interval, pattern) -> list[dt.date]:
@@ -277,7 +293,7 @@ class _Builder:
             # A test finds a DU failure about as often as the device's library rate says
             # (lambda_DU x the plan interval); shutdown valves somewhat more often, so the
             # demo shows a device type flagged by the field-data test.
-            interval_h = (plan.interval_months if plan else 12) * HOURS_PER_MONTH
+            interval_h = (plan.interval_months if plan else 12) * calculations().HOURS_PER_MONTH
             rate = fail_rate * comp.lambda_du * interval_h
             if comp.device_type.name.startswith("Shutdown valve"):
                 rate *= 1.5
@@ -403,9 +419,9 @@ class _Builder:
                              compensating_measures="Manual dip every 2 h during filling")
         # A pending deferral request on a plan coming due, and an old approved one.
         plan = TestPlan.objects.filter(sif=sifs["U10-SIF-105"], kind="full").first()
-        from .scheduling import due_date
+        from register.schedule.due import due_date
 
         due = due_date(plan, self.today)
-        services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=45),
+        schedule_services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=45),
                                   reason="Unit turnaround moved by six weeks; the test needs "
                                          "the unit shut down.", due_on=due)

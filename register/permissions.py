@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from django.core.exceptions import PermissionDenied
 
-from .choices import Role
+from register.choices import Role
 
 
 class Action:
@@ -49,10 +49,8 @@ def _roles_by_site(user) -> dict[int, set[str]]:
     """Site id -> the roles ``user`` holds there (one query, cached on the user object)."""
     cache = getattr(user, "_ledger_roles", None)
     if cache is None:
-        from .models import Membership
-
         cache = {}
-        for site, role in Membership.objects.filter(user=user).values_list("site_id", "role"):
+        for site, role in user.memberships.values_list("site_id", "role"):
             cache.setdefault(site, set()).add(role)
         user._ledger_roles = cache
     return cache
@@ -80,10 +78,6 @@ def require(user, action: str, site_id: int) -> None:
                                "at this site.")
 
 
-def roles_for(action: str) -> frozenset[str]:
-    return RIGHTS[action]
-
-
 def sites_with(user, action: str) -> set[int] | None:
     """Ids of the sites where ``user`` has the right; None means every site (superuser)."""
     if user is None or not user.is_authenticated or not user.is_active:
@@ -103,9 +97,13 @@ def can_somewhere(user, action: str) -> bool:
 def restrict(queryset, user, action: str = Action.VIEW):
     """``queryset`` limited to the rows at sites where ``user`` has the right."""
     sites = sites_with(user, action)
+    path = queryset.model.site_path
+    if path is None and queryset.model.__name__ != "Site":
+        # shared by every site (the device library): readable by anyone signed in
+        return queryset if sites is None or can_somewhere(user, Action.VIEW) \
+            else queryset.none()
     if sites is None:
         return queryset
-    path = queryset.model.site_path
     return queryset.filter(**{f"{path}__in" if path else "pk__in": sorted(sites)})
 
 

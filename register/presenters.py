@@ -14,7 +14,7 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 
-from . import choices
+from register import choices
 
 
 @dataclass(frozen=True)
@@ -87,10 +87,6 @@ def verdict_summary(assessment) -> str:
     if assessment.meets_target is None:
         return "Not shown to meet its target" + (": " + "; ".join(unknown) if unknown else "") + "."
     return "Meets its target."
-
-
-def failed_criteria(assessment) -> list[str]:
-    return [x["label"] for x in verdict_lines(assessment) if x["status"] == "fail"]
 
 
 def rate_basis_label(code: str | None) -> str:
@@ -199,8 +195,8 @@ def assessment_view(assessment) -> dict | None:
 def sif_ids_with_repeat_offenders(latest_ids) -> set[int]:
     """SIFs whose assessment among ``latest_ids`` (ids of the latest assessments, a list or
     a subquery) flags a repeat offender. Reads only ``detail["rates"]``."""
-    from calcs.models import Assessment
+    from register.calculations import calculations
 
-    return {sif_id for sif_id, rates in Assessment.objects.filter(pk__in=latest_ids)
+    return {sif_id for sif_id, rates in calculations().Assessment.objects.filter(pk__in=latest_ids)
             .values_list("sif_id", "detail__rates")
             if repeat_offenders({"rates": rates})}

@@ -24,7 +24,7 @@ from decimal import Decimal
 from django.utils.translation import gettext as _
 from django.utils.translation import gettext_lazy
 
-from . import choices
+from register import choices
 
 WITHIN, OUTSIDE, NOT_JUDGED = "within", "outside", "not_judged"
 LABELS = {WITHIN: "Within criterion", OUTSIDE: "Outside criterion", NOT_JUDGED: ""}

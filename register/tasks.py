@@ -1,17 +1,7 @@
-"""Celery tasks of the register: a few lines each around a service."""
+"""The register's Celery tasks, gathered here for Celery's autodiscovery; each lives with
+the package whose work it runs."""
 
-import datetime as dt
+from register.audit.tasks import build_evidence_pack
+from register.schedule.tasks import scan_task
 
-from celery import shared_task
-
-
-@shared_task(name="register.scan", acks_late=True)
-def scan_task(as_of: str | None = None) -> dict:
-    """The periodic due-date and bypass scan (see ``register.scan``)."""
-    from .scan import scan
-
-    result = scan(dt.date.fromisoformat(as_of) if as_of else None)
-    return {"as_of": result.as_of.isoformat(), "plans": len(result.plans),
-            "notifications_created": result.notifications_created,
-            "counts": dict(result.counts)}
-from .tasks_evidence import *  # noqa
+__all__ = ["build_evidence_pack", "scan_task"]

@@ -8,8 +8,8 @@ Public API, re-exported here:
 * JSON case evaluation: :func:`evaluate_case`
 """
 
-from .case import build_design, evaluate_case
-from .design import (
+from calcs.engine.case import build_design, evaluate_case
+from calcs.engine.design import (
     HOURS_PER_YEAR,
     METHOD_IEC,
     METHOD_ISA,
@@ -47,8 +47,8 @@ from .design import (
     t_ce,
     t_ge,
 )
-from .errors import EngineError, InputError
-from .lopa import (
+from calcs.engine.errors import EngineError, InputError
+from calcs.engine.lopa import (
     ConditionalModifier,
     InitiatingCause,
     LopaResult,
@@ -61,7 +61,7 @@ from .lopa import (
     frequency_per_year_from_rate_per_hour,
     mitigated_frequency,
 )
-from .sil import (
+from calcs.engine.sil import (
     ArchitectureLimit,
     SifLimit,
     architectural_limit,
@@ -77,7 +77,7 @@ from .sil import (
     sil_from_pfd,
     sil_from_pfh,
 )
-from .voting import Voting, parse_voting
+from calcs.engine.voting import Voting, parse_voting
 
 __all__ = [
     "HOURS_PER_YEAR",

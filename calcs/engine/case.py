@@ -42,9 +42,9 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from . import design
-from .errors import InputError
-from .sil import ROUTE_AUTO
+from calcs.engine import design
+from calcs.engine.errors import InputError
+from calcs.engine.sil import ROUTE_AUTO
 
 _REQUIRED = ("name", "voting", "lambda_du_per_hour", "proof_test_interval_hours")
 _OPTIONAL = (
@@ -128,7 +128,7 @@ def _wants_history(data: dict) -> bool:
 
 def _history(data: dict, today=None) -> dict:
     try:
-        from .history import evaluate_case_history
+        from calcs.engine.history import evaluate_case_history
     except ModuleNotFoundError as exc:
         if exc.name not in (f"{__package__}.history",):
             raise

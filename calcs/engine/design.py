@@ -105,11 +105,11 @@ from functools import lru_cache
 
 from scipy.optimize import brentq as _brentq
 
-from . import markov as _markov
-from . import sil as _sil
-from .errors import InputError
-from .units import HOURS_PER_YEAR, check_rate
-from .voting import Voting, parse_voting
+from calcs.engine import markov as _markov
+from calcs.engine import sil as _sil
+from calcs.engine.errors import InputError
+from calcs.engine.units import HOURS_PER_YEAR, check_rate
+from calcs.engine.voting import Voting, parse_voting
 
 METHOD_IEC = "iec61508-6"
 METHOD_ISA = "isa-tr84.00.02"

@@ -33,7 +33,7 @@ from typing import Any
 
 from scipy import stats
 
-from .errors import InputError
+from calcs.engine.errors import InputError
 
 #: Upper-bound confidence for prior-use failure rates (IEC 61511-1:2016 cl. 11.9).
 IEC61511_PRIOR_USE_CL = 0.70

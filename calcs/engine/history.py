@@ -65,9 +65,9 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError
-from .units import check_not_after, check_rate
-from .voting import parse_voting
+from calcs.engine.errors import InputError
+from calcs.engine.units import check_not_after, check_rate
+from calcs.engine.voting import parse_voting
 
 TEST_KINDS = ("full", "partial", "demand")
 
@@ -1146,7 +1146,7 @@ def evaluate_case_history(data: dict, *, today: date | None = None) -> dict:
     start = _parse_when(win["start"], "window.start") if win.get("start") else one_year_before(end)
     sif = SifHistory(groups=tuple(groups), bypasses=tuple(bypasses))
     res = achieved_pfd(sif, start, end, as_of=evaluation)
-    from . import observed as _observed  # imports this module
+    from calcs.engine import observed as _observed  # imports this module
 
     obs = _observed.observed_unavailability(sif, start, end, as_of=evaluation)
     flags.extend(res.flags)

@@ -31,9 +31,9 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from .errors import InputError
-from .sil import sil_from_pfd
-from .units import HOURS_PER_YEAR
+from calcs.engine.errors import InputError
+from calcs.engine.sil import sil_from_pfd
+from calcs.engine.units import HOURS_PER_YEAR
 
 NO_SIF_NEEDED = "no_sif_needed"
 BELOW_SIL1 = "below_sil1"

@@ -45,9 +45,9 @@ from datetime import datetime
 
 import numpy as np
 
-from . import history as _h
-from .errors import InputError
-from .voting import parse_voting
+from calcs.engine import history as _h
+from calcs.engine.errors import InputError
+from calcs.engine.voting import parse_voting
 
 #: Findings of one group on the same day (24 h, UTC calendar day) share one onset.
 SAME_DAY_HOURS = 24.0

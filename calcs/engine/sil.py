@@ -26,7 +26,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from .errors import InputError
+from calcs.engine.errors import InputError
 
 LOW = "low"
 HIGH = "high"

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 from datetime import date, datetime
 
-from .errors import InputError
+from calcs.engine.errors import InputError
 
 #: 1 year = 8760 h (the convention of IEC 61508-6 Annex B and of this software).
 HOURS_PER_YEAR = 8760.0

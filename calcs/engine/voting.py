@@ -11,7 +11,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
-from .errors import InputError
+from calcs.engine.errors import InputError
 
 _VOTING_RE = re.compile(r"^\s*(\d+)\s*oo\s*(\d+)\s*(D?)\s*$", re.IGNORECASE)
 

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import dj_database_url
 
-from .env import env_bool, env_int, env_list, env_str
+from config.settings.env import env_bool, env_int, env_list, env_str
 
 # One BLAS thread per process, for every entry point that loads these settings (see
 # config/celery.py); set before the engine first imports numpy.

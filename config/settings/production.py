@@ -2,9 +2,9 @@
 
 from django.core.exceptions import ImproperlyConfigured
 
-from .base import *  # noqa: F403
-from .base import SECRET_KEY
-from .env import env_bool, env_int, env_list
+from config.settings.base import *  # noqa: F403
+from config.settings.base import SECRET_KEY
+from config.settings.env import env_bool, env_int, env_list
 
 DEBUG = False
 if not SECRET_KEY or SECRET_KEY.startswith("dev-only") or len(SECRET_KEY) < 50:

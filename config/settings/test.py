@@ -1,7 +1,7 @@
 """Settings for the test suite: fast hashing, in-memory mail, eager tasks unless told otherwise."""
 
-from .base import *  # noqa: F403
-from .env import env_bool
+from config.settings.base import *  # noqa: F403
+from config.settings.env import env_bool
 
 PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]
 EMAIL_BACKEND = "django.core.mail.backends.locmem.EmailBackend"

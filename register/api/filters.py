@@ -1,11 +1,11 @@
-"""Filters of the API lists. SIFs use the register's own filter set (``register.filters``)."""
+"""Filters of the API lists. SIFs use the register's own filter set (``register.lead.filters``)."""
 
 from __future__ import annotations
 
 import django_filters as df
 
-from calcs.models import Assessment
 from register import choices
+from register.calculations import calculations
 from register.models import (
     Bypass,
     Component,
@@ -100,7 +100,7 @@ class AssessmentFilter(df.FilterSet):
     computed_after = df.IsoDateTimeFilter(field_name="computed_at", lookup_expr="gte")
 
     class Meta:
-        model = Assessment
+        model = calculations().Assessment
         fields = ["sif", "meets_target"]
 
 

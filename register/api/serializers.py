@@ -7,8 +7,8 @@ from __future__ import annotations
 
 from rest_framework import serializers
 
-from calcs.models import Assessment
 from register import choices
+from register.calculations import calculations
 from register.models import (
     Bypass,
     Component,
@@ -369,7 +369,7 @@ class DecideSerializer(serializers.Serializer):
 
 class AssessmentSerializer(serializers.ModelSerializer):
     class Meta:
-        model = Assessment
+        model = calculations().Assessment
         fields = ["id", "sif", "computed_at", "as_of", "inputs_digest", "trigger",
                   "target_pfd_avg", "target_sil", "design_pfd_avg", "design_pfh_per_hour",
                   "achieved_pfd_avg", "achieved_since_service_pfd_avg", "projected_pfd_avg",

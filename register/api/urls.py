@@ -8,7 +8,7 @@ from django.views.static import serve
 from drf_spectacular.views import SpectacularAPIView, SpectacularSwaggerView
 from rest_framework.routers import DefaultRouter
 
-from . import views
+from register.api import views
 
 router = DefaultRouter()
 router.register("sites", views.SiteViewSet, basename="site")

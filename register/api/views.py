@@ -26,9 +26,12 @@ from rest_framework.throttling import ScopedRateThrottle
 from rest_framework.views import APIView
 from rest_framework.views import exception_handler as drf_exception_handler
 
-from calcs.models import Assessment
 from register import services
-from register.filters import SifFilter
+from register.api import filters
+from register.api import serializers as s
+from register.api.permissions import LedgerPermission
+from register.calculations import calculations
+from register.lead.filters import SifFilter
 from register.models import (
     Bypass,
     Component,
@@ -46,10 +49,7 @@ from register.models import (
     TestRecord,
 )
 from register.permissions import Action
-
-from . import filters
-from . import serializers as s
-from .permissions import LedgerPermission
+from register.schedule import services as schedule_services
 
 NON_FIELD = "non_field_errors"
 
@@ -161,7 +161,7 @@ class ScenarioViewSet(ReadViewSet):
 
 
 class AssessmentViewSet(ReadViewSet):
-    queryset = Assessment.objects.all()
+    queryset = calculations().Assessment.objects.all()
     serializer_class = s.AssessmentSerializer
     filterset_class = filters.AssessmentFilter
 
@@ -288,10 +288,7 @@ class TestRecordViewSet(mixins.CreateModelMixin, mixins.UpdateModelMixin,
         record = self.get_object()
         if record.is_signed:
             raise Conflict(detail={"detail": SIGNED_MESSAGE.format(id=record.pk)})
-        if record.performed_by_id != request.user.pk:
-            raise PermissionDenied("Only the person who started this draft can delete it.")
-        record._history_user = request.user
-        record.delete()
+        services.discard_draft(record, request.user)
         return Response(status=status.HTTP_204_NO_CONTENT)
 
     @extend_schema(request=s.PasswordSerializer, responses={200: s.TestRecordSerializer})
@@ -368,7 +365,7 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
     write_rights = {"create": Action.REQUEST_DEFERRAL, "decide": Action.DECIDE_DEFERRAL}
 
     def perform_create(self, serializer):
-        serializer.instance = services.request_deferral(user=self.request.user,
+        serializer.instance = schedule_services.request_deferral(user=self.request.user,
                                                         **serializer.validated_data)
 
     @extend_schema(request=s.DecideSerializer, responses={200: s.DeferralSerializer})
@@ -379,7 +376,7 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
         ser = s.DecideSerializer(data=request.data)
         ser.is_valid(raise_exception=True)
         d = ser.validated_data
-        deferral = services.decide_deferral(deferral, request.user, approve=d["approve"],
+        deferral = schedule_services.decide_deferral(deferral, request.user, approve=d["approve"],
                                             note=d["note"],
                                             projected_pfd_avg=d["projected_pfd_avg"])
         return Response(self.get_serializer(deferral).data)
@@ -402,7 +399,7 @@ class EvidencePackViewSet(mixins.CreateModelMixin, ReadViewSet):
                 .select_related("site", "unit", "sif", "requested_by"))
 
     def perform_create(self, serializer):
-        from register.evidence import request_pack
+        from register.audit.evidence import request_pack
 
         d = serializer.validated_data
         serializer.instance = request_pack(
@@ -414,7 +411,7 @@ class EvidencePackViewSet(mixins.CreateModelMixin, ReadViewSet):
     def download(self, request, pk=None):
         from django.http import FileResponse, Http404
 
-        from register.evidence import pack_file
+        from register.audit.evidence import pack_file
 
         pack = self.get_object()
         path = pack_file(pack)
@@ -518,17 +515,10 @@ class BulkTestResults(APIView):
                                                         "request."))
         if errors:
             return self._fail(errors, status.HTTP_400_BAD_REQUEST)
-        for attempt in range(2):
-            try:
-                return self._store(request.user, items)
-            except BulkError as exc:
-                return self._fail(exc.errors, exc.code)
-            except IntegrityError:
-                # Another request stored one of these keys at the same moment; the second
-                # pass finds it and answers as for a retry.
-                if attempt:
-                    raise
-        raise AssertionError("unreachable")
+        try:
+            return self._store(request.user, items)
+        except BulkError as exc:
+            return self._fail(exc.errors, exc.code)
 
     def _fail(self, errors, code):
         return Response({"detail": "Nothing was written.", "errors": errors}, status=code)
@@ -569,22 +559,8 @@ class BulkTestResults(APIView):
             raise BulkError(errors, 400)
         return sif, plan, results
 
-    @staticmethod
-    def _same(record, user, sif, plan, item, results) -> bool:
-        stored = {(r.component_id, r.as_found, r.as_left, r.work_done, r.failure_mode,
-                   r.failure_description) for r in record.results.all()}
-        sent = {(r["component"].pk, r["as_found"], r["as_left"], r.get("work_done", ""),
-                 r.get("failure_mode", ""), r.get("failure_description", ""))
-                for r in results}
-        return (record.performed_by_id == user.pk and record.sif_id == sif.pk
-                and record.plan_id == (plan.pk if plan else None)
-                and record.kind == item["kind"] and record.performed_at == item["performed_at"]
-                and record.remarks == item.get("remarks", "") and stored == sent)
-
     @transaction.atomic
     def _store(self, user, items):
-        existing = {r.client_key: r for r in TestRecord.objects.filter(
-            client_key__in=[i["client_key"] for i in items]).prefetch_related("results")}
         errors, outcome, denied = [], [], False
         for index, item in enumerate(items):
             try:
@@ -592,20 +568,16 @@ class BulkTestResults(APIView):
             except BulkError as exc:
                 errors += exc.errors
                 continue
-            old = existing.get(item["client_key"])
-            if old is not None:
-                if not self._same(old, user, sif, plan, item, results):
-                    raise BulkError([_err(index, "client_key", "This key was already used "
-                                          "for a different test result.")], 409)
-                outcome.append((index, item["client_key"], False, old.pk))
-                continue
             try:
                 with transaction.atomic():
-                    record = services.save_draft(
-                        user=user, sif=sif, plan=plan, kind=item["kind"],
-                        performed_at=item["performed_at"], remarks=item.get("remarks", ""),
-                        results=_result_inputs(results), client_key=item["client_key"])
-                    services.sign_record(record, user, None, check_password=False)
+                    record, created = services.save_draft_once(
+                        client_key=item["client_key"], user=user, sif=sif, plan=plan,
+                        kind=item["kind"], performed_at=item["performed_at"],
+                        remarks=item.get("remarks", ""), results=_result_inputs(results))
+                    if created:
+                        services.sign_record(record, user, None, check_password=False)
+            except services.KeyReusedError as exc:
+                raise BulkError([_err(index, "client_key", exc.messages)], 409) from None
             except DjangoValidationError as exc:
                 for field, msgs in _messages(exc).items():
                     errors.append(_err(index, field, msgs))
@@ -614,7 +586,7 @@ class BulkTestResults(APIView):
                 denied = True
                 errors.append(_err(index, "sif", str(exc)))
                 continue
-            outcome.append((index, item["client_key"], True, record.pk))
+            outcome.append((index, item["client_key"], created, record.pk))
         if errors:
             raise BulkError(errors, status.HTTP_403_FORBIDDEN if denied
                             else status.HTTP_400_BAD_REQUEST)

@@ -34,7 +34,7 @@ def plant(transactional_db):
     other = f.sif(unit, tag="U10-SIF-205")  # noise in the list
     from django.utils import timezone
 
-    from register.scheduling import refresh_plans
+    from register.schedule.due import refresh_plans
     refresh_plans(TestPlan.objects.all(), timezone.localdate())
     f.user("tech", site=site, role=choices.Role.TECHNICIAN)
     f.user("verifier", site=site, role=choices.Role.VERIFIER)

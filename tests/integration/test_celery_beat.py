@@ -20,7 +20,7 @@ from django.utils import timezone
 
 from register import choices
 from register.models import Notification, TestPlan
-from register.scheduling import refresh_plans
+from register.schedule.due import refresh_plans
 from tests import factories as f
 from tests.conftest import need
 

@@ -8,8 +8,8 @@ import pytest
 from aiosmtpd.controller import Controller
 
 from register import choices
+from register.inbox.delivery import email_subject, send_pending_emails
 from register.models import Notification
-from register.scan import email_subject, send_pending_emails
 from tests import factories as f
 
 pytestmark = pytest.mark.django_db

@@ -43,3 +43,27 @@ def test_changing_a_plan_interval_in_the_admin_is_refused(admin_client):
 def test_site_setup_stays_possible(admin_client):
     assert admin_client.get(reverse("admin:register_site_add")).status_code == 200
     assert admin_client.get(reverse("admin:register_membership_add")).status_code == 200
+
+
+def test_a_staff_lead_sees_only_their_sites_in_the_admin(client):
+    """The admin reads through the one gate: a staff member who is not a superuser sees the
+    rows of their own sites only; the other site's SIF does not open."""
+    from django.contrib.auth.models import Permission
+
+    from register import choices
+
+    own = f.sif(f.unit(f.site()), tag="OWN-1")
+    other = f.sif(f.unit(f.site(), code="U2"), tag="FAR-1")
+    lead = f.user("staff-lead", site=own.unit.site, role=choices.Role.LEAD)
+    lead.is_staff = True
+    lead.save()
+    lead.user_permissions.add(*Permission.objects.filter(
+        codename__in=["view_safetyfunction", "view_devicetype", "view_chainentry"]))
+    client.force_login(lead)
+    listing = client.get(reverse("admin:register_safetyfunction_changelist"))
+    assert listing.status_code == 200
+    assert b"OWN-1" in listing.content and b"FAR-1" not in listing.content
+    far = client.get(reverse("admin:register_safetyfunction_change", args=[other.pk]))
+    assert far.status_code == 302  # "does not exist": back to the admin index
+    assert client.get(reverse("admin:register_devicetype_changelist")).status_code == 200
+    assert client.get(reverse("admin:register_chainentry_changelist")).status_code == 403

@@ -9,7 +9,8 @@ from django.core.management.base import CommandError
 from django.db import connection
 from django.utils import timezone
 
-from register import audit, choices, services
+from register import choices, services
+from register.audit import chain as audit
 from register.models import (
     Bypass,
     ChainAppendOnlyError,

@@ -8,7 +8,7 @@ from django.utils import timezone
 
 from register import choices
 from register.models import Deferral, TestPlan
-from register.scheduling import status_of
+from register.schedule.due import status_of
 from tests import factories as f
 
 pytestmark = pytest.mark.django_db

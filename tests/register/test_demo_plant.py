@@ -15,7 +15,9 @@ from django.urls import reverse
 from django.utils import timezone
 
 from calcs.adapter import latest_assessments, recompute_many
-from register import audit, choices, demo, evidence, services
+from register import choices, demo, services
+from register.audit import chain as audit
+from register.audit import evidence
 from register.models import (
     Component,
     ComponentResult,
@@ -23,6 +25,7 @@ from register.models import (
     SafetyFunction,
     TestRecord,
 )
+from register.schedule import services as schedule_services
 from tests import factories as f
 from tests.register.test_evidence_pack import _pdf_text, _unzip
 
@@ -164,10 +167,10 @@ def test_demo_sif_pack_holds_every_element(plant, client, django_capture_on_comm
     services.update_design(sif, lead, reason="Closing time tightened after pump change",
                            reference="CR-2031", changes={"safe_state": "Inlet and bypass closed"})
     plan = sif.plans.filter(kind=choices.TestKind.FULL).first()
-    deferral = services.request_deferral(
+    deferral = schedule_services.request_deferral(
         user=tech, plan=plan, proposed_on=today + dt.timedelta(days=130),
         reason="Spare solenoid on order", due_on=today + dt.timedelta(days=100))
-    services.decide_deferral(deferral, lead, approve=False, note="Refused: test on time")
+    schedule_services.decide_deferral(deferral, lead, approve=False, note="Refused: test on time")
 
     client.force_login(auditor)
     start = today - dt.timedelta(days=5 * 365)

@@ -15,7 +15,9 @@ import time_machine
 from django.urls import reverse
 from django.utils import timezone
 
-from register import audit, choices, evidence, services
+from register import choices, services
+from register.audit import chain as audit
+from register.audit import evidence
 from register.models import (
     EvidencePack,
 )

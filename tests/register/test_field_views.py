@@ -8,7 +8,7 @@ from django.urls import reverse
 from django.utils import timezone
 
 from calcs.models import Assessment
-from register import choices
+from register import choices, services
 from register.models import (
     Attachment,
     Component,
@@ -367,3 +367,30 @@ def test_other_site_user_gets_404(client, plant):
                                                              "reason": "x"}).status_code == 404
     # Their own site works.
     assert client.get(reverse("field:start", args=[plant["other_plan"].pk])).status_code == 200
+
+
+def test_the_performer_discards_a_draft_and_the_history_keeps_it(client, plant):
+    """A draft is deleted only by its performer, through the one service; the deletion is a
+    history row attributed to them (so it is chained); a signed record cannot be discarded."""
+    from register.models import ChainEntry, TestRecord
+
+    tech = plant["tech"]
+    draft = services.save_draft(
+        user=tech, sif=plant["sif"], plan=plant["plan"], kind=choices.TestKind.FULL,
+        performed_at=timezone.now(), results=[services.ResultInput(
+            component=plant["lt"], as_found="pass", as_left="pass")])
+    client.force_login(tech)
+    before = ChainEntry.objects.count()
+    response = client.post(f"/field/records/{draft.pk}/discard/")
+    assert response.status_code == 302
+    assert not TestRecord.objects.filter(pk=draft.pk).exists()
+    deleted = TestRecord.history.filter(id=draft.pk, history_type="-").get()
+    assert deleted.history_user == tech and deleted.history_change_reason == "draft discarded"
+    assert ChainEntry.objects.count() > before
+    signed = services.save_draft(
+        user=tech, sif=plant["sif"], plan=plant["plan"], kind=choices.TestKind.FULL,
+        performed_at=timezone.now(), results=[services.ResultInput(
+            component=plant["lt"], as_found="pass", as_left="pass")])
+    services.sign_record(signed, tech, None, check_password=False)
+    response = client.post(f"/field/records/{signed.pk}/discard/")
+    assert response.status_code == 302 and TestRecord.objects.filter(pk=signed.pk).exists()

@@ -16,7 +16,8 @@ from calcs import adapter
 from calcs.engine import design as eng_design
 from register import choices, services
 from register.models import Component, SafetyFunction, Subsystem, TestPlan
-from register.scheduling import refresh_plans
+from register.schedule import services as schedule_services
+from register.schedule.due import refresh_plans
 from tests import factories as f
 
 pytestmark = pytest.mark.django_db
@@ -96,7 +97,7 @@ def test_overview_counts_open_bypass_and_pending_deferral(client, plant):
     services.open_bypass(user=plant["tech"], sif=plant["fine"], authorised_hours=8,
                          started_at=timezone.now() - dt.timedelta(hours=30), reason="valve work")
     plan = plant["overdue"].plans.get()
-    services.request_deferral(user=plant["tech"], plan=plan,
+    schedule_services.request_deferral(user=plant["tech"], plan=plan,
                               proposed_on=TODAY + dt.timedelta(days=20), reason="turnaround")
     client.force_login(plant["lead"])
     html = client.get("/").content.decode()
@@ -109,7 +110,7 @@ def test_overview_counts_open_bypass_and_pending_deferral(client, plant):
 
 
 def test_on_time_rate_counts_late_and_missed_due_dates(plant):
-    from register.views import on_time_rate
+    from register.lead.views import on_time_rate
 
     # S-OVER: due 10 days ago, no test: one due date in the period, late.
     # S-SOON, S-FINE, S-WEAK: not yet due: nothing in the period.
@@ -310,7 +311,7 @@ def test_other_site_gets_404(client, plant):
 
 def test_lead_decides_a_deferral_with_the_projection(client, plant):
     plan = plant["overdue"].plans.get()
-    deferral = services.request_deferral(user=plant["tech"], plan=plan,
+    deferral = schedule_services.request_deferral(user=plant["tech"], plan=plan,
                                          proposed_on=TODAY + dt.timedelta(days=30),
                                          reason="Spare valve on order")
     client.force_login(plant["lead"])
@@ -325,7 +326,7 @@ def test_lead_decides_a_deferral_with_the_projection(client, plant):
     assert deferral.status == choices.DeferralStatus.APPROVED
     assert deferral.projected_pfd_avg and deferral.projected_pfd_avg > 0
     client.force_login(plant["tech"])
-    other = services.request_deferral(user=plant["tech"], plan=plant["soon"].plans.get(),
+    other = schedule_services.request_deferral(user=plant["tech"], plan=plant["soon"].plans.get(),
                                       proposed_on=TODAY + dt.timedelta(days=90), reason="x")
     assert client.post(reverse("deferrals:decide", args=[other.pk]),
                        {"decision": "approve"}).status_code == 403

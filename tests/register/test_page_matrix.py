@@ -48,6 +48,10 @@ POSTS = [
     ("record correct", lambda p, w: f"/field/records/{p.signed.pk}/correct/"),
 ]
 
+# Discarding a draft (POST): only its performer may; for everyone else, nothing changes.
+DISCARD = {"lead": 403, "technician": None, "verifier": 403, "auditor": 403,
+           "outsider": 404, "anonymous": LOGIN}
+
 # (name, url(place, world), expected)
 PAGES = [
     ("home", lambda p, w: "/", ALL),
@@ -127,6 +131,18 @@ def test_empty_post_writes_nothing(world, row, role, where):
     assert ChainEntry.objects.count() == before
 
 
+@pytest.mark.parametrize("role", [r for r in ROLES if DISCARD[r] is not None])
+def test_only_the_performer_discards_a_draft(world, role):
+    cache.clear()
+    from register.models import TestRecord
+
+    before = ChainEntry.objects.count()
+    response = _client(world, role).post(f"/field/records/{world.own.draft.pk}/discard/")
+    assert response.status_code == DISCARD[role], role
+    assert TestRecord.objects.filter(pk=world.own.draft.pk).exists()
+    assert ChainEntry.objects.count() == before
+
+
 def test_chain_page_shows_only_the_users_sites(world):
     lead = _client(world, "lead").get("/audit/chain/").context["recent"]
     outsider = _client(world, "outsider").get("/audit/chain/").context["recent"]
@@ -171,6 +187,7 @@ def test_every_route_is_in_a_permission_matrix():
         covered.add(resolve(url(_P(), _P()).split("?")[0]).view_name)
     for _name, url in POSTS:
         covered.add(resolve(url(_P(), _P())).view_name)
+    covered.add(resolve("/field/records/1/discard/").view_name)  # DISCARD above
     # covered elsewhere: sign-in and password pages (tests/register/test_login.py), the
     # admin (read-only, tests/register/test_admin_read_only.py), the API's schema, docs,
     # token and bulk endpoints (tests/api/test_api.py), downloads that need a built file

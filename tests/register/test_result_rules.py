@@ -12,8 +12,9 @@ import pytest
 from django.core.exceptions import ValidationError
 from django.db import transaction
 
-from register import choices, rules, services, spreadsheet
-from register.forms_field import ComponentForm
+from register import choices, rules, services
+from register.field.forms import ComponentForm
+from register.lead import spreadsheet
 from register.models import Component, ComponentResult, MeasuredValue, TestPlan, TestStep
 from tests import factories as f
 

@@ -11,7 +11,7 @@ from django.utils import timezone
 
 from register import choices, services
 from register.models import Notification, TestPlan
-from register.scan import scan
+from register.schedule.scan import scan
 from tests import factories as f
 
 pytestmark = pytest.mark.django_db
@@ -125,7 +125,7 @@ def test_a_scan_cut_off_half_way_is_completed_by_the_next_without_duplicates():
 def test_changes_in_one_transaction_refresh_the_sif_once(django_capture_on_commit_callbacks):
     from django.db import transaction
 
-    from register import followup
+    from register.schedule import followup
 
     s, lead, owner = _plant(2)
     sifs = list(TestPlan.objects.filter(sif__unit__site=s).values_list("sif_id", flat=True))
@@ -139,7 +139,7 @@ def test_changes_in_one_transaction_refresh_the_sif_once(django_capture_on_commi
 def test_a_rolled_back_change_leaves_no_stale_refresh_behind(django_capture_on_commit_callbacks):
     from django.db import transaction
 
-    from register import followup
+    from register.schedule import followup
 
     s, lead, owner = _plant(2)
     sifs = list(TestPlan.objects.filter(sif__unit__site=s).values_list("sif_id", flat=True))

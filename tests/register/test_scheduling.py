@@ -1,4 +1,4 @@
-"""Due dates and states at their edges (rules in register/scheduling.py)."""
+"""Due dates and states at their edges (rules in register/schedule/due.py)."""
 
 import datetime as dt
 
@@ -8,7 +8,8 @@ from django.utils import timezone
 
 from register import choices, services
 from register.models import Component, TestPlan
-from register.scheduling import Thresholds, add_months, state_for, status_of
+from register.schedule import services as schedule_services
+from register.schedule.due import Thresholds, add_months, state_for, status_of
 from tests import factories as f
 
 S = choices.PlanState
@@ -113,18 +114,18 @@ def test_deferral_approved_moves_due_once_and_an_early_test_resets(plant):
     plan = TestPlan.objects.get(sif=sif)
     today = timezone.localdate()
     due = status_of(plan, today).due_on
-    d = services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=40),
+    d = schedule_services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=40),
                                   reason="turnaround")
     with pytest.raises(PermissionDenied):
-        services.decide_deferral(d, tech, approve=True)  # technicians cannot decide
-    services.decide_deferral(d, lead, approve=True, note="accepted")
+        schedule_services.decide_deferral(d, tech, approve=True)  # technicians cannot decide
+    schedule_services.decide_deferral(d, lead, approve=True, note="accepted")
     st = status_of(plan, today)
     assert st.due_on == due + dt.timedelta(days=40) and st.deferred
     # A second deferral of the same due date cannot be approved.
-    d2 = services.request_deferral(user=tech, plan=plan, due_on=due,
+    d2 = schedule_services.request_deferral(user=tech, plan=plan, due_on=due,
                                    proposed_on=due + dt.timedelta(days=80), reason="again")
     with pytest.raises(ValidationError, match="deferred once"):
-        services.decide_deferral(d2, lead, approve=True)
+        schedule_services.decide_deferral(d2, lead, approve=True)
     # The test done early, before the deferred date: the next due date follows the test.
     done = min(today, due + dt.timedelta(days=10))
     _test(sif, tech, done)

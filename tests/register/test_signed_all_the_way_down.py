@@ -88,7 +88,7 @@ def test_attachments_go_through_the_service_with_history(db, settings, tmp_path)
     from django.core.exceptions import PermissionDenied, ValidationError
     from django.core.files.uploadedfile import SimpleUploadedFile
 
-    from register import audit
+    from register.audit import chain as audit
     from register.models import Attachment, ChainEntry
 
     settings.MEDIA_ROOT = tmp_path
@@ -123,8 +123,8 @@ def test_attachments_go_through_the_service_with_history(db, settings, tmp_path)
 
 def test_a_change_reads_the_same_on_the_page_and_in_the_pack(db):
     from register.changes import field_changes, row_of
+    from register.lead.views import _history
     from register.models import Component
-    from register.views import _history
 
     s = f.site()
     lead = f.user("lead-diff", site=s, role=choices.Role.LEAD)

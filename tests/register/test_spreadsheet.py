@@ -11,7 +11,8 @@ import pytest
 from django.conf import settings
 from openpyxl import load_workbook
 
-from register import choices, services, spreadsheet
+from register import choices, services
+from register.lead import spreadsheet
 from register.models import (
     Component,
     DeviceType,

@@ -1,5 +1,5 @@
 """A SIF whose verdict turns to "does not meet target" is notified to its site's leads, once
-per change (register.scan.notify_verdict_changes)."""
+per change (register.inbox.notices.notify_verdict_changes)."""
 
 from __future__ import annotations
 
@@ -15,8 +15,9 @@ from django.utils import timezone
 from calcs.engine import verdict as eng_verdict
 from calcs.models import Assessment
 from register import choices
+from register.inbox.delivery import send_pending_emails
+from register.inbox.notices import notify_verdict_changes
 from register.models import Notification, SafetyFunction
-from register.scan import notify_verdict_changes, send_pending_emails
 from tests import factories as f
 
 pytestmark = pytest.mark.django_db

@@ -22,7 +22,8 @@ from django.utils.html import escape
 
 from calcs.engine import verdict as eng_verdict
 from calcs.models import Assessment
-from register import choices, evidence
+from register import choices
+from register.audit import evidence
 from register.models import Component, EvidencePack, SafetyFunction
 from tests import factories as f
 from tests.register.test_evidence_pack import _pdf_text

@@ -7,7 +7,7 @@ from django.contrib.auth import get_user_model
 from django.core.exceptions import ValidationError
 from django.core.management.base import BaseCommand, CommandError
 
-from register.evidence import request_pack, run
+from register.audit.evidence import request_pack, run
 from register.models import EvidencePack, PlantUnit, SafetyFunction, Site
 from register.permissions import Action, can
 

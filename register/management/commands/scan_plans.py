@@ -6,7 +6,7 @@ from django.utils import timezone
 
 from register.choices import PlanState
 from register.models import TestPlan
-from register.scan import scan
+from register.schedule.scan import scan
 
 
 class Command(BaseCommand):

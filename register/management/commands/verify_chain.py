@@ -2,7 +2,7 @@
 
 from django.core.management.base import BaseCommand, CommandError
 
-from register.audit import verify_chain
+from register.audit.chain import verify_chain
 
 
 class Command(BaseCommand):

@@ -1,0 +1,411 @@
+"""Assessments: run the engine on loaded SIFs, store the result and its verdict, and the
+figures pages ask for (PFD(t) series, deferral projections)."""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+from collections import defaultdict
+
+from django.utils import timezone
+
+from calcs.adapter.field_stats import (
+    device_type_stats,
+    rate_table,
+)
+from calcs.adapter.inputs import (
+    RateTable,
+    _aware,
+    assumed_demand_rate,
+    design_input,
+    history_input,
+    planned_groups,
+    target_pfd,
+)
+from calcs.adapter.loading import (
+    SCHEDULE_TOLERANCE,
+    SIGNIFICANCE,
+    SifData,
+    load,
+    log,
+)
+from calcs.engine import design as eng_design
+from calcs.engine import field_data as eng_field
+from calcs.engine import history as eng_hist
+from calcs.engine import observed as eng_obs
+from calcs.engine import sil as eng_sil
+from calcs.engine import verdict as eng_verdict
+from calcs.engine.errors import EngineError
+from calcs.engine.units import HOURS_PER_MONTH
+from calcs.models import Assessment
+from register import choices
+from register.models import (
+    SafetyFunction,
+    TestPlan,
+)
+
+# ---------------------------------------------------------------------------------------
+# Assessment
+# ---------------------------------------------------------------------------------------
+
+
+def _digest(payload) -> str:
+    return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
+           due_on: dt.date | None = None, trigger: str = "") -> Assessment:
+    """Run design, achieved and projected calculations for one SIF. Never raises for bad
+    records: problems become flags, and an engine error is kept on the assessment."""
+    sif = d.sif
+    a = Assessment(sif=sif, computed_at=timezone.now(), as_of=as_of, trigger=trigger[:40],
+                   rate_basis=rates.basis, target_sil=sif.target_sil)
+    flags: list[str] = []
+    detail: dict = {"subsystems": []}
+    try:
+        design = design_input(d)
+        result = eng_design.evaluate_sif(design)
+        a.target_pfd_avg = design.target_pfd_avg
+        a.design_pfd_avg = result.pfd_avg
+        a.design_pfh_per_hour = result.pfh_per_hour
+        a.architectural_sil = result.architectural_sil
+        a.systematic_sil = result.systematic_capability
+        detail["design"] = {"method": result.method, "rrf": result.rrf, "sil": result.sil,
+                            "rate_basis": rates.basis,
+                            "claimable_sil": result.claimable_sil,
+                            "sil_limited_by": result.sil_limited_by}
+        for sres, sin in zip(result.subsystems, design.subsystems):
+            detail["subsystems"].append({
+                "name": sres.name, "voting": sres.voting, "hft": sres.hft,
+                "design_pfd_avg": sres.pfd_avg, "architectural_sil": sres.architectural_sil,
+                "pfd_method": getattr(sres, "pfd_method", None) or (
+                    "simplified equations (IEC 61508-6 Annex B)"
+                    if result.method == eng_design.METHOD_IEC else "ISA-TR84.00.02 equations"),
+                "sff": sres.sff, "systematic_capability": sres.systematic_capability,
+                "lambda_du_per_hour": sin.lambda_du_per_hour,
+                "lambda_dd_per_hour": sin.lambda_dd_per_hour, "beta": sin.beta,
+                "beta_d": sin.beta_d, "mttr_hours": sin.mttr_hours, "mrt_hours": sin.mrt_hours,
+                "proof_test_interval_hours": sin.proof_test_interval_hours,
+                "proof_test_coverage": sin.proof_test_coverage,
+                "partial_test_interval_hours": sin.partial_test_interval_hours,
+                "partial_test_coverage": sin.partial_test_coverage,
+                "mission_time_hours": sin.mission_time_hours,
+            })
+        flags.extend(result.caution)
+        if result.architectural_sil < sif.target_sil:
+            flags.append(f"The architecture allows SIL {result.architectural_sil} "
+                         f"({result.sil_limited_by}); the target is SIL {sif.target_sil}.")
+        if result.systematic_capability and result.systematic_capability < sif.target_sil:
+            flags.append(f"The lowest systematic capability is SC {result.systematic_capability}"
+                         f", below the target SIL {sif.target_sil}.")
+        if design.target_pfd_avg and result.pfd_avg > design.target_pfd_avg:
+            flags.append(f"The design PFDavg {result.pfd_avg:.2e} does not meet the required "
+                         f"{design.target_pfd_avg:.2e}.")
+        check = eng_hist.planned_schedule_check(planned_groups(design), result.pfd_avg,
+                                                tolerance=SCHEDULE_TOLERANCE)
+        detail["schedule_check"] = {"model_pfd_avg": check.model_pfd_avg,
+                                    "relative_difference": check.relative_difference,
+                                    "tolerance": check.tolerance,
+                                    "within_tolerance": check.within_tolerance}
+        if not check.within_tolerance:
+            flags.append("Self-check: " + check.message)
+
+        hist = history_input(d, rates)
+        end = as_of
+        start_12 = end - dt.timedelta(days=365)
+        in_service = min((c.obj.in_service_on for c in d.all_components()),
+                         default=sif.in_service_on)
+        windows = [(start_12, end)]
+        if in_service and _aware(in_service) < end:
+            windows.append((_aware(in_service), end))
+        results = eng_hist.achieved_pfd_windows(hist, windows, as_of=end)
+        observed = eng_obs.observed_windows(hist, windows, as_of=end)
+        last12, obs12 = results[0], observed[0]
+        a.achieved_pfd_avg = last12.pfd_avg
+        a.observed_unavailability = obs12.unavailability
+        if len(results) > 1:
+            a.achieved_since_service_pfd_avg = results[1].pfd_avg
+            a.observed_since_service = observed[1].unavailability
+        for entry in detail["subsystems"]:
+            entry["achieved_pfd_avg"] = last12.groups.get(entry["name"])
+            entry["observed_unavailability"] = obs12.groups.get(entry["name"])
+        detail["bypass_hours_12m"] = last12.bypass_hours
+        detail["pfd_now"] = last12.pfd_at_end
+        detail["observed_unavailable_hours_12m"] = obs12.unavailable_hours
+        detail["observed_episodes"] = _episodes_detail(d, observed[-1], obs12)
+        detail["rates"] = _rates_detail(d, rates)
+        flags.extend(last12.flags)
+        projection_missing = None
+        if due_on:
+            due_at = max(_aware(due_on), end)
+            full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
+            proj = eng_hist.projection(history_input(d, rates, assume_closed_after=end), end,
+                                       due_at, interval_hours=full_t1)
+            a.projected_pfd_avg = proj.pfd_avg
+            detail["projection"] = {"next_test_on": due_on.isoformat(),
+                                    "horizon_end": proj.window_end.isoformat()}
+        else:
+            projection_missing = "no full proof test is planned, so nothing is due"
+        target = design.target_pfd_avg
+        low = sif.demand_mode == choices.DemandMode.LOW
+        if low and a.achieved_pfd_avg is not None:
+            a.achieved_sil = eng_sil.sil_from_pfd(a.achieved_pfd_avg)
+        if low and target and a.achieved_pfd_avg > target:
+            flags.append(f"Achieved PFDavg over the last 12 months {a.achieved_pfd_avg:.2e} "
+                         f"exceeds the required {target:.2e}" + _reasons(d, last12, start_12))
+        if low and target and obs12.unavailability > target:
+            flags.append(f"Observed unavailability over the last 12 months "
+                         f"{obs12.unavailability:.2e} ({obs12.unavailable_hours:.0f} h) exceeds "
+                         f"the required {target:.2e}: failures found show the function could "
+                         "not act for part of the time.")
+        drivers = _drivers(d, design, result, last12, obs12, rates, start_12)
+        for entry in detail["subsystems"]:
+            entry["drivers"] = drivers.get(entry["name"], [])
+        detail["drivers"] = drivers.get(None, [])
+        flags.extend(_field_flags(d, type_stats, as_of))
+        verdict = eng_verdict.judge(
+            target_sil=sif.target_sil, low_demand=low, target_pfd_avg=target,
+            target_pfh_per_hour=design.target_pfh_per_hour, design_pfd_avg=result.pfd_avg,
+            design_pfh_per_hour=result.pfh_per_hour, achieved_pfd_avg_12m=a.achieved_pfd_avg,
+            observed_unavailability_12m=a.observed_unavailability,
+            projected_pfd_avg=a.projected_pfd_avg, projection_missing=projection_missing,
+            architectural_sil=result.architectural_sil,
+            systematic_capability=result.systematic_capability)
+        a.verdict = verdict.as_dict()
+        a.meets_target = verdict.meets
+        payload = {"design": [vars(s) | {"voting": str(s.voting)} for s in design.subsystems],
+                   "events": [(c.obj.pk, [(e.at.isoformat(), e.kind, e.failed)
+                                          for e in c.events]) for c in d.all_components()],
+                   "bypasses": [(b.started_at, b.ended_at) for b in d.bypasses],
+                   "rates": rates.basis, "as_of": as_of}
+        a.inputs_digest = _digest(payload)
+    except EngineError as exc:
+        a.error = str(exc)
+        a.verdict = eng_verdict.judge(target_sil=sif.target_sil, error=str(exc)).as_dict()
+        a.meets_target = None
+        flags.append(f"Could not be calculated: {exc}")
+        a.inputs_digest = _digest({"error": str(exc), "sif": sif.pk})
+    a.flags = flags
+    a.detail = detail
+    return a
+
+
+def _episodes_detail(d: SifData, since: eng_obs.ObservedResult,
+                     last12: eng_obs.ObservedResult) -> list[dict]:
+    """Observed episodes since in service, with the hours inside the last 12 months."""
+    in12 = {(e.group, e.channels, e.found_at): e.hours_in_window for e in last12.episodes}
+    out = []
+    for e in since.episodes:
+        sub = next((s for s in d.subsystems if s.name == e.group), None)
+        comps = d.components.get(sub.pk, []) if sub else []
+        out.append({
+            "subsystem": e.group,
+            "components": [comps[i].obj.tag for i in e.channels if i < len(comps)],
+            "onset_from": e.onset_from.isoformat(), "onset_to": e.found_at.isoformat(),
+            "restored_at": e.restored_at.isoformat(),
+            "hours_in_window": in12.get((e.group, e.channels, e.found_at), 0.0),
+            "hours": e.hours_in_window, "common_cause": e.common_cause,
+            "found_by": {"full": "full test", "partial": "partial test"}.get(e.found_by,
+                                                                             e.found_by),
+        })
+    return out
+
+
+def _rates_detail(d: SifData, rates: RateTable) -> list[dict]:
+    """Each component's design, type and own rate, and whether it is a repeat offender."""
+    out = []
+    for cd in d.all_components():
+        c = cd.obj
+        dev = rates.device(c, cd.events)
+        out.append({
+            "component": c.tag, "component_id": c.pk,
+            "device_type": c.device_type.name if c.device_type_id else "",
+            "design_per_hour": c.lambda_du, "type_per_hour": rates.type_rate(c),
+            "own_per_hour": dev.rate, "used_per_hour": rates.lambda_du(c, cd.events),
+            "failures": dev.failures, "hours": dev.hours,
+            "repeat_offender": dev.repeat_offender,
+            "reason": ("fails significantly more often than its device type: "
+                       + dev.excess.reason.replace("the assumed rate is too low",
+                                                   "the type's rate does not fit this device")
+                       ) if dev.repeat_offender else dev.excess.reason,
+        })
+    return out
+
+
+def _drivers(d: SifData, design, result, last12, obs12, rates: RateTable, start_12
+             ) -> dict[str | None, list[str]]:
+    """What moves the achieved and observed figures away from the design, per subsystem
+    (key: its name) and for the whole SIF (key None), in plain words."""
+    out: dict[str | None, list[str]] = defaultdict(list)
+    end = last12.window_end
+    for sub, sin in zip(d.subsystems, design.subsystems):
+        lines = out[sub.name]
+        comps = d.components.get(sub.pk, [])
+        found = [(cd.obj.tag, e) for cd in comps for e in cd.events
+                 if e.failed and start_12 <= e.at <= end]
+        if found:
+            tags = sorted({t for t, _ in found})
+            lines.append(f"{len(found)} dangerous undetected failure(s) found in the last 12 "
+                         f"months ({', '.join(tags)}): the function was probably failed for "
+                         "part of the interval before each finding (observed figure)")
+        interval = sin.proof_test_interval_hours
+        late = []
+        for cd in comps:
+            full = [e.at for e in cd.events if e.kind == "full"]
+            prev = _aware(cd.obj.in_service_on) if cd.obj.in_service_on else None
+            for at in full + [end]:
+                if prev is not None and at >= start_12 and (
+                        at - prev).total_seconds() / 3600 > interval + 24:
+                    late.append(cd.obj.tag)
+                    break
+                prev = at
+        if late:
+            lines.append(f"full proof test later than its {interval / HOURS_PER_MONTH:.0f}-month "
+                         f"interval in the last 12 months or now overdue ({', '.join(late)}): "
+                         "the hidden-failure probability kept growing")
+        if sin.proof_test_coverage < 1:
+            lines.append(f"{1 - sin.proof_test_coverage:.0%} of λDU is not revealed by the proof "
+                         "test and keeps accumulating until replacement or overhaul")
+        high = []
+        for cd in comps:
+            used = rates.lambda_du(cd.obj, cd.events)
+            if cd.obj.lambda_du > 0 and used > 1.1 * cd.obj.lambda_du:
+                high.append(f"{cd.obj.tag} {used:.2e}/h = {used / cd.obj.lambda_du:.1f}x design")
+        if high:
+            lines.append("failure rate from field data above the design rate ("
+                         + "; ".join(high) + ")")
+    if last12.bypass_hours > 0:
+        out[None].append(f"{last12.bypass_hours:.0f} h in bypass without equivalent measures "
+                         "in the last 12 months (counted as unable to act)")
+    for sub in d.subsystems:
+        out[None].extend(f"{sub.name}: {x}" for x in out[sub.name])
+    return out
+
+
+def _reasons(d: SifData, res, start) -> str:
+    bits = []
+    if res.bypass_hours > 0:
+        bits.append(f"{res.bypass_hours:.0f} h in bypass without equivalent measures")
+    failed = sum(1 for c in d.all_components() for e in c.events if e.failed and e.at >= start)
+    if failed:
+        bits.append(f"{failed} dangerous failure(s) found in the window")
+    return (": " + "; ".join(bits) + ".") if bits else "."
+
+
+def _field_flags(d: SifData, type_stats, as_of) -> list[str]:
+    out = []
+    seen = set()
+    for c in d.all_components():
+        ts = type_stats.get(c.obj.device_type_id)
+        if ts and ts.stats.exceeds_assumed and ts.device_type.pk not in seen:
+            seen.add(ts.device_type.pk)
+            out.append(f"Device type '{ts.device_type.name}': {ts.stats.reason}")
+    demand_rate = observed_demand_flag(d, as_of)
+    if demand_rate:
+        out.append(demand_rate)
+    return out
+
+
+def observed_demand_flag(d: SifData, as_of: dt.datetime) -> str | None:
+    """Flag a SIF whose real demands are significantly more frequent than LOPA assumed."""
+    if not d.scenarios:
+        return None
+    assumed = assumed_demand_rate(d.scenarios)
+    start = d.sif.in_service_on
+    if not start:
+        return None
+    years = max((as_of.date() - start).days / 365.0, 1 / 365)
+    real = [x for x in d.demands if not x.spurious]
+    test = eng_field.demand_rate_test(len(real), years, assumed, alpha=SIGNIFICANCE)
+    if test.exceeds:
+        return (f"Observed demand rate {len(real) / years:.2g}/y ({len(real)} in {years:.1f} y) "
+                f"exceeds the LOPA assumption {assumed:.2g}/y ({test.reason}).")
+    return None
+
+
+def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = None
+                   ) -> list[Assessment]:
+    """Recompute and store an assessment for every SIF in the queryset.
+
+    One bad SIF never stops the others: its assessment carries the error instead.
+    """
+    as_of = as_of or timezone.now()
+    loaded = load(sif_queryset)
+    if not loaded:
+        return []
+    site_ids = {d.sif.unit.site_id for d in loaded}
+    types = {c.obj.device_type_id for d in loaded for c in d.all_components()}
+    stats_by_site = {sid: device_type_stats(sid, as_of.date(), types) for sid in site_ids}
+    sites = {d.sif.unit.site_id: d.sif.unit.site for d in loaded}
+    rates = {sid: rate_table(sites[sid], stats_by_site[sid], as_of.date()) for sid in site_ids}
+    dues = _full_due_dates(sif_queryset, as_of.date())
+    out = []
+    for d in loaded:
+        sid = d.sif.unit.site_id
+        try:
+            out.append(assess(d, as_of, rates[sid], stats_by_site[sid],
+                              due_on=dues.get(d.sif.pk), trigger=trigger))
+        except Exception as exc:
+            log.exception("assessment of %s failed", d.sif.tag)
+            out.append(Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
+                                  trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
+                                  flags=[f"Could not be calculated: {exc}"],
+                                  inputs_digest=_digest({"error": str(exc)})))
+    previous = latest_assessments([a.sif_id for a in out])
+    Assessment.objects.bulk_create(out, batch_size=500)
+    from register.inbox.notices import notify_verdict_changes
+
+    notify_verdict_changes([(previous.get(a.sif_id), a) for a in out])
+    return out
+
+
+def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:
+    from register.schedule.due import compute_statuses
+
+    plans = TestPlan.objects.filter(sif__in=sif_queryset.values("pk"),
+                                    kind=choices.TestKind.FULL)
+    statuses = compute_statuses(plans, as_of)
+    sif_of = dict(plans.values_list("pk", "sif_id"))
+    out: dict[int, dt.date] = {}
+    for plan_id, st in statuses.items():
+        if st.due_on:
+            sif_id = sif_of[plan_id]
+            out[sif_id] = min(out.get(sif_id, st.due_on), st.due_on)
+    return out
+
+
+def latest_assessments(sif_ids) -> dict[int, Assessment]:
+    """Newest assessment per SIF, in one query."""
+    from django.db.models import OuterRef, Subquery
+
+    newest = Assessment.objects.filter(sif_id=OuterRef("sif_id")).order_by(
+        "-computed_at", "-id").values("id")[:1]
+    rows = Assessment.objects.filter(sif_id__in=sif_ids, id=Subquery(newest))
+    return {a.sif_id: a for a in rows}
+
+
+def pfd_series_for(sif: SafetyFunction, start: dt.datetime, end: dt.datetime, points=600):
+    """PFD(t) of one SIF between two dates, for charts."""
+    d = load(SafetyFunction.objects.filter(pk=sif.pk))[0]
+    stats = device_type_stats(sif.unit.site_id, end.date())
+    hist = history_input(d, rate_table(sif.unit.site, stats, end.date()))
+    return eng_hist.pfd_series(hist, start, end, points, as_of=end)
+
+
+def deferral_projection(plan: TestPlan, proposed_on: dt.date, as_of: dt.datetime | None = None):
+    """Projected PFDavg with the next full test on its due date vs on ``proposed_on``."""
+    from register.schedule.due import status_of
+
+    as_of = as_of or timezone.now()
+    d = load(SafetyFunction.objects.filter(pk=plan.sif_id))[0]
+    stats = device_type_stats(plan.sif.unit.site_id, as_of.date())
+    hist = history_input(d, rate_table(plan.sif.unit.site, stats, as_of.date()),
+                         assume_closed_after=as_of)
+    due = status_of(plan, as_of.date()).due_on
+    due_at = max(_aware(due), as_of)
+    proposed_at = max(_aware(proposed_on), as_of)
+    horizon = proposed_at + dt.timedelta(hours=plan.interval_hours)
+    cmp = eng_hist.compare_deferral(hist, as_of, due_at, proposed_at, horizon,
+                                    interval_hours=plan.interval_hours)
+    return cmp, target_pfd(d)

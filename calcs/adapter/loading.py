@@ -1,0 +1,162 @@
+"""Loading what N safety functions need in a fixed number of queries (the count does not
+grow with N)."""
+
+from __future__ import annotations
+
+import datetime as dt
+import logging
+from collections import defaultdict
+from dataclasses import dataclass, field
+
+from django.db.models import Q
+
+from calcs.engine import history as eng_hist
+from register import choices
+from register.models import (
+    Bypass,
+    Component,
+    ComponentResult,
+    ConditionalModifier,
+    Demand,
+    HazardScenario,
+    InitiatingCause,
+    ProtectionLayer,
+    SafetyFunction,
+    Subsystem,
+    TestPlan,
+)
+
+log = logging.getLogger(__name__)
+
+#: Tolerance of the self-check (history model on a perfect schedule vs design equations).
+SCHEDULE_TOLERANCE = eng_hist.DEFAULT_SCHEDULE_TOLERANCE
+#: Significance level for "more failures / demands than assumed" flags.
+SIGNIFICANCE = 0.05
+
+
+# ---------------------------------------------------------------------------------------
+# Loading: a fixed number of queries for any number of SIFs
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass
+class TestRow:
+    at: dt.datetime
+    kind: str  # engine kind: full / partial / demand
+    failed: bool
+    record_id: int | None = None
+    credited: bool = True  # a demand reveals failures only where a plan credits demands
+
+
+@dataclass
+class ComponentData:
+    obj: Component
+    events: list[TestRow] = field(default_factory=list)
+
+
+@dataclass
+class SifData:
+    sif: SafetyFunction
+    subsystems: list[Subsystem] = field(default_factory=list)
+    components: dict[int, list[ComponentData]] = field(default_factory=dict)  # by subsystem
+    plans: list[TestPlan] = field(default_factory=list)
+    plan_components: dict[int, set[int]] = field(default_factory=dict)
+    scenarios: list[HazardScenario] = field(default_factory=list)
+    bypasses: list[Bypass] = field(default_factory=list)
+    demands: list[Demand] = field(default_factory=list)
+
+    def all_components(self) -> list[ComponentData]:
+        return [c for subs in self.components.values() for c in subs]
+
+
+def load(sif_queryset) -> list[SifData]:
+    """Load everything the engine needs for these SIFs in a fixed number of queries."""
+    sifs = list(sif_queryset.select_related("unit__site"))
+    data = {s.pk: SifData(sif=s) for s in sifs}
+    if not data:
+        return []
+    scope = Q(sif__in=sif_queryset.values("pk"))
+    comp_of: dict[int, ComponentData] = {}
+    for sub in Subsystem.objects.filter(scope).order_by("sif_id", "position", "id"):
+        data[sub.sif_id].subsystems.append(sub)
+        data[sub.sif_id].components[sub.pk] = []
+    sub_sif = {sub.pk: sub.sif_id for d in data.values() for sub in d.subsystems}
+    for comp in Component.objects.filter(
+            subsystem__sif__in=sif_queryset.values("pk")).select_related("device_type"
+                                                                         ).order_by("tag", "id"):
+        cd = ComponentData(comp)
+        comp_of[comp.pk] = cd
+        data[sub_sif[comp.subsystem_id]].components[comp.subsystem_id].append(cd)
+    for plan in TestPlan.objects.filter(scope):
+        data[plan.sif_id].plans.append(plan)
+        data[plan.sif_id].plan_components[plan.pk] = set()
+    plan_sif = {p.pk: p.sif_id for d in data.values() for p in d.plans}
+    for plan_id, comp_id in TestPlan.components.through.objects.filter(
+            testplan_id__in=plan_sif).values_list("testplan_id", "component_id"):
+        data[plan_sif[plan_id]].plan_components[plan_id].add(comp_id)
+    _load_scenarios(data, sif_queryset)
+    for bp in Bypass.objects.filter(scope).order_by("started_at"):
+        data[bp.sif_id].bypasses.append(bp)
+    demand_failed = defaultdict(set)
+    for demand_id, comp_id in Demand.failed_components.through.objects.filter(
+            demand__sif__in=sif_queryset.values("pk")).values_list("demand_id", "component_id"):
+        demand_failed[demand_id].add(comp_id)
+    demand_ok = defaultdict(set)
+    for demand_id, comp_id in Demand.components_exercised.through.objects.filter(
+            demand__sif__in=sif_queryset.values("pk")).values_list("demand_id", "component_id"):
+        demand_ok[demand_id].add(comp_id)
+    for demand in Demand.objects.filter(scope).order_by("occurred_at"):
+        data[demand.sif_id].demands.append(demand)
+        plan_allows = any(p.demand_counts_as_test for p in data[demand.sif_id].plans)
+        for comp_id in demand_failed[demand.pk]:
+            if comp_id in comp_of:
+                comp_of[comp_id].events.append(TestRow(demand.occurred_at, "demand", True))
+        if demand.successful and plan_allows:
+            for comp_id in demand_ok[demand.pk] - demand_failed[demand.pk]:
+                if comp_id in comp_of:
+                    comp_of[comp_id].events.append(TestRow(demand.occurred_at, "demand", False))
+    # Test results: one streamed query, the largest table.
+    rows = (
+        ComponentResult.objects.filter(record__sif__in=sif_queryset.values("pk"),
+                                       record__superseded_by__isnull=True)
+        .exclude(record__status=choices.RecordStatus.DRAFT)
+        .exclude(record__kind=choices.TestKind.SIGN_OFF)
+        .values_list("component_id", "record__performed_at", "record__kind", "failure_mode",
+                     "as_found", "record_id")
+        .order_by("record__performed_at")
+    )
+    kind_map = {choices.TestKind.FULL: "full", choices.TestKind.VALIDATION: "full",
+                choices.TestKind.PARTIAL: "partial", choices.TestKind.DEMAND: "demand"}
+    credits_demands = {sif_id: any(p.demand_counts_as_test for p in d.plans)
+                       for sif_id, d in data.items()}
+    for comp_id, at, kind, mode, as_found, record_id in rows.iterator(chunk_size=5000):
+        cd = comp_of.get(comp_id)
+        if cd is None:
+            continue
+        failed = as_found == choices.Verdict.FAIL and mode == choices.FailureMode.DANGEROUS_UNDETECTED
+        credited = kind != choices.TestKind.DEMAND or credits_demands[
+            sub_sif[cd.obj.subsystem_id]]
+        cd.events.append(TestRow(at, kind_map[kind], failed, record_id, credited))
+    for cd in comp_of.values():
+        cd.events.sort(key=lambda e: e.at)
+    return [data[s.pk] for s in sifs]
+
+
+def _load_scenarios(data: dict[int, SifData], sif_queryset) -> None:
+    link = SafetyFunction.scenarios.through.objects.filter(
+        safetyfunction_id__in=sif_queryset.values("pk"))
+    pairs = list(link.values_list("safetyfunction_id", "hazardscenario_id"))
+    ids = {sc for _, sc in pairs}
+    scenarios = {s.pk: s for s in HazardScenario.objects.filter(pk__in=ids)}
+    for s in scenarios.values():
+        s.loaded_causes, s.loaded_layers, s.loaded_modifiers = [], [], []
+    for c in InitiatingCause.objects.filter(scenario_id__in=ids):
+        scenarios[c.scenario_id].loaded_causes.append(c)
+    for lay in ProtectionLayer.objects.filter(scenario_id__in=ids):
+        scenarios[lay.scenario_id].loaded_layers.append(lay)
+    for m in ConditionalModifier.objects.filter(scenario_id__in=ids):
+        scenarios[m.scenario_id].loaded_modifiers.append(m)
+    for sif_id, sc_id in pairs:
+        data[sif_id].scenarios.append(scenarios[sc_id])
+
+

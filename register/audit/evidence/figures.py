@@ -1,0 +1,62 @@
+"""The pack's figures: PFD(t) chart and achieved PFDavg over the period per SIF."""
+
+from __future__ import annotations
+
+from django.utils import timezone
+
+from register import presenters
+from register.audit.evidence.collect import (
+    CHART_POINTS,
+    Collected,
+    _iso,
+    _utc,
+)
+from register.calculations import calculations
+from register.charts import pack_pfd_chart
+from register.models import (
+    EvidencePack,
+)
+
+# ---------------------------------------------------------------------------------------
+# Figures: PFD(t) chart and achieved PFDavg over the period
+# ---------------------------------------------------------------------------------------
+
+
+def figures(pack: EvidencePack, col: Collected, progress=None) -> dict[int, bytes]:
+    """PFD(t) chart per SIF (PNG) and the achieved PFDavg over the period itself."""
+    if not col.loaded:
+        return {}
+    site = pack.site
+    t0 = _utc(pack.period_start)
+    t1 = min(_utc(pack.period_end, end=True), timezone.now())
+    types = {c.obj.device_type_id for d in col.loaded.values() for c in d.all_components()}
+    rates = calculations().rate_table(site, calculations().device_type_stats(site.pk, t1.date(), types),
+                               as_of=t1.date())
+    charts = {}
+    entries = {e["id"]: e for e in col.sifs}
+    n = len(col.sifs)
+    for i, entry in enumerate(col.sifs):
+        d = col.loaded[entry["id"]]
+        start = t0
+        first_service = min((c.obj.in_service_on for c in d.all_components()), default=None)
+        if first_service:
+            start = max(start, _utc(first_service))
+        if start >= t1:
+            entries[entry["id"]]["chart_note"] = "Not in service during the period."
+            continue
+        try:
+            achieved, times, values = calculations().period_figures(d, rates, start, t1,
+                                                             CHART_POINTS)
+            entry["period_achieved_pfd_avg"] = achieved
+            entry["period_window"] = [_iso(start), _iso(t1)]
+            episodes = presenters.observed_episodes(
+                (entry.get("assessment") or {}).get("detail"))
+            charts[entry["id"]] = pack_pfd_chart(entry["tag"], times, list(values),
+                                            entry.get("target_pfd_avg"), start, t1, episodes)
+        except calculations().EngineError as exc:
+            entry["chart_note"] = f"No chart: {exc}"
+        if progress and (i % 10 == 0 or i == n - 1):
+            progress(25 + int(40 * (i + 1) / n), f"Charts {i + 1} of {n}")
+    return charts
+
+

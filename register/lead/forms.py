@@ -1,0 +1,67 @@
+"""Forms of the lead's pages: design changes under change control, deferral decisions,
+spreadsheet import."""
+
+from __future__ import annotations
+
+from django import forms
+
+from register.models import Component, Site, Subsystem, TestPlan
+
+
+class ChangeControlMixin(forms.Form):
+    reason = forms.CharField(label="Reason for the change", max_length=300,
+                             widget=forms.TextInput(attrs={"autocomplete": "off"}))
+    reference = forms.CharField(label="Change request reference", max_length=40,
+                                help_text="The number of the approved change request.",
+                                widget=forms.TextInput(attrs={"autocomplete": "off"}))
+
+    def clean(self):
+        data = super().clean()
+        for name in ("reason", "reference"):
+            if name in data and not data[name].strip():
+                self.add_error(name, "Required for any design change.")
+        return data
+
+
+class ComponentChangeForm(ChangeControlMixin, forms.ModelForm):
+    class Meta:
+        model = Component
+        fields = ("lambda_du_per_hour", "lambda_dd_per_hour", "lambda_s_per_hour",
+                  "proof_test_coverage", "partial_test_coverage",)
+
+
+class SubsystemChangeForm(ChangeControlMixin, forms.ModelForm):
+    class Meta:
+        model = Subsystem
+        fields = ("voting", "beta", "beta_d",)
+
+
+class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
+    class Meta:
+        model = TestPlan
+        fields = ("interval_months",)
+
+
+FORMS = {"component": (Component, ComponentChangeForm),
+         "subsystem": (Subsystem, SubsystemChangeForm),
+         "plan": (TestPlan, PlanChangeForm)}
+
+
+class ImportForm(forms.Form):
+    site = forms.ModelChoiceField(queryset=Site.objects.none())
+    file = forms.FileField(label="Spreadsheet (.xlsx or .csv)")
+    reference = forms.CharField(label="Change request reference", max_length=40)
+
+    def __init__(self, *args, sites=None, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.fields["site"].queryset = sites if sites is not None else Site.objects.none()
+        if sites is not None and len(sites) == 1:
+            self.fields["site"].initial = sites[0].pk
+
+    def clean_file(self):
+        f = self.cleaned_data["file"]
+        if not f.name.lower().endswith((".xlsx", ".csv")):
+            raise forms.ValidationError("Give a .xlsx or .csv file.")
+        if f.size > 10 * 1024 * 1024:
+            raise forms.ValidationError("The file is larger than 10 MB.")
+        return f

@@ -1,0 +1,714 @@
+"""Import and export of a site's SIF list, components and test history (.xlsx or .csv).
+
+One table, the same in both formats (see README, "Spreadsheet columns"): the first
+column, ``record``, says what a row describes (``sif``, ``component`` or ``test``), and
+each kind of row fills the columns it needs. An import is checked completely first
+(:func:`plan_import` lists, row by row, what would be created or changed and every
+error with its row and column); only a file without errors is written, in one
+transaction, through the models' ``full_clean()`` and ``register.services``
+(:func:`apply_import`). Exporting and importing the same file changes nothing.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+import re
+from collections import OrderedDict, defaultdict
+from dataclasses import dataclass, field
+
+from django.core.exceptions import ValidationError
+from django.db import transaction
+from django.utils import timezone
+from openpyxl import Workbook, load_workbook
+from openpyxl.utils import get_column_letter
+
+from register import choices, services
+from register.calculations import calculations
+from register.models import (
+    Component,
+    ComponentResult,
+    DeviceType,
+    PlantUnit,
+    SafetyFunction,
+    Site,
+    Subsystem,
+    TestPlan,
+    TestRecord,
+)
+from register.permissions import Action, require
+from register.rules import result_problems
+from register.schedule import followup
+
+COLUMNS = [
+    "record", "unit", "sif_tag", "sif_name", "safe_state", "demand_mode", "target_sil",
+    "target_pfd_avg", "life_stage", "in_service_on", "proof_test_interval_months",
+    "subsystem", "role", "voting", "beta", "beta_d", "component_tag", "device_type",
+    "lambda_du", "lambda_dd", "lambda_s", "rate_unit", "proof_test_coverage",
+    "partial_test_coverage", "test_performed_at", "test_kind", "as_found", "as_left",
+    "failure_mode", "failure_description", "work_done", "remarks",
+]
+SHEET_NAME = "Register"
+FULL_PLAN_NAME = "Full proof test"
+#: A failure rate above this (per hour) is refused as implausible: 1e-4 /h is 100 000 FIT,
+#: a dangerous failure about once a year, far above any device fit for a SIF. A value
+#: such as 500 is almost always a rate in FIT written without its unit.
+FIT = 1e-9
+RATE_FIELDS = {"lambda_du": "lambda_du_per_hour", "lambda_dd": "lambda_dd_per_hour",
+               "lambda_s": "lambda_s_per_hour"}
+
+
+# ---------------------------------------------------------------------------------------
+# Export
+# ---------------------------------------------------------------------------------------
+
+
+def _num(value):
+    return "" if value is None else value
+
+
+def export_rows(sif_queryset) -> list[dict]:
+    """The rows for these SIFs: each SIF, its components, its current signed tests."""
+    sifs = list(sif_queryset.select_related("unit").order_by("unit__code", "tag"))
+    ids = SafetyFunction.objects.filter(pk__in=sif_queryset.values("pk")).values("pk")
+    plans = defaultdict(list)
+    for plan in TestPlan.objects.filter(sif_id__in=ids, kind=choices.TestKind.FULL).order_by(
+            "name", "id"):
+        plans[plan.sif_id].append(plan)
+    comps = defaultdict(list)
+    for c in Component.objects.filter(subsystem__sif_id__in=ids).select_related(
+            "subsystem", "device_type").order_by("subsystem__position", "subsystem_id", "tag"):
+        comps[c.subsystem.sif_id].append(c)
+    current = (TestRecord.objects.filter(sif_id__in=ids, superseded_by__isnull=True)
+               .exclude(status=choices.RecordStatus.DRAFT))
+    results = defaultdict(list)
+    for r in ComponentResult.objects.filter(record__in=current).select_related(
+            "component").order_by("component__tag"):
+        results[r.record_id].append(r)
+    tests = defaultdict(list)
+    for rec in current.order_by("performed_at", "id"):
+        rec.loaded_results = results[rec.pk]
+        tests[rec.sif_id].append(rec)
+    rows = []
+    for s in sifs:
+        base = {"unit": s.unit.code, "sif_tag": s.tag}
+        plan = plans[s.pk][0] if plans[s.pk] else None
+        rows.append({**base, "record": "sif", "sif_name": s.name, "safe_state": s.safe_state,
+                     "demand_mode": s.demand_mode, "target_sil": s.target_sil,
+                     "target_pfd_avg": _num(s.target_pfd_avg), "life_stage": s.life_stage,
+                     "in_service_on": s.in_service_on.isoformat() if s.in_service_on else "",
+                     "proof_test_interval_months": plan.interval_months if plan else ""})
+        for c in comps[s.pk]:
+            sub = c.subsystem
+            rows.append({**base, "record": "component", "subsystem": sub.name,
+                         "role": sub.role, "voting": sub.voting, "beta": sub.beta,
+                         "beta_d": sub.beta_d, "component_tag": c.tag,
+                         "device_type": c.device_type.name,
+                         "in_service_on": c.in_service_on.isoformat(),
+                         "lambda_du": _num(c.lambda_du_per_hour),
+                         "lambda_dd": _num(c.lambda_dd_per_hour),
+                         "lambda_s": _num(c.lambda_s_per_hour), "rate_unit": "per hour",
+                         "proof_test_coverage": c.proof_test_coverage,
+                         "partial_test_coverage": c.partial_test_coverage})
+        for rec in tests[s.pk]:
+            at = rec.performed_at.astimezone(dt.UTC).isoformat()
+            for r in rec.loaded_results:
+                rows.append({**base, "record": "test", "component_tag": r.component.tag,
+                             "test_performed_at": at, "test_kind": rec.kind,
+                             "as_found": r.as_found, "as_left": r.as_left,
+                             "failure_mode": r.failure_mode,
+                             "failure_description": r.failure_description,
+                             "work_done": r.work_done, "remarks": rec.remarks})
+    return [{col: row.get(col, "") for col in COLUMNS} for row in rows]
+
+
+def to_csv(rows: list[dict]) -> bytes:
+    buf = io.StringIO()
+    writer = csv.DictWriter(buf, fieldnames=COLUMNS, lineterminator="\n")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({k: (repr(v) if isinstance(v, float) else v) for k, v in row.items()})
+    return buf.getvalue().encode("utf-8-sig")
+
+
+def to_xlsx(rows: list[dict]) -> bytes:
+    wb = Workbook()
+    ws = wb.active
+    ws.title = SHEET_NAME
+    ws.append(COLUMNS)
+    for row in rows:
+        ws.append([None if row[c] == "" else row[c] for c in COLUMNS])
+    ws.freeze_panes = "A2"
+    for i, col in enumerate(COLUMNS, start=1):
+        ws.column_dimensions[get_column_letter(i)].width = max(12, len(col) + 2)
+    buf = io.BytesIO()
+    wb.save(buf)
+    return buf.getvalue()
+
+
+# ---------------------------------------------------------------------------------------
+# Reading
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CellError:
+    row: int  # spreadsheet row number, the header is row 1
+    column: str  # column name ("" for the whole row)
+    message: str
+
+    @property
+    def letter(self) -> str:
+        return get_column_letter(COLUMNS.index(self.column) + 1) if self.column in COLUMNS \
+            else ""
+
+    def __str__(self):
+        where = f"row {self.row}" + (f", column {self.column} ({self.letter})"
+                                     if self.column else "")
+        return f"{where}: {self.message}"
+
+
+class FileError(Exception):
+    """The file cannot be read as a register table at all."""
+
+
+def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
+    """Rows as (row number, {column: text or value}); blank rows skipped."""
+    name = filename.lower()
+    if name.endswith(".csv"):
+        try:
+            text = data.decode("utf-8-sig")
+        except UnicodeDecodeError as exc:
+            raise FileError("The CSV file is not UTF-8 text.") from exc
+        raw = list(csv.reader(io.StringIO(text)))
+    elif name.endswith(".xlsx"):
+        try:
+            wb = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+        except Exception as exc:
+            raise FileError("The file is not a readable .xlsx workbook.") from exc
+        ws = wb[SHEET_NAME] if SHEET_NAME in wb.sheetnames else wb.worksheets[0]
+        raw = [list(r) for r in ws.iter_rows(values_only=True)]
+    else:
+        raise FileError("Give a .xlsx or .csv file.")
+    if not raw:
+        raise FileError("The file is empty.")
+    header = [str(h or "").strip().lower() for h in raw[0]]
+    missing = [c for c in ("record", "unit", "sif_tag") if c not in header]
+    if missing:
+        raise FileError(f"Row 1 must name the columns; missing: {', '.join(missing)}.")
+    unknown = [h for h in header if h and h not in COLUMNS]
+    if unknown:
+        raise FileError(f"Unknown column(s) in row 1: {', '.join(unknown)}.")
+    rows = []
+    for number, values in enumerate(raw[1:], start=2):
+        row = {}
+        for col, value in zip(header, values):
+            if not col:
+                continue
+            if isinstance(value, str):
+                value = value.strip()
+            row[col] = "" if value is None else value
+        if any(v != "" for v in row.values()):
+            rows.append((number, row))
+    return rows
+
+
+# ---------------------------------------------------------------------------------------
+# Checking: what would happen, and every error
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass
+class Step:
+    row: int
+    action: str  # create / change / unchanged
+    what: str
+    detail: str = ""
+
+
+@dataclass
+class ImportPlan:
+    steps: list[Step] = field(default_factory=list)
+    errors: list[CellError] = field(default_factory=list)
+    # Resolved operations, in order, for apply_import.
+    sif_ops: list = field(default_factory=list)
+    comp_ops: list = field(default_factory=list)
+    test_ops: list = field(default_factory=list)
+
+    @property
+    def changes(self) -> int:
+        return sum(1 for s in self.steps if s.action != "unchanged")
+
+
+class _Row:
+    """Typed access to one row's cells, collecting errors with row and column."""
+
+    def __init__(self, number: int, cells: dict, errors: list):
+        self.n, self.cells, self.errors = number, cells, errors
+
+    def err(self, col, msg):
+        self.errors.append(CellError(self.n, col, msg))
+
+    def text(self, col, required=False):
+        value = self.cells.get(col, "")
+        if isinstance(value, float) and value.is_integer():
+            value = int(value)
+        value = "" if value is None else str(value).strip()
+        if required and not value:
+            self.err(col, "is required for this kind of row.")
+        return value
+
+    def number(self, col, *, required=False, low=None, high=None, integer=False):
+        value = self.cells.get(col, "")
+        if value == "" or value is None:
+            if required:
+                self.err(col, "is required for this kind of row.")
+            return None
+        try:
+            num = float(str(value).replace(",", ".")) if isinstance(value, str) \
+                else float(value)
+        except ValueError:
+            self.err(col, f"'{value}' is not a number.")
+            return None
+        if integer:
+            if not num.is_integer():
+                self.err(col, f"'{value}' must be a whole number.")
+                return None
+            num = int(num)
+        if (low is not None and num < low) or (high is not None and num > high):
+            self.err(col, f"{value} is outside {low:g} .. {high:g}.")
+            return None
+        return num
+
+    def choice(self, col, options, required=True, default=""):
+        value = self.text(col).lower()
+        if not value:
+            if required and not default:
+                self.err(col, "is required for this kind of row.")
+            return default
+        if value not in options:
+            self.err(col, f"'{value}' is not one of: {', '.join(options)}.")
+            return None
+        return value
+
+    def date(self, col, required=False):
+        value = self.cells.get(col, "")
+        if isinstance(value, dt.datetime):
+            return value.date()
+        if isinstance(value, dt.date):
+            return value
+        text = self.text(col, required)
+        if not text:
+            return None
+        try:
+            return dt.date.fromisoformat(text[:10])
+        except ValueError:
+            self.err(col, f"'{text}' is not a date (write YYYY-MM-DD).")
+            return None
+
+    def moment(self, col):
+        value = self.cells.get(col, "")
+        if isinstance(value, dt.datetime):
+            return value if value.tzinfo else value.replace(tzinfo=dt.UTC)
+        if isinstance(value, dt.date):
+            return dt.datetime.combine(value, dt.time(0, 0), tzinfo=dt.UTC)
+        text = self.text(col, required=True)
+        if not text:
+            return None
+        try:
+            at = dt.datetime.fromisoformat(text)
+        except ValueError:
+            self.err(col, f"'{text}' is not a date and time (write YYYY-MM-DD HH:MM).")
+            return None
+        return at if at.tzinfo else at.replace(tzinfo=dt.UTC)
+
+    def rate(self, col):
+        """A failure rate per hour from a cell in per-hour or FIT (unit column or suffix)."""
+        value = self.cells.get(col, "")
+        if value == "" or value is None:
+            return None
+        text = str(value).strip()
+        scale = 1.0
+        match = re.fullmatch(r"(.*?)\s*(fit|/h|per hour)", text, flags=re.IGNORECASE)
+        if match:
+            text, suffix = match.group(1), match.group(2).lower()
+            scale = FIT if suffix == "fit" else 1.0
+        else:
+            unit = self.text("rate_unit").lower()
+            if unit in ("fit", "fits"):
+                scale = FIT
+            elif unit not in ("", "per hour", "/h", "1/h", "per_hour"):
+                self.err("rate_unit", f"'{unit}' is not a rate unit; write 'per hour' or "
+                                      "'FIT'.")
+                return None
+        try:
+            number = float(text.replace(",", "."))
+        except ValueError:
+            self.err(col, f"'{value}' is not a failure rate.")
+            return None
+        per_hour = number * scale
+        if per_hour < 0:
+            self.err(col, "A failure rate cannot be negative.")
+            return None
+        limit = calculations().MAX_PLAUSIBLE_RATE_PER_HOUR  # the one plausibility rule
+        if per_hour > limit:
+            self.err(col, f"{value} per hour is not a plausible failure rate (at most "
+                          f"{limit:g} per hour). If it is in FIT, write "
+                          f"'{text} FIT' or put FIT in rate_unit.")
+            return None
+        return per_hour
+
+
+def _differs(obj, values: dict) -> list[str]:
+    out = []
+    for name, new in values.items():
+        old = getattr(obj, name)
+        if isinstance(old, float) and isinstance(new, (int, float)):
+            if new is None or abs(old - new) > 1e-12 * max(abs(old), abs(new)):
+                out.append(f"{name}: {old:g} → {new:g}")
+        elif old != new:
+            out.append(f"{name}: {old if old not in (None, '') else '—'} → "
+                       f"{new if new not in (None, '') else '—'}")
+    return out
+
+
+def _clean(instance, row: _Row, exclude=(), column_of=None):
+    try:
+        instance.full_clean(exclude=list(exclude), validate_unique=False)
+    except ValidationError as exc:
+        for key, msgs in exc.message_dict.items():
+            col = (column_of or {}).get(key, "" if key == "__all__" else key)
+            for m in msgs:
+                row.err(col if col in COLUMNS else "", f"{key}: {m}" if col not in COLUMNS
+                        else m)
+
+
+SIF_COLS = {"name": "sif_name", "safe_state": "safe_state", "demand_mode": "demand_mode",
+            "target_sil": "target_sil", "target_pfd_avg": "target_pfd_avg",
+            "life_stage": "life_stage", "in_service_on": "in_service_on", "unit": "unit",
+            "tag": "sif_tag", "target_pfh_per_hour": "target_pfd_avg"}
+COMP_COLS = {"lambda_du_per_hour": "lambda_du", "lambda_dd_per_hour": "lambda_dd",
+             "lambda_s_per_hour": "lambda_s", "proof_test_coverage": "proof_test_coverage",
+             "partial_test_coverage": "partial_test_coverage", "in_service_on": "in_service_on",
+             "tag": "component_tag", "device_type": "device_type", "voting": "voting",
+             "beta": "beta", "beta_d": "beta_d", "role": "role", "name": "subsystem"}
+
+
+def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
+    """Check every row against the site's register; nothing is written."""
+    plan = ImportPlan()
+    errors = plan.errors
+    units = {u.code: u for u in PlantUnit.objects.filter(site=site)}
+    types = {t.name.lower(): t for t in DeviceType.objects.all()}
+    existing = {(s.unit.code, s.tag): s for s in SafetyFunction.objects.filter(
+        unit__site=site).select_related("unit")}
+    subs = {(s.sif_id, s.name): s for s in Subsystem.objects.filter(sif__unit__site=site)}
+    comps = {}
+    comp_owner = {}
+    for c in Component.objects.filter(subsystem__sif__unit__site=site).select_related(
+            "subsystem"):
+        comps[(c.subsystem.sif_id, c.tag)] = c
+        comp_owner.setdefault(c.tag, c.subsystem.sif_id)
+    full_plans = {}
+    for p in TestPlan.objects.filter(sif__unit__site=site, kind=choices.TestKind.FULL
+                                     ).order_by("name", "id"):
+        full_plans.setdefault(p.sif_id, p)
+    seen_sif, seen_comp = {}, {}
+    file_sifs = set()
+    tests = OrderedDict()
+
+    kinds = ["sif", "component", "test"]
+    for number, cells in rows:
+        row = _Row(number, cells, errors)
+        kind = row.choice("record", kinds)
+        if kind is None:
+            continue
+        unit_code = row.text("unit", required=True)
+        tag = row.text("sif_tag", required=True)
+        unit = units.get(unit_code)
+        if unit_code and unit is None:
+            row.err("unit", f"Unknown unit '{unit_code}' at {site.name}; known: "
+                            f"{', '.join(sorted(units)) or 'none'}.")
+        key = (unit_code, tag)
+        if kind == "sif":
+            if key in seen_sif:
+                row.err("sif_tag", f"Duplicate SIF tag {tag} in unit {unit_code} (first on "
+                                   f"row {seen_sif[key]}).")
+                continue
+            seen_sif[key] = number
+            file_sifs.add(key)
+            values = {
+                "name": row.text("sif_name", required=True),
+                "safe_state": row.text("safe_state", required=True),
+                "demand_mode": row.choice("demand_mode", choices.DemandMode.values,
+                                          default=choices.DemandMode.LOW),
+                "target_sil": row.number("target_sil", required=True, low=1, high=4,
+                                         integer=True),
+                "target_pfd_avg": row.number("target_pfd_avg", low=1e-9, high=1.0),
+                "life_stage": row.choice("life_stage", choices.LifeStage.values,
+                                         default=choices.LifeStage.IN_SERVICE),
+                "in_service_on": row.date("in_service_on"),
+            }
+            interval = row.number("proof_test_interval_months", low=1, high=240, integer=True)
+            if unit is None or not tag:
+                continue
+            sif = existing.get(key)
+            if sif is None:
+                probe = SafetyFunction(unit=unit, tag=tag, **values)
+                _clean(probe, row, column_of=SIF_COLS)
+                plan.steps.append(Step(number, "create", f"SIF {tag}",
+                                       f"{values['name']}, SIL {values['target_sil']}"))
+                plan.sif_ops.append((number, None, unit, tag, values, interval))
+            else:
+                diff = _differs(sif, values)
+                fp = full_plans.get(sif.pk)
+                if interval is not None and (fp is None or fp.interval_months != interval):
+                    diff.append(f"proof-test interval: "
+                                f"{fp.interval_months if fp else '—'} → {interval} months")
+                if diff:
+                    probe = SafetyFunction.objects.get(pk=sif.pk)
+                    for k, v in values.items():
+                        setattr(probe, k, v)
+                    _clean(probe, row, column_of=SIF_COLS)
+                plan.steps.append(Step(number, "change" if diff else "unchanged",
+                                       f"SIF {tag}", "; ".join(diff)))
+                plan.sif_ops.append((number, sif, unit, tag, values, interval))
+            continue
+
+        sif = existing.get(key)
+        if unit is not None and tag and sif is None and key not in file_sifs:
+            row.err("sif_tag", f"SIF {tag} is neither in unit {unit_code} nor on a 'sif' row "
+                               "above.")
+            continue
+        comp_tag = row.text("component_tag", required=True)
+        if kind == "component":
+            ckey = (unit_code, tag, comp_tag)
+            if ckey in seen_comp:
+                row.err("component_tag", f"Duplicate component tag {comp_tag} in SIF {tag} "
+                                         f"(first on row {seen_comp[ckey]}).")
+                continue
+            seen_comp[ckey] = number
+            owner = comp_owner.get(comp_tag)
+            if comp_tag and owner is not None and (sif is None or owner != sif.pk):
+                other = next((s.tag for s in existing.values() if s.pk == owner), "?")
+                row.err("component_tag", f"Tag {comp_tag} is already used by SIF {other}.")
+            type_name = row.text("device_type", required=True)
+            dtype = types.get(type_name.lower())
+            if type_name and dtype is None:
+                row.err("device_type", f"Unknown device type '{type_name}'; add it to the "
+                                       "library first.")
+            sub_values = {
+                "role": row.choice("role", choices.SubsystemRole.values),
+                "voting": row.text("voting", required=True),
+                "beta": row.number("beta", low=0, high=1) or 0.0,
+                "beta_d": row.number("beta_d", low=0, high=1) or 0.0,
+            }
+            comp_values = {
+                "lambda_du_per_hour": row.rate("lambda_du"),
+                "lambda_dd_per_hour": row.rate("lambda_dd"),
+                "lambda_s_per_hour": row.rate("lambda_s"),
+                "proof_test_coverage": row.number("proof_test_coverage", low=0, high=1),
+                "partial_test_coverage": row.number("partial_test_coverage", low=0, high=1),
+                "in_service_on": row.date("in_service_on", required=True),
+            }
+            if comp_values["proof_test_coverage"] is None:
+                comp_values["proof_test_coverage"] = 1.0
+            if comp_values["partial_test_coverage"] is None:
+                comp_values["partial_test_coverage"] = 0.0
+            sub_name = row.text("subsystem", required=True)
+            if dtype is None or unit is None or not comp_tag or not sub_name:
+                continue
+            sub = subs.get((sif.pk, sub_name)) if sif else None
+            sub_diff = _differs(sub, sub_values) if sub else []
+            probe_sub = Subsystem(name=sub_name, **sub_values)
+            _clean(probe_sub, row, exclude=["sif"], column_of=COMP_COLS)
+            comp = comps.get((sif.pk, comp_tag)) if sif else None
+            if comp is None:
+                probe = Component(tag=comp_tag, device_type=dtype, **comp_values)
+                _clean(probe, row, exclude=["subsystem"], column_of=COMP_COLS)
+                plan.steps.append(Step(number, "create", f"Component {comp_tag} of {tag}",
+                                       f"{sub_name} ({sub_values['voting']}), {dtype.name}"
+                                       + ("; subsystem " + "; ".join(sub_diff)
+                                          if sub_diff else "")))
+            else:
+                diff = _differs(comp, {**comp_values, "device_type_id": dtype.pk})
+                if comp.subsystem.name != sub_name:
+                    diff.append(f"subsystem: {comp.subsystem.name} → {sub_name}")
+                    row.err("subsystem", "Moving a component to another subsystem is not "
+                                         "done by import.")
+                diff += [f"subsystem {d}" for d in sub_diff]
+                if diff:
+                    probe = Component.objects.get(pk=comp.pk)
+                    for k, v in comp_values.items():
+                        setattr(probe, k, v)
+                    _clean(probe, row, column_of=COMP_COLS)
+                plan.steps.append(Step(number, "change" if diff else "unchanged",
+                                       f"Component {comp_tag} of {tag}", "; ".join(diff)))
+            plan.comp_ops.append((number, key, sub_name, sub_values, comp_tag, dtype,
+                                  comp_values))
+            continue
+
+        # test rows: grouped into one record per (SIF, moment, kind)
+        at = row.moment("test_performed_at")
+        test_kind = row.choice("test_kind", choices.TestKind.values)
+        verdicts = choices.Verdict.values
+        result = {
+            "as_found": row.choice("as_found", verdicts),
+            "as_left": row.choice("as_left", verdicts),
+            "failure_mode": row.choice("failure_mode", choices.FailureMode.values,
+                                       required=False),
+            "failure_description": row.text("failure_description"),
+            "work_done": row.text("work_done"),
+        }
+        if at and at > timezone.now():
+            row.err("test_performed_at", "The test date is in the future.")
+        known = (sif and (sif.pk, comp_tag) in comps) or (unit_code, tag, comp_tag) in \
+            seen_comp
+        if comp_tag and not known:
+            row.err("component_tag", f"Component {comp_tag} is not part of SIF {tag}.")
+        for column, message in result_problems(**result).items():
+            row.err(column, message)  # the result columns are named like the fields
+        if not (at and test_kind and unit):
+            continue
+        tkey = (unit_code, tag, at, test_kind)
+        group = tests.setdefault(tkey, {"row": number, "results": [], "remarks":
+                                        row.text("remarks"), "tags": set()})
+        if comp_tag in group["tags"]:
+            row.err("component_tag", f"Component {comp_tag} appears twice in the test of "
+                                     f"{at:%Y-%m-%d %H:%M} (first on row {group['row']}).")
+        group["tags"].add(comp_tag)
+        group["results"].append((number, comp_tag, result))
+
+    existing_tests = set()
+    if tests:
+        for sif_id, at, kind in TestRecord.objects.filter(
+                sif__unit__site=site, superseded_by__isnull=True).exclude(
+                status=choices.RecordStatus.DRAFT).values_list("sif_id", "performed_at",
+                                                               "kind"):
+            existing_tests.add((sif_id, at, kind))
+    for (unit_code, tag, at, kind), group in tests.items():
+        sif = existing.get((unit_code, tag))
+        if sif and (sif.pk, at, kind) in existing_tests:
+            plan.steps.append(Step(group["row"], "unchanged", f"Test of {tag}",
+                                   f"{kind} on {at:%Y-%m-%d %H:%M} already recorded"))
+            continue
+        plan.steps.append(Step(group["row"], "create", f"Test of {tag}",
+                               f"{kind} on {at:%Y-%m-%d %H:%M}, "
+                               f"{len(group['results'])} component result(s)"))
+        plan.test_ops.append((group["row"], (unit_code, tag), at, kind, group))
+    plan.errors.sort(key=lambda e: (e.row, COLUMNS.index(e.column) if e.column in COLUMNS
+                                    else -1))
+    return plan
+
+
+# ---------------------------------------------------------------------------------------
+# Writing
+# ---------------------------------------------------------------------------------------
+
+
+class ImportFailed(Exception):
+    def __init__(self, errors: list[CellError]):
+        super().__init__(f"{len(errors)} error(s)")
+        self.errors = errors
+
+
+def _row_error(number: int, exc: ValidationError, column_of: dict) -> list[CellError]:
+    out = []
+    items = exc.message_dict.items() if hasattr(exc, "error_dict") else [("", exc.messages)]
+    for key, msgs in items:
+        col = column_of.get(key, "")
+        out += [CellError(number, col, m) for m in msgs]
+    return out
+
+
+def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str) -> ImportPlan:
+    """Check again, then write everything or nothing. Raises :class:`ImportFailed`."""
+    require(user, Action.EDIT_REGISTER, site.pk)
+    if not reference.strip():
+        raise ImportFailed([CellError(1, "", "Give the change request reference of this "
+                                             "import.")])
+    reason = "spreadsheet import"
+    affected: set[int] = set()
+    with transaction.atomic(), followup.suspended():
+        plan = plan_import(site, rows)
+        if plan.errors:
+            raise ImportFailed(plan.errors)
+        sifs = {}
+        for number, sif, unit, tag, values, interval in plan.sif_ops:
+            try:
+                if sif is None:
+                    sif = SafetyFunction(unit=unit, tag=tag, **values)
+                    sif = services.create_design(sif, user, reason=reason, reference=reference)
+                elif _differs(sif, values):
+                    sif = services.update_design(sif, user, reason=reason,
+                                                 reference=reference, changes=values)
+                if interval is not None:
+                    fp = TestPlan.objects.filter(sif=sif, kind=choices.TestKind.FULL
+                                                 ).order_by("name", "id").first()
+                    if fp is None:
+                        fp = TestPlan(sif=sif, name=FULL_PLAN_NAME,
+                                      interval_months=interval)
+                        fp = services.create_design(fp, user, reason=reason, reference=reference)
+                    elif fp.interval_months != interval:
+                        services.update_design(fp, user, reason=reason,
+                                               reference=reference,
+                                               changes={"interval_months": interval})
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, SIF_COLS)) from exc
+            sifs[(unit.code, tag)] = sif
+            affected.add(sif.pk)
+        for number, key, sub_name, sub_values, comp_tag, dtype, comp_values in \
+                plan.comp_ops:
+            sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
+                                                              unit__code=key[0],
+                                                              tag=key[1])
+            affected.add(sif.pk)
+            try:
+                sub = Subsystem.objects.filter(sif=sif, name=sub_name).first()
+                if sub is None:
+                    position = {"sensing": 1, "logic": 2, "final": 3}.get(
+                        sub_values["role"], 0)
+                    sub = Subsystem(sif=sif, name=sub_name, position=position,
+                                    **sub_values)
+                    sub = services.create_design(sub, user, reason=reason, reference=reference)
+                elif _differs(sub, sub_values):
+                    services.update_design(sub, user, reason=reason, reference=reference,
+                                           changes=sub_values)
+                comp = Component.objects.filter(subsystem__sif=sif, tag=comp_tag).first()
+                values = {**comp_values, "device_type": dtype}
+                if comp is None:
+                    comp = Component(subsystem=sub, tag=comp_tag, **values)
+                    comp = services.create_design(comp, user, reason=reason, reference=reference)
+                elif _differs(comp, {**comp_values, "device_type_id": dtype.pk}):
+                    services.update_design(comp, user, reason=reason, reference=reference,
+                                           changes=values)
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, COMP_COLS)) from exc
+        for number, key, at, kind, group in plan.test_ops:
+            sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
+                                                              unit__code=key[0],
+                                                              tag=key[1])
+            affected.add(sif.pk)
+            by_tag = {c.tag: c for c in Component.objects.filter(subsystem__sif=sif)}
+            results = [services.ResultInput(component=by_tag[t], **r)
+                       for _, t, r in group["results"]]
+            fp = None
+            if kind in (choices.TestKind.FULL, choices.TestKind.PARTIAL):
+                fp = TestPlan.objects.filter(sif=sif, kind=kind).order_by("name").first()
+            try:
+                record = services.save_draft(user=user, sif=sif, kind=kind,
+                                             performed_at=at, results=results, plan=fp,
+                                             remarks=group["remarks"])
+                services.sign_record(record, user, None, check_password=False,
+                                     signed_at=at)
+            except ValidationError as exc:
+                raise ImportFailed(_row_error(number, exc, {
+                    "performed_at": "test_performed_at", "kind": "test_kind"})) from exc
+    if affected:
+        from register.calculations import calculations
+        from register.schedule.due import refresh_plans
+
+        refresh_plans(TestPlan.objects.filter(sif_id__in=affected), timezone.localdate())
+        calculations().recompute_many(SafetyFunction.objects.filter(pk__in=affected), trigger="import")
+    return plan

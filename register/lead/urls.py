@@ -1,0 +1,17 @@
+from django.urls import path
+
+from register.lead import change as views_lead
+from register.lead import views
+
+app_name = "register"
+
+urlpatterns = [
+    path("", views.home, name="home"),
+    path("sifs/", views.sif_list, name="sif_list"),
+    path("sifs/export.<str:fmt>", views.sif_export, name="sif_export"),
+    path("sifs/<int:pk>/", views.sif_detail, name="sif_detail"),
+    path("sifs/<int:pk>/chart/<str:which>.svg", views.sif_chart, name="sif_chart"),
+    path("tests/<int:pk>/", views.test_detail, name="test_detail"),
+    path("design/<str:kind>/<int:pk>/edit/", views_lead.edit_design, name="edit_design"),
+    path("import/", views_lead.import_sheet, name="import"),
+]

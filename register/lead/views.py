@@ -1,0 +1,460 @@
+"""Read pages of the register: plant overview, SIF list (with exports), SIF page, charts."""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections import defaultdict
+from dataclasses import dataclass, field
+from urllib.parse import urlencode
+
+from django.contrib.auth.decorators import login_required
+from django.core.paginator import Paginator
+from django.db.models import Exists, Min, OuterRef
+from django.http import Http404, HttpResponse
+from django.shortcuts import get_object_or_404, render
+from django.urls import reverse
+from django.utils import timezone
+
+from register import changes as changes_mod
+from register import charts, choices, presenters
+from register.calculations import calculations
+from register.lead.filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter
+from register.models import (
+    Bypass,
+    Component,
+    Deferral,
+    Demand,
+    PlantUnit,
+    SafetyFunction,
+    Site,
+    Subsystem,
+    TestPlan,
+    TestRecord,
+    not_decommissioned,
+)
+from register.people import person_name
+from register.permissions import Action, can, require
+from register.schedule.due import FULL_CREDIT, PARTIAL_CREDIT, add_months
+from register.schedule.scan import bypass_state
+
+PlanState = choices.PlanState
+PAGE_SIZE = 50
+
+
+def list_url(**params) -> str:
+    """Link to the register list filtered by ``params`` (the overview's links)."""
+    clean = {k: v for k, v in params.items() if v not in (None, "")}
+    return reverse("register:sif_list") + ("?" + urlencode(clean) if clean else "")
+
+
+# ---------------------------------------------------------------------------------------
+# Proof-test on-time rate
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass
+class OnTime:
+    due: int = 0
+    on_time: int = 0
+    late_sif_ids: set = field(default_factory=set)
+    per_plan: dict = field(default_factory=dict)  # plan id -> (due, on time)
+
+    @property
+    def rate(self) -> float | None:
+        return self.on_time / self.due if self.due else None
+
+
+def on_time_rate(plans, today: dt.date, days: int = 365) -> OnTime:
+    """Proof-test on-time rate over the last ``days`` days.
+
+    Definition: each test plan falls due on (last counting test, or in-service date
+    for the first cycle) + its interval, moved to the approved date when a deferral of
+    that due date was approved. A due date counts in the period when it lies between
+    ``today - days`` and ``today`` (today itself not yet late). It is *on time* when a
+    signed, current test of a kind that counts for the plan was performed on or before
+    that due date. The rate is due dates met on time / due dates in the period; a due
+    date still open and past is late. Four queries for any number of plans.
+    """
+    out = OnTime()
+    plans = list(plans.select_related("sif"))
+    if not plans:
+        return out
+    sif_ids = {p.sif_id for p in plans}
+    start = today - dt.timedelta(days=days)
+    first_service = dict(
+        Component.objects.filter(subsystem__sif_id__in=sif_ids).values("subsystem__sif_id")
+        .annotate(first=Min("in_service_on")).values_list("subsystem__sif_id", "first"))
+    records = defaultdict(list)
+    for sif_id, kind, at in (TestRecord.objects.filter(sif_id__in=sif_ids,
+                                                       superseded_by__isnull=True)
+                             .exclude(status=choices.RecordStatus.DRAFT)
+                             .values_list("sif_id", "kind", "performed_at")
+                             .order_by("performed_at")):
+        records[sif_id].append((kind, at.date()))
+    approved = {(p, due): new for p, due, new in Deferral.objects.filter(
+        plan__in=[p.pk for p in plans], status=choices.DeferralStatus.APPROVED)
+        .values_list("plan_id", "due_on", "proposed_on")}
+    for plan in plans:
+        kinds = PARTIAL_CREDIT if plan.kind == choices.TestKind.PARTIAL else FULL_CREDIT
+        credit = first_service.get(plan.sif_id) or plan.sif.in_service_on
+        if credit is None:
+            continue
+        due_n = on_n = 0
+
+        def due_after(day, plan=plan):
+            due = add_months(day, plan.interval_months)
+            return approved.get((plan.pk, due), due)
+
+        for kind, day in records[plan.sif_id]:
+            if kind not in kinds or day < credit:
+                continue
+            due = due_after(credit)
+            if start <= due < today:
+                due_n += 1
+                on_n += day <= due
+            credit = day
+        due = due_after(credit)
+        if start <= due < today:  # still open and past its due date
+            due_n += 1
+        out.per_plan[plan.pk] = (due_n, on_n)
+        out.due += due_n
+        out.on_time += on_n
+        if on_n < due_n:
+            out.late_sif_ids.add(plan.sif_id)
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# Plant overview
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass
+class UnitRow:
+    unit: PlantUnit | None
+    site: Site
+    sifs: int = 0
+    meets: int = 0
+    fails: int = 0
+    unknown: int = 0
+    due_soon: int = 0
+    due_soon_days: int | None = None  # days until the nearest
+    overdue: int = 0
+    overdue_days: int = 0  # oldest, days past due
+    escalated: int = 0
+    escalated_days: int = 0
+    bypasses: int = 0
+    bypass_hours: float = 0.0  # longest open, hours
+    deferrals: int = 0
+    deferral_days: int = 0  # oldest request, days waiting
+    demand_flags: int = 0
+    repeat_offenders: int = 0  # components flagged in the latest assessments
+    repeat_sifs: int = 0  # SIFs with at least one of them
+    on_time_due: int = 0
+    on_time_ok: int = 0
+
+    @property
+    def on_time_rate(self):
+        return self.on_time_ok / self.on_time_due if self.on_time_due else None
+
+    def link(self, **extra):
+        base = {"unit": self.unit.pk} if self.unit else {"site": self.site.pk}
+        return list_url(**base, **extra)
+
+    def add(self, other: UnitRow):
+        for name in ("sifs", "meets", "fails", "unknown", "due_soon", "overdue", "escalated",
+                     "bypasses", "deferrals", "demand_flags", "repeat_offenders",
+                     "repeat_sifs", "on_time_due", "on_time_ok"):
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+        for name in ("overdue_days", "escalated_days", "bypass_hours", "deferral_days"):
+            setattr(self, name, max(getattr(self, name), getattr(other, name)))
+        if other.due_soon_days is not None:
+            self.due_soon_days = min(x for x in (self.due_soon_days, other.due_soon_days)
+                                     if x is not None)
+
+
+def plant_overview(user, today: dt.date):
+    now = timezone.now()
+    units = list(PlantUnit.objects.restrict(user).select_related("site"))
+    rows = {u.pk: UnitRow(u, u.site) for u in units}
+    sifs = list(not_decommissioned(SafetyFunction.objects.restrict(user))
+                .values_list("pk", "unit_id"))
+    unit_of = dict(sifs)
+    latest = calculations().latest_assessments(list(unit_of))
+    for sif_id, unit_id in sifs:
+        row = rows[unit_id]
+        row.sifs += 1
+        a = latest.get(sif_id)
+        meets = a.meets_target if a else None  # the stored verdict, never recomputed here
+        if meets is None:
+            row.unknown += 1
+        elif meets:
+            row.meets += 1
+        else:
+            row.fails += 1
+        if a and any(DEMAND_FLAG_TEXT in f for f in a.flags):
+            row.demand_flags += 1
+        offenders = presenters.repeat_offenders(a.detail) if a else []
+        row.repeat_offenders += len(offenders)
+        row.repeat_sifs += bool(offenders)
+    plans = TestPlan.objects.restrict(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
+    for unit_id, state, due in plans.values_list("sif__unit_id", "cached_state", "next_due_on"):
+        row = rows[unit_id]
+        if state == PlanState.DUE_SOON:
+            row.due_soon += 1
+            if due:
+                left = (due - today).days
+                row.due_soon_days = left if row.due_soon_days is None else min(
+                    row.due_soon_days, left)
+        elif state in (PlanState.OVERDUE, *ESCALATED_STATES):
+            late = (today - due).days if due else 0
+            if state == PlanState.OVERDUE:
+                row.overdue += 1
+                row.overdue_days = max(row.overdue_days, late)
+            else:
+                row.escalated += 1
+                row.escalated_days = max(row.escalated_days, late)
+    for b in Bypass.objects.restrict(user).filter(ended_at__isnull=True).select_related("sif"):
+        row = rows[b.sif.unit_id]
+        row.bypasses += 1
+        row.bypass_hours = max(row.bypass_hours, b.duration_hours(now))
+    for unit_id, asked in Deferral.objects.restrict(user).filter(
+            status=choices.DeferralStatus.PENDING).values_list("plan__sif__unit_id",
+                                                               "requested_at"):
+        rows[unit_id].deferrals += 1
+        rows[unit_id].deferral_days = max(rows[unit_id].deferral_days, (now - asked).days)
+    rate = on_time_rate(plans, today)
+    plan_unit = dict(plans.values_list("pk", "sif__unit_id"))
+    for plan_id, (due_n, ok_n) in rate.per_plan.items():
+        rows[plan_unit[plan_id]].on_time_due += due_n
+        rows[plan_unit[plan_id]].on_time_ok += ok_n
+
+    sites = []
+    for site in Site.objects.restrict(user):
+        site_rows = [r for r in rows.values() if r.site.pk == site.pk]
+        total = UnitRow(None, site)
+        for r in site_rows:
+            total.add(r)
+        stats = calculations().device_type_stats(site.pk, today)
+        types = sorted((ts for ts in stats.values() if ts.stats.exceeds_assumed),
+                       key=lambda ts: ts.device_type.name)
+        sites.append({"site": site, "rows": site_rows, "total": total, "types": [
+            {"type": ts.device_type, "stats": ts.stats,
+             "link": list_url(site=site.pk, device_type=ts.device_type.pk)}
+            for ts in types]})
+    return sites
+
+
+@login_required
+def home(request):
+    today = timezone.localdate()
+    return render(request, "register/lead/home.html", {
+        "sites": plant_overview(request.user, today), "today": today})
+
+
+# ---------------------------------------------------------------------------------------
+# Register list and exports
+# ---------------------------------------------------------------------------------------
+
+
+_state_badge = choices.plan_state_badge
+
+
+@login_required
+def sif_list(request):
+    f = SifFilter(request.GET, request=request)
+    qs = f.qs
+    page = Paginator(qs, PAGE_SIZE).get_page(request.GET.get("page"))
+    for sif in page.object_list:
+        sif.state_badge = _state_badge(sif.worst_state)
+        sif.verdict_badge = presenters.verdict_badge(sif.latest_meets)
+    params = request.GET.copy()
+    params.pop("page", None)
+    export_sites = [s for s in Site.objects.restrict(request.user)
+                    if can(request.user, Action.EXPORT, s.pk)]
+    return render(request, "register/lead/sif_list.html", {
+        "filter": f, "page": page, "query": params.urlencode(),
+        "can_export": bool(export_sites),
+        "can_import": any(can(request.user, Action.EDIT_REGISTER, s.pk)
+                          for s in Site.objects.restrict(request.user)),
+    })
+
+
+@login_required
+def sif_export(request, fmt):
+    from register.lead import spreadsheet
+
+    if fmt not in ("csv", "xlsx"):
+        raise Http404
+    f = SifFilter(request.GET, request=request)
+    allowed = [s.pk for s in Site.objects.restrict(request.user)
+               if can(request.user, Action.EXPORT, s.pk)]
+    if not allowed:
+        require(request.user, Action.EXPORT, -1)
+    qs = f.qs.filter(unit__site_id__in=allowed)
+    rows = spreadsheet.export_rows(qs)
+    stamp = timezone.localdate().isoformat()
+    if fmt == "csv":
+        resp = HttpResponse(spreadsheet.to_csv(rows), content_type="text/csv; charset=utf-8")
+    else:
+        resp = HttpResponse(spreadsheet.to_xlsx(rows), content_type=(
+            "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"))
+    resp["Content-Disposition"] = f'attachment; filename="sif-register-{stamp}.{fmt}"'
+    return resp
+
+
+# ---------------------------------------------------------------------------------------
+# SIF page
+# ---------------------------------------------------------------------------------------
+
+
+def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
+    """Change history of the SIF and its hardware and plans, newest first, with the diff."""
+    sources = [
+        ("SIF", SafetyFunction.history.filter(id=sif.pk)),
+        ("Subsystem", Subsystem.history.filter(sif_id=sif.pk)),
+        ("Component", Component.history.filter(id__in=comp_ids)),
+        ("Test plan", TestPlan.history.filter(sif_id=sif.pk)),
+    ]
+    entries = []
+    for label, qs in sources:
+        records = list(qs.select_related("history_user").order_by("id", "history_date",
+                                                                    "history_id"))
+        previous = {}
+        for rec in records:
+            row = changes_mod.row_of(rec)
+            prev = previous.get(rec.id)
+            changes = changes_mod.field_changes(prev, row) if prev is not None else []
+            previous[rec.id] = row
+            name = getattr(rec, "tag", None) or getattr(rec, "name", "")
+            entries.append({"when": rec.history_date, "what": f"{label} {name}",
+                            "kind": rec.get_history_type_display(),
+                            "who": person_name(rec.history_user, "—"), "reason": rec.history_change_reason or "",
+                            "changes": changes})
+    entries.sort(key=lambda e: e["when"], reverse=True)
+    return entries[:limit]
+
+
+def _fmt_hours(hours: float) -> str:
+    return f"{hours / 24:.1f} d" if hours >= 48 else f"{hours:.1f} h"
+
+
+@login_required
+def sif_detail(request, pk):
+    sif = get_object_or_404(SafetyFunction.objects.restrict(request.user)
+                            .select_related("unit__site", "owner"), pk=pk)
+    site_id = sif.unit.site_id
+    now = timezone.now()
+    today = timezone.localdate()
+    d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
+    lopa, lopa_error = None, ""
+    if d.scenarios:
+        try:
+            lopa = calculations().lopa_for_scenarios(d.scenarios)
+        except calculations().EngineError as exc:
+            lopa_error = str(exc)
+    design, design_error = None, ""
+    try:
+        design = calculations().evaluate_design(d)
+    except calculations().EngineError as exc:
+        design_error = str(exc)
+    subsystems = []
+    sub_results = {r.name: r for r in design.subsystems} if design else {}
+    for sub in d.subsystems:
+        full, partial = calculations().plan_intervals(d, sub)
+        subsystems.append({"obj": sub, "components": [c.obj for c in d.components[sub.pk]],
+                           "full_months": round(full / calculations().HOURS_PER_MONTH, 1) if full else None,
+                           "partial_months": round(partial / calculations().HOURS_PER_MONTH, 1) if partial else None,
+                           "result": sub_results.get(sub.name)})
+    assessment = calculations().latest_assessments([sif.pk]).get(sif.pk)
+    target = calculations().target_pfd(d)
+    band = calculations().sil_band(sif.target_sil) if sif.target_sil else None
+
+    records = (TestRecord.objects.filter(sif=sif).exclude(status=choices.RecordStatus.DRAFT)
+               .annotate(is_superseded=Exists(TestRecord.objects.filter(
+                   supersedes_id=OuterRef("pk"))))
+               .select_related("plan").order_by("-performed_at"))
+    bypasses = []
+    for b in d.bypasses[::-1]:
+        badge = choices.bypass_state_badge(bypass_state(b, now))
+        bypasses.append({"obj": b, "state": badge["label"], "duration": _fmt_hours(
+            b.duration_hours(now)), "open": b.ended_at is None, "style": badge["style"]})
+    may_decide = can(request.user, Action.DECIDE_DEFERRAL, site_id)
+    deferrals = []
+    for df_ in Deferral.objects.filter(plan__sif=sif).select_related(
+            "plan", "requested_by", "decided_by"):
+        item = {"obj": df_}
+        if df_.status == choices.DeferralStatus.PENDING and may_decide:
+            try:
+                cmp, tgt = calculations().deferral_projection(df_.plan, df_.proposed_on, now)
+                item.update(on_due=cmp.on_due_date.pfd_avg, deferred=cmp.deferred.pfd_avg,
+                            target=tgt, meets=(tgt is None or cmp.deferred.pfd_avg <= tgt))
+            except calculations().EngineError as exc:
+                item["projection_error"] = str(exc)
+        deferrals.append(item)
+    plans = []
+    from register.schedule.due import compute_statuses
+
+    statuses = compute_statuses(TestPlan.objects.filter(sif=sif), today)
+    for plan in d.plans:
+        st = statuses.get(plan.pk)
+        plans.append({"obj": plan, "status": st, "badge": _state_badge(st.state if st else None)})
+    comp_ids = [c.obj.pk for c in d.all_components()]
+    return render(request, "register/lead/sif_detail.html", {
+        "sif": sif, "lopa": lopa, "lopa_error": lopa_error, "design": design,
+        "design_error": design_error, "subsystems": subsystems, "assessment": assessment,
+        "verdict": presenters.assessment_view(assessment),
+        "target": target, "band": band, "records": records, "demands": d.demands[::-1],
+        "bypasses": bypasses, "deferrals": deferrals, "plans": plans,
+        "history": _history(sif, [s.pk for s in d.subsystems], comp_ids),
+        "can_edit": can(request.user, Action.EDIT_REGISTER, site_id),
+        "may_decide": may_decide,
+    })
+
+
+@login_required
+def sif_chart(request, pk, which):
+    sif = get_object_or_404(SafetyFunction.objects.restrict(request.user)
+                            .select_related("unit__site"), pk=pk)
+    if which not in ("pfd", "trend"):
+        raise Http404
+    d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
+    target = calculations().target_pfd(d)
+    if which == "pfd":
+        end = timezone.now()
+        start = end - dt.timedelta(days=5 * 365)
+        try:
+            times, values = calculations().pfd_series_for(sif, start, end, points=400)
+        except calculations().EngineError:
+            times, values = [], []
+        latest = calculations().latest_assessments([sif.pk]).get(sif.pk)
+        episodes = presenters.observed_episodes(latest.detail if latest else None)
+        svg = charts.pfd_chart(times, values, target, sif.tag, episodes=episodes)
+    else:
+        points = list(calculations().Assessment.objects.filter(sif=sif).order_by("computed_at").values_list(
+            "computed_at", "achieved_pfd_avg", "design_pfd_avg")[:500])
+        svg = charts.trend_chart(points, target, sif.tag)
+    resp = HttpResponse(svg, content_type="image/svg+xml")
+    resp["Cache-Control"] = "private, max-age=60"
+    return resp
+
+
+@login_required
+def test_detail(request, pk):
+    record = get_object_or_404(TestRecord.objects.restrict(request.user).select_related(
+        "sif", "plan"), pk=pk)
+    results = record.results.select_related("component")
+    return render(request, "register/lead/test_detail.html", {"record": record,
+                                                          "results": results})
+
+
+__all__ = [
+    "Demand",
+    "home",
+    "on_time_rate",
+    "sif_chart",
+    "sif_detail",
+    "sif_export",
+    "sif_list",
+    "test_detail",
+]

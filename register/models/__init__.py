@@ -1,0 +1,98 @@
+"""The register's models, by aggregate: sites and people (``site``), hazard scenarios
+(``hazard``), the design of each SIF (``design``), signed test records (``records``),
+operation (``operations``), notifications (``notifications``) and the change chain and
+evidence packs (``audit``). Shared validators and querysets are in ``base``.
+
+Every model is importable from here; migrations name the validators by this path.
+"""
+from register.models.audit import (
+    GENESIS_HASH,
+    ChainAppendOnlyError,
+    ChainEntry,
+    ChainHead,
+    EvidencePack,
+    _AppendOnlyQuerySet,
+)
+from register.models.base import (
+    SiteScopedQuerySet,
+    _plausible_rate,
+    non_negative,
+    plausible_rate,
+    positive_frequency,
+    probability,
+)
+from register.models.design import (
+    Component,
+    DeviceType,
+    SafetyFunction,
+    Subsystem,
+    TestPlan,
+    TestStep,
+    not_decommissioned,
+)
+from register.models.hazard import (
+    ConditionalModifier,
+    HazardScenario,
+    InitiatingCause,
+    ProtectionLayer,
+)
+from register.models.notifications import (
+    Notification,
+)
+from register.models.operations import (
+    Bypass,
+    Deferral,
+    Demand,
+)
+from register.models.records import (
+    Attachment,
+    ComponentResult,
+    MeasuredValue,
+    PartOfRecord,
+    SignedRecordError,
+    TestRecord,
+)
+from register.models.site import (
+    Membership,
+    PlantUnit,
+    Site,
+)
+
+__all__ = [
+    "GENESIS_HASH",
+    "Attachment",
+    "Bypass",
+    "ChainAppendOnlyError",
+    "ChainEntry",
+    "ChainHead",
+    "Component",
+    "ComponentResult",
+    "ConditionalModifier",
+    "Deferral",
+    "Demand",
+    "DeviceType",
+    "EvidencePack",
+    "HazardScenario",
+    "InitiatingCause",
+    "MeasuredValue",
+    "Membership",
+    "Notification",
+    "PartOfRecord",
+    "PlantUnit",
+    "ProtectionLayer",
+    "SafetyFunction",
+    "SignedRecordError",
+    "Site",
+    "SiteScopedQuerySet",
+    "Subsystem",
+    "TestPlan",
+    "TestRecord",
+    "TestStep",
+    "_AppendOnlyQuerySet",
+    "_plausible_rate",
+    "non_negative",
+    "not_decommissioned",
+    "plausible_rate",
+    "positive_frequency",
+    "probability",
+]

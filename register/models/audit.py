@@ -1,0 +1,151 @@
+"""Tamper-evident change chain and evidence packs.
+
+``ChainEntry`` rows form a hash chain over every historical row django-simple-history
+writes (see ``register.audit.chain``). They are append-only: there is no update or delete path
+in the application. ``EvidencePack`` records a request for an evidence pack and where
+its zip file lies once built (see ``register.audit.evidence``).
+"""
+
+from __future__ import annotations
+
+from django.conf import settings
+from django.db import models
+from django.utils.translation import gettext_lazy as _
+
+from register.models.base import SiteScopedQuerySet
+from register.models.design import SafetyFunction
+from register.models.site import PlantUnit, Site
+
+GENESIS_HASH = "0" * 64
+
+
+class ChainAppendOnlyError(Exception):
+    """Raised on any attempt to change or delete a chain entry."""
+
+
+class ChainHead(models.Model):
+    """One row: the newest entry of the chain. Locked by every append so that concurrent
+    writers queue up and cannot fork the chain."""
+
+    last_seq = models.PositiveBigIntegerField(default=0)
+    last_hash = models.CharField(max_length=64, default=GENESIS_HASH)
+
+    def __str__(self):
+        return f"chain head #{self.last_seq} {self.last_hash[:12]}"
+
+
+class _AppendOnlyQuerySet(models.QuerySet):
+    def update(self, **kwargs):
+        raise ChainAppendOnlyError("Chain entries cannot be changed.")
+
+    def delete(self):
+        raise ChainAppendOnlyError("Chain entries cannot be deleted.")
+
+
+class ChainEntry(models.Model):
+    """One link of the chain: which historical row, its content hash, and the link hash."""
+
+    ACTIONS = [("+", _("created")), ("~", _("changed")), ("-", _("deleted"))]
+
+    seq = models.PositiveBigIntegerField(_("sequence"), unique=True)
+    created_at = models.DateTimeField(_("appended at"))
+    model_label = models.CharField(_("historical model"), max_length=100)
+    object_id = models.CharField(_("object id"), max_length=64)
+    history_id = models.BigIntegerField(_("history row id"))
+    action = models.CharField(_("action"), max_length=1, choices=ACTIONS)
+    actor = models.CharField(_("actor (name as recorded)"), max_length=200, blank=True)
+    reason = models.CharField(_("reason"), max_length=200, blank=True)
+    content_hash = models.CharField(_("content hash (SHA-256)"), max_length=64)
+    prev_hash = models.CharField(_("previous entry hash"), max_length=64)
+    entry_hash = models.CharField(_("entry hash (SHA-256)"), max_length=64)
+
+    objects = _AppendOnlyQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["seq"]
+        verbose_name = _("change chain entry")
+        verbose_name_plural = _("change chain entries")
+        constraints = [
+            models.UniqueConstraint(fields=["model_label", "history_id"],
+                                    name="register_chain_one_entry_per_history_row"),
+        ]
+
+    def __str__(self):
+        return f"#{self.seq} {self.action} {self.model_label} {self.object_id}"
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None or not self._state.adding:
+            raise ChainAppendOnlyError("Chain entries cannot be changed.")
+        kwargs["force_insert"] = True
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        raise ChainAppendOnlyError("Chain entries cannot be deleted.")
+
+
+class EvidencePack(models.Model):
+    """A request for an evidence pack (one SIF, a unit or a site, over a period)."""
+
+    class Scope(models.TextChoices):
+        SIF = "sif", _("One SIF")
+        UNIT = "unit", _("A unit")
+        SITE = "site", _("The whole site")
+
+    class Status(models.TextChoices):
+        QUEUED = "queued", _("Queued")
+        RUNNING = "running", _("Being built")
+        DONE = "done", _("Ready")
+        FAILED = "failed", _("Failed")
+
+    scope = models.CharField(_("scope"), max_length=4, choices=Scope.choices)
+    site = models.ForeignKey(Site, on_delete=models.PROTECT, related_name="evidence_packs")
+    unit = models.ForeignKey(PlantUnit, on_delete=models.PROTECT, null=True, blank=True,
+                             related_name="evidence_packs")
+    sif = models.ForeignKey(SafetyFunction, on_delete=models.PROTECT, null=True, blank=True,
+                            related_name="evidence_packs")
+    period_start = models.DateField(_("period start"))
+    period_end = models.DateField(_("period end"))
+    requested_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT,
+                                     related_name="evidence_packs")
+    status = models.CharField(_("status"), max_length=8, choices=Status.choices,
+                              default=Status.QUEUED)
+    progress = models.PositiveSmallIntegerField(_("progress (%)"), default=0)
+    stage = models.CharField(_("current step"), max_length=200, blank=True)
+    error = models.TextField(_("error"), blank=True)
+    result_path = models.CharField(_("zip file (relative to the data folder)"),
+                                   max_length=300, blank=True)
+    result_sha256 = models.CharField(_("zip SHA-256"), max_length=64, blank=True)
+    result_size = models.PositiveBigIntegerField(_("zip size (bytes)"), null=True, blank=True)
+    chain_head_hash = models.CharField(_("chain head at generation"), max_length=64,
+                                       blank=True)
+    chain_head_seq = models.PositiveBigIntegerField(null=True, blank=True)
+    chain_ok = models.BooleanField(_("chain verified at generation"), null=True)
+    created_at = models.DateTimeField(_("requested at"), auto_now_add=True)
+    started_at = models.DateTimeField(null=True, blank=True)
+    finished_at = models.DateTimeField(_("finished at"), null=True, blank=True)
+
+    site_path = "site"
+    objects = SiteScopedQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["-created_at", "-id"]
+        constraints = [
+            models.CheckConstraint(condition=models.Q(period_end__gte=models.F("period_start")),
+                                   name="register_pack_period_order"),
+        ]
+
+    def __str__(self):
+        return f"Evidence pack {self.pk}: {self.scope_label} {self.period_start}..{self.period_end}"
+
+    @property
+    def scope_label(self) -> str:
+        if self.scope == self.Scope.SIF and self.sif_id:
+            return f"SIF {self.sif.tag}"
+        if self.scope == self.Scope.UNIT and self.unit_id:
+            return f"unit {self.unit.code} {self.unit.name}"
+        return f"site {self.site.name}"
+
+    @property
+    def is_finished(self) -> bool:
+        return self.status in (self.Status.DONE, self.Status.FAILED)
+

@@ -1,0 +1,52 @@
+"""Every write that matters, one function each.
+
+Each service takes the acting user (and a reason where the record is controlled), checks
+the right in ``register.permissions``, validates with ``full_clean()``, writes inside one
+transaction, leaves a history entry attributed to the actor, and enqueues follow-up work
+(due dates, recompute) only after the transaction commits. Forms, the API, the import and
+the demo loader all write through here.
+"""
+
+from register.services.base import _sif_id_of
+from register.services.design import (
+    create_design,
+    update_design,
+)
+from register.services.operations import (
+    close_bypass,
+    open_bypass,
+    record_demand,
+)
+from register.services.records import (
+    KeyReusedError,
+    MeasurementInput,
+    ResultInput,
+    StaleDraftError,
+    add_attachment,
+    discard_draft,
+    save_draft,
+    save_draft_once,
+    sign_record,
+    start_correction,
+    verify_record,
+)
+
+__all__ = [
+    "KeyReusedError",
+    "MeasurementInput",
+    "ResultInput",
+    "StaleDraftError",
+    "_sif_id_of",
+    "add_attachment",
+    "close_bypass",
+    "create_design",
+    "discard_draft",
+    "open_bypass",
+    "record_demand",
+    "save_draft",
+    "save_draft_once",
+    "sign_record",
+    "start_correction",
+    "update_design",
+    "verify_record",
+]

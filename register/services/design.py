@@ -1,0 +1,55 @@
+"""Design changes: every edit of the register's design rows, with reason and reference."""
+
+from __future__ import annotations
+
+from django.core.exceptions import ValidationError
+from django.db import transaction
+
+from register.changes import attribute
+from register.permissions import Action, require, site_id_of
+from register.schedule import followup
+from register.services.base import _sif_id_of
+
+
+@transaction.atomic
+def update_design(instance, user, *, reason: str, reference: str, changes: dict):
+    """Change design data of a register record under change control.
+
+    ``reason`` and ``reference`` (change request number) are required and are kept in the
+    change history with the change.
+    """
+    site_id = site_id_of(instance)
+    require(user, Action.EDIT_REGISTER, site_id)
+    if not reason.strip() or not reference.strip():
+        raise ValidationError({"reason": "A design change needs a reason and a change "
+                                         "request reference."})
+    for name, value in changes.items():
+        setattr(instance, name, value)
+    instance.full_clean()
+    attribute(instance, user, f"[{reference}] {reason}").save()
+    sif_id = _sif_id_of(instance)
+    if sif_id:
+        followup.after_test_change(sif_id)
+    return instance
+
+
+
+@transaction.atomic
+def create_design(instance, user, *, reason: str, reference: str, at=None):
+    """Add a design row (SIF, subsystem, component, plan, step, scenario and its LOPA rows)
+    under change control: the right to edit the register at its site, a reason and a
+    change request reference kept in its history, validation, and the follow-up
+    (due dates, recompute) after commit. The import and the demo loader add rows here;
+    ``at`` dates the history entry when the row was really recorded (the demo's past).
+    """
+    site_id = site_id_of(instance)
+    require(user, Action.EDIT_REGISTER, site_id)
+    if not reason.strip() or not reference.strip():
+        raise ValidationError({"reason": "A design change needs a reason and a change "
+                                         "request reference."})
+    instance.full_clean()
+    attribute(instance, user, f"[{reference}] {reason}", at=at).save()
+    sif_id = _sif_id_of(instance)
+    if sif_id:
+        followup.after_test_change(sif_id)
+    return instance

@@ -1,0 +1,324 @@
+"""Test records: drafts, signing, countersigning, corrections, attachments."""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+
+from django.core.exceptions import PermissionDenied, ValidationError
+from django.db import IntegrityError, transaction
+from django.utils import timezone
+
+from register import choices, rules
+from register.changes import attribute
+from register.models import (
+    Attachment,
+    Component,
+    ComponentResult,
+    MeasuredValue,
+    SafetyFunction,
+    TestPlan,
+    TestRecord,
+    TestStep,
+)
+from register.people import person_name
+from register.permissions import Action, require, site_id_of
+from register.schedule import followup
+
+# ---------------------------------------------------------------------------------------
+# Test records
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass
+class MeasurementInput:
+    quantity: str
+    value: float
+    phase: str = "found"  # "found" or "left"
+    unit: str = ""
+    step: TestStep | None = None
+
+
+@dataclass
+class ResultInput:
+    component: Component
+    as_found: str
+    as_left: str
+    work_done: str = ""
+    failure_mode: str = ""
+    failure_description: str = ""
+    measurements: list[MeasurementInput] = field(default_factory=list)
+
+
+class StaleDraftError(ValidationError):
+    """The draft was saved by someone else since it was opened."""
+
+
+class KeyReusedError(ValidationError):
+    """A client key already names another submission (different content or performer)."""
+
+
+def _submission(*, user, sif, plan, kind, performed_at, remarks, results) -> tuple:
+    """What a submission says, in a form two submissions can be compared by."""
+    return (user.pk, sif.pk, plan.pk if plan else None, kind, performed_at, remarks or "",
+            frozenset((r.component.pk, r.as_found, r.as_left, r.work_done or "",
+                       r.failure_mode or "", r.failure_description or "",
+                       frozenset((m.step.pk if m.step else None, m.phase, m.quantity,
+                                  float(m.value)) for m in r.measurements))
+                      for r in results))
+
+
+def _stored_submission(record: TestRecord) -> tuple:
+    results = record.results.prefetch_related("measurements").select_related("component")
+    return (record.performed_by_id, record.sif_id, record.plan_id, record.kind,
+            record.performed_at, record.remarks or "",
+            frozenset((r.component_id, r.as_found, r.as_left, r.work_done or "",
+                       r.failure_mode or "", r.failure_description or "",
+                       frozenset((m.step_id, m.phase, m.quantity, float(m.value))
+                                 for m in r.measurements.all()))
+                      for r in results))
+
+
+def save_draft_once(*, client_key: str, user, sif: SafetyFunction, kind: str,
+                    performed_at: dt.datetime, results: list[ResultInput],
+                    plan: TestPlan | None = None, remarks: str = "") -> tuple[TestRecord, bool]:
+    """The one idempotency rule of new test records, for the field form and the API.
+
+    A client key names one submission. The first time it is sent the draft is saved
+    (``save_draft``) and ``(record, True)`` returned. Sent again with the same content
+    (a form sent twice, a retried API call, a race between the two), nothing is written and
+    ``(stored record, False)`` is returned; with other content, or by another person,
+    :class:`KeyReusedError` is raised and nothing is written.
+    """
+    sent = _submission(user=user, sif=sif, plan=plan, kind=kind, performed_at=performed_at,
+                       remarks=remarks, results=results)
+
+    def stored():
+        found = TestRecord.objects.filter(client_key=client_key).first()
+        if found is not None and _stored_submission(found) != sent:
+            raise KeyReusedError({"client_key": [
+                "This key was already used for a different test result."]})
+        return found
+
+    existing = stored()
+    if existing is not None:
+        existing.was_written = False
+        return existing, False
+    try:
+        with transaction.atomic():
+            return save_draft(user=user, sif=sif, plan=plan, kind=kind,
+                              performed_at=performed_at, remarks=remarks, results=results,
+                              client_key=client_key), True
+    except IntegrityError:
+        existing = stored()  # stored by a concurrent request a moment ago
+        if existing is None:
+            raise
+        existing.was_written = False
+        return existing, False
+
+
+@transaction.atomic
+def save_draft(
+    *,
+    user,
+    sif: SafetyFunction,
+    kind: str,
+    performed_at: dt.datetime,
+    results: list[ResultInput],
+    plan: TestPlan | None = None,
+    remarks: str = "",
+    record: TestRecord | None = None,
+    expected_version: int | None = None,
+    supersedes: TestRecord | None = None,
+    correction_reason: str = "",
+    client_key: str | None = None,
+) -> TestRecord:
+    """Create or update a draft test record with its component results.
+
+    ``expected_version`` guards against two people saving the same draft: if the stored
+    draft's version differs, nothing is written and :class:`StaleDraftError` is raised,
+    unless the stored draft already holds exactly these entries (the same form sent twice),
+    when nothing is written either. ``record.was_written`` tells which happened.
+    """
+    require(user, Action.RECORD_TEST, sif.unit.site_id)
+    if record is None:
+        record = TestRecord(sif=sif, performed_by=user)
+    else:
+        record = TestRecord.objects.select_for_update().get(pk=record.pk)
+        if record.is_signed:
+            raise ValidationError("This record is signed and cannot be changed; record a "
+                                  "correction instead.")
+        if record.performed_by_id != user.pk:
+            raise PermissionDenied("Only the person who started this draft can change it.")
+        if expected_version is not None and record.draft_version != expected_version:
+            if _stored_submission(record) == _submission(
+                    user=user, sif=sif, plan=plan, kind=kind, performed_at=performed_at,
+                    remarks=remarks, results=results):
+                record.was_written = False  # the same entries sent twice: nothing to do
+                return record
+            raise StaleDraftError(
+                "This draft was saved elsewhere since you opened it (another tab or device). "
+                "Your entries are kept on the page; reload the draft to see the newer version."
+            )
+        record.draft_version += 1
+    record.plan = plan
+    record.kind = kind
+    record.performed_at = performed_at
+    record.remarks = remarks
+    record.supersedes = supersedes
+    record.correction_reason = correction_reason
+    record.client_key = client_key
+    record.full_clean()
+    attribute(record, user, "draft saved").save()
+
+    record.results.all().delete()
+    errors = {}
+    for index, item in enumerate(results):
+        result = ComponentResult(
+            record=record, component=item.component, as_found=item.as_found,
+            as_left=item.as_left, work_done=item.work_done, failure_mode=item.failure_mode,
+            failure_description=item.failure_description,
+        )
+        try:
+            result.full_clean()
+        except ValidationError as exc:
+            for key, msgs in exc.message_dict.items():
+                errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {m}" for m in msgs]
+            continue
+        judged = [rules.JudgedValue(mv.step, mv.phase, mv.value,
+                                    rules.judge_measurement(mv.step, mv.value, sif=sif))
+                  for mv in item.measurements if mv.step is not None]
+        outside = {k: v for k, v in rules.result_problems(
+            as_found=item.as_found, as_left=item.as_left, failure_mode=item.failure_mode,
+            failure_description=item.failure_description, work_done=item.work_done,
+            judged=judged).items() if k in ("as_found", "as_left")}
+        if outside:  # a value outside its criterion cannot be passed (every entry point)
+            for key, msg in outside.items():
+                errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {msg}"]
+            continue
+        attribute(result, user).save()
+        for mv in item.measurements:
+            # MeasuredValue.save judges a value with a step by the one rule
+            MeasuredValue.objects.create(
+                result=result, step=mv.step, phase=mv.phase, quantity=mv.quantity,
+                value=mv.value, unit=mv.unit, within_criterion=None,
+            )
+    if errors:
+        raise ValidationError(errors)
+    record.was_written = True
+    return record
+
+
+@transaction.atomic
+def discard_draft(record: TestRecord, user) -> None:
+    """Delete an unsigned draft of one's own, with its results, measurements and
+    attachments; the history keeps the deletion, attributed. A signed record is never
+    deleted (record a correction instead)."""
+    record = TestRecord.objects.select_for_update().get(pk=record.pk)
+    require(user, Action.RECORD_TEST, record.sif.unit.site_id)
+    if record.is_signed:
+        raise ValidationError("This record is signed and cannot be deleted; record a "
+                              "correction instead.")
+    if record.performed_by_id != user.pk:
+        raise PermissionDenied("Only the person who started this draft can delete it.")
+    attribute(record, user, "draft discarded").delete()
+
+
+@transaction.atomic
+def sign_record(record: TestRecord, user, password: str | None, *, check_password=True,
+                signed_at: dt.datetime | None = None) -> TestRecord:
+    """The performer signs a draft by re-entering the password; the record is then frozen.
+
+    ``signed_at`` is for loading historical records (import, demo); it defaults to now.
+    """
+    record = TestRecord.objects.select_for_update().get(pk=record.pk)
+    require(user, Action.RECORD_TEST, record.sif.unit.site_id)
+    if record.is_signed:
+        raise ValidationError("This record is already signed.")
+    if record.performed_by_id != user.pk:
+        raise PermissionDenied("Only the performer can sign this record.")
+    if check_password and not user.check_password(password or ""):
+        raise ValidationError({"password": "The password is not correct; the record is "
+                                           "still a draft."})
+    if not record.results.exists():
+        raise ValidationError("Record at least one component result before signing.")
+    record.full_clean()
+    record.status = choices.RecordStatus.SIGNED
+    record.signed_at = signed_at or timezone.now()
+    record.performed_by_name = person_name(user)
+    attribute(record, user, "signed by performer").save()
+    followup.after_test_change(record.sif_id)
+    return record
+
+
+@transaction.atomic
+def verify_record(record: TestRecord, user, password: str | None, *, check_password=True,
+                  verified_at: dt.datetime | None = None) -> TestRecord:
+    """A verifier (never the performer) countersigns a signed record."""
+    record = TestRecord.objects.select_for_update().get(pk=record.pk)
+    require(user, Action.VERIFY_TEST, record.sif.unit.site_id)
+    if record.status != choices.RecordStatus.SIGNED:
+        raise ValidationError("Only a signed record awaiting verification can be "
+                              "countersigned.")
+    if record.performed_by_id == user.pk:
+        raise ValidationError({"verified_by": "The verifier must be another person than "
+                                              "the performer."})
+    if check_password and not user.check_password(password or ""):
+        raise ValidationError({"password": "The password is not correct; nothing was "
+                                           "countersigned."})
+    record.verified_by = user
+    record.verified_by_name = person_name(user)
+    record.verified_at = verified_at or timezone.now()
+    record.status = choices.RecordStatus.VERIFIED
+    attribute(record, user, "countersigned by verifier").save()
+    followup.after_test_change(record.sif_id)
+    return record
+
+
+@transaction.atomic
+def start_correction(original: TestRecord, user, reason: str) -> TestRecord:
+    """Start a correction: a new draft, copied from the signed original, that supersedes it."""
+    original = TestRecord.objects.select_for_update().get(pk=original.pk)
+    require(user, Action.RECORD_TEST, original.sif.unit.site_id)
+    if not original.is_signed:
+        raise ValidationError("A draft can simply be edited; only signed records are "
+                              "corrected.")
+    if hasattr(original, "superseded_by"):
+        raise ValidationError("This record has already been corrected; correct the newest "
+                              "version instead.")
+    if not reason.strip():
+        raise ValidationError({"correction_reason": "A correction needs a reason."})
+    results = [
+        ResultInput(
+            component=r.component, as_found=r.as_found, as_left=r.as_left,
+            work_done=r.work_done, failure_mode=r.failure_mode,
+            failure_description=r.failure_description,
+            measurements=[MeasurementInput(quantity=mv.quantity, value=mv.value,
+                                           phase=mv.phase, unit=mv.unit, step=mv.step)
+                          for mv in r.measurements.all()],
+        )
+        for r in original.results.select_related("component").prefetch_related(
+            "measurements__step")
+    ]
+    return save_draft(user=user, sif=original.sif, plan=original.plan, kind=original.kind,
+                      performed_at=original.performed_at, results=results,
+                      remarks=original.remarks, supersedes=original,
+                      correction_reason=reason)
+
+
+@transaction.atomic
+def add_attachment(*, user, record: TestRecord, file, original_name: str, content_type: str,
+                   size_bytes: int, sha256: str) -> Attachment:
+    """Attach a checked file (photo, scan) to a draft by its performer, with history (so
+    it is chained and listed in evidence packs). A signed record takes no more files."""
+    require(user, Action.RECORD_TEST, site_id_of(record))
+    if record.status != choices.RecordStatus.DRAFT or record.performed_by_id != user.pk:
+        raise ValidationError({"attachments": "Files can be added to your own draft only."})
+    att = Attachment(record=record, file=file, original_name=original_name[:200],
+                     content_type=content_type, size_bytes=size_bytes, sha256=sha256,
+                     uploaded_by=user)
+    att.full_clean(exclude=["file"])
+    attribute(att, user, "file attached").save()
+    return att
+
+
