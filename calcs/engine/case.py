@@ -33,7 +33,7 @@ more than four channels).
 
 If the case has a top-level "in_service" key or a subsystem has a "tests"
 key, the proof-test history part is evaluated by
-``calcs.engine.history.evaluate_case_history(data)`` and its keys are merged
+``calcs.engine.history_case.evaluate_case_history(data)`` and its keys are merged
 into the output (top-level keys, and per-subsystem keys by subsystem name).
 """
 
@@ -128,9 +128,9 @@ def _wants_history(data: dict) -> bool:
 
 def _history(data: dict, today=None) -> dict:
     try:
-        from calcs.engine.history import evaluate_case_history
+        from calcs.engine.history_case import evaluate_case_history
     except ModuleNotFoundError as exc:
-        if exc.name not in (f"{__package__}.history",):
+        if exc.name not in (f"{__package__}.history", f"{__package__}.history_case"):
             raise
         field = "in_service" if "in_service" in data else "subsystems[].tests"
         raise InputError(field, "proof-test history evaluation is not available in this "

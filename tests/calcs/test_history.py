@@ -32,11 +32,11 @@ from calcs.engine.history import (
     achieved_pfd,
     achieved_pfd_windows,
     compare_deferral,
-    evaluate_case_history,
     pfd_series,
     planned_schedule_check,
     projection,
 )
+from calcs.engine.history_case import evaluate_case_history
 
 T0 = datetime(2010, 1, 1)
 YEAR = 8760.0
