@@ -10,6 +10,8 @@ urlpatterns = [
     path("accounts/", include("django.contrib.auth.urls")),
     path("field/", include("register.field.urls")),
     path("deferrals/", include("register.schedule.urls")),
+    path("inbox/", include("register.inbox.urls")),
+    path("operations/", include("register.operations.urls")),
     path("api/", include("register.api.urls")),
     path("audit/", include("register.audit.urls")),
     path("", include("register.lead.urls")),

@@ -112,8 +112,8 @@ class SubsystemInline(ReadOnlyInline):
 class PlanInline(ReadOnlyInline):
     model = m.TestPlan
     extra = 0
-    fields = ("name", "kind", "interval_months", "coverage", "next_due_on", "cached_state")
-    readonly_fields = ("next_due_on", "cached_state")
+    fields = ("name", "kind", "interval_months", "coverage", "effective_from", "next_due_on")
+    readonly_fields = ("next_due_on",)
     show_change_link = True
 
 
@@ -158,12 +158,12 @@ class StepInline(ReadOnlyInline):
 
 @admin.register(m.TestPlan)
 class TestPlanAdmin(ReadOnlyAdmin):
-    list_display = ("__str__", "kind", "interval_months", "coverage", "next_due_on",
-                    "cached_state")
-    list_filter = ("kind", "cached_state", "sif__unit")
+    list_display = ("__str__", "kind", "interval_months", "coverage", "effective_from",
+                    "next_due_on")
+    list_filter = ("kind", "sif__unit")
     search_fields = ("sif__tag", "name", "components__tag")
     filter_horizontal = ("components",)
-    readonly_fields = ("next_due_on", "cached_state")
+    readonly_fields = ("next_due_on", "due_soon_on", "escalated_on", "escalated_2_on")
     inlines = [StepInline]
 
 

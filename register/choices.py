@@ -105,6 +105,7 @@ class DeferralStatus(models.TextChoices):
     PENDING = "pending", _("Awaiting decision")
     APPROVED = "approved", _("Approved")
     REJECTED = "rejected", _("Rejected")
+    WITHDRAWN = "withdrawn", _("Withdrawn (test done)")
 
 
 class PlanState(models.TextChoices):
@@ -166,6 +167,104 @@ def bypass_state_badge(state: str) -> dict:
 
 class NotificationKind(models.TextChoices):
     PLAN_STATE = "plan_state", _("Test plan state changed")
-    BYPASS_STATE = "bypass_state", _("Bypass state changed")
-    DEFERRAL = "deferral", _("Deferral decision")
+    DUE_SOON = "due_soon", _("Proof test due soon")
+    OVERDUE = "overdue", _("Proof test overdue")
+    ESCALATED = "escalated", _("Overdue proof test escalated")
+    ESCALATED_2 = "escalated_2", _("Overdue proof test escalated, second level")
+    BYPASS_STATE = "bypass_state", _("Bypass over its authorised time")
     TARGET = "target", _("SIF no longer meets its target")
+    FAILURE_FOUND = "failure_found", _("Dangerous failure found")
+    COUNTERSIGN = "countersign", _("Waiting for countersignature")
+    DEFERRAL_REQUESTED = "deferral_requested", _("Deferral requested")
+    DEFERRAL = "deferral", _("Deferral decided")
+    DEFERRAL_WITHDRAWN = "deferral_withdrawn", _("Deferral withdrawn")
+
+
+class ChangeCause(models.TextChoices):
+    """What made a test plan's state change (``PlanStateChange.cause``)."""
+
+    SCAN = "scan", _("Date passed (periodic scan)")
+    RECORD = "record", _("Test record signed or corrected")
+    DEMAND = "demand", _("Real demand recorded")
+    DEFERRAL = "deferral", _("Deferral decided")
+    PLAN = "plan", _("Test plan changed")
+
+
+# ---------------------------------------------------------------------------------------
+# Operation: bypass authorisation, demand causes, findings
+# ---------------------------------------------------------------------------------------
+
+
+def badge_of(choice_class, styles: dict, value: str) -> dict:
+    """Label and badge style of ``value`` of a choice class whose styles are ``styles``."""
+    st = choice_class(value)
+    return {"label": st.label, "style": styles[st]}
+
+
+class BypassAuthorisation(models.TextChoices):
+    """Whether a bypass has been authorised. Derived from ``Bypass.authorised_by``."""
+
+    PENDING = "pending", _("Awaiting authorisation")
+    AUTHORISED = "authorised", _("Authorised")
+    NONE = "none", _("Ended without authorisation")
+
+
+BYPASS_AUTHORISATION_STYLE = {
+    BypassAuthorisation.PENDING: "badge-late",
+    BypassAuthorisation.AUTHORISED: "badge-ok",
+    BypassAuthorisation.NONE: "badge-fail",
+}
+
+
+def bypass_authorisation_badge(state: str) -> dict:
+    return badge_of(BypassAuthorisation, BYPASS_AUTHORISATION_STYLE, state)
+
+
+class DemandKind(models.TextChoices):
+    """What a trip was: the process called for it, or it came without a process demand."""
+
+    REAL = "real", _("Real demand (the process called for the trip)")
+    SPURIOUS = "spurious", _("Spurious trip (no process demand)")
+
+
+class DemandCause(models.TextChoices):
+    """What caused a demand or a spurious trip (one list, for the demand and trip rates)."""
+
+    PROCESS_UPSET = "process_upset", _("Process upset")
+    EQUIPMENT = "equipment", _("Failure of other plant equipment or the control system")
+    OPERATOR = "operator", _("Operator action or error")
+    EXTERNAL = "external", _("External event (utilities, weather)")
+    INSTRUMENT = "instrument", _("Fault of a SIF device (transmitter, wiring, valve)")
+    MAINTENANCE = "maintenance", _("Maintenance or testing activity")
+    UNKNOWN = "unknown", _("Not known yet")
+    NOT_RECORDED = "not_recorded", _("Not recorded")
+
+
+class DeviceOutcome(models.TextChoices):
+    """What one device did on a demand or trip."""
+
+    ACTED = "acted", _("Acted")
+    FAILED = "failed", _("Failed to act")
+    NOT_INVOLVED = "none", _("Not involved / not known")
+
+
+class FindingSource(models.TextChoices):
+    TEST = "test", _("Test record")
+    DEMAND = "demand", _("Real demand or trip")
+
+
+class FindingStatus(models.TextChoices):
+    OPEN = "open", _("Open")
+    CLOSED = "closed", _("Closed")
+    WITHDRAWN = "withdrawn", _("Withdrawn (record corrected)")
+
+
+FINDING_STATUS_STYLE = {
+    FindingStatus.OPEN: "badge-late",
+    FindingStatus.CLOSED: "badge-ok",
+    FindingStatus.WITHDRAWN: "badge-neutral",
+}
+
+
+def finding_status_badge(status: str) -> dict:
+    return badge_of(FindingStatus, FINDING_STATUS_STYLE, status)

@@ -2,19 +2,25 @@
 
 Everything is laid relative to ``today`` so the demo always shows tests due soon,
 overdue and escalated. The history is random but seeded by each SIF's tag, so the same
-day gives the same plant. All writes go through ``register.services``.
+day gives the same plant. All writes go through ``register.services``, and every history
+row is dated when its event happened (the design when it was recorded, a test when it
+was performed, signed and countersigned, a demand or bypass when it occurred), so the
+as-of view shows the plant as it stood years ago.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import json
 import math
 import random
+from collections.abc import Callable
 from pathlib import Path
 
 from django.conf import settings
 from django.contrib.auth import get_user_model
+from django.contrib.auth.hashers import make_password
 from django.db import transaction
 from django.utils import timezone
 
@@ -23,6 +29,7 @@ from register.calculations import calculations
 from register.models import (
     Component,
     ConditionalModifier,
+    Demand,
     DeviceType,
     HazardScenario,
     InitiatingCause,
@@ -37,12 +44,15 @@ from register.models import (
 )
 from register.schedule import followup
 from register.schedule import services as schedule_services
-from register.schedule.due import add_months, refresh_plans
+from register.schedule.due import add_months, due_date, refresh_plans
 
 DEMO_FILE = Path(settings.BASE_DIR) / "fixtures" / "demo_plant.json"
 DEMO_PASSWORD = "demo-pass-2026"
 #: The change request under which the demo plant's design rows are recorded.
 DEMO_REFERENCE = "CR-DEMO-0001"
+#: The plant's design was recorded this long before the demo day: before its oldest SIF
+#: went into service (at most 12 years ago).
+DESIGN_LEAD = dt.timedelta(days=12 * 365 + 90)
 TAG_PREFIX = {"pt": "PT", "lt": "LT", "tt": "TT", "ft": "FT", "ls": "LSLL", "plc": "SLS",
               "xv": "XV", "bdv": "BDV", "mcc": "HS"}
 # Required PFDavg placed inside each SIL band (for the LOPA arithmetic of the demo).
@@ -52,22 +62,87 @@ FULL_INTERVAL_MONTHS = {1: 24, 2: 12, 3: 12}
 DUE_PATTERN = ["ok", "ok", "soon", "ok", "overdue", "ok", "escalated", "ok", "ok", "soon",
                "ok", "escalated2", "ok", "overdue"]
 
+#: ``progress(what, done, total)``: called as the load goes (``what`` names the SIF just
+#: built, or the step done: "library", "demands, bypasses, deferral", "recompute"; or
+#: "resume YYYY-MM-DD" before finishing a load cut short, laid on that day).
+Progress = Callable[[str, int, int], None]
+
 
 class DemoAlreadyLoaded(Exception):
     pass
 
 
-def load(today: dt.date, *, path: Path = DEMO_FILE, stdout=None) -> Site:
-    spec = json.loads(path.read_text(encoding="utf-8"))
-    if Site.objects.filter(code=spec["site"]["code"]).exists():
-        raise DemoAlreadyLoaded(spec["site"]["code"])
-    with transaction.atomic(), followup.suspended():
-        builder = _Builder(spec, today)
-        site = builder.build()
-    refresh_plans(TestPlan.objects.filter(sif__unit__site=site), today)
+def load(today: dt.date, *, path: Path = DEMO_FILE, progress: Progress | None = None) -> Site:
+    """Load the demo plant laid relative to ``today`` and return its site.
 
-    calculations().recompute_many(SafetyFunction.objects.filter(unit__site=site), trigger="demo load")
+    Called inside a transaction, the whole plant is written in that transaction. Called
+    outside one (the ``load_demo`` and ``rundemo`` commands), the site with its people and
+    device library, then each SIF, then the demands, bypasses and deferral are each
+    committed in a transaction of their own: the chain head is one row updated with every
+    history entry, and PostgreSQL keeps every version of a row until the transaction
+    that wrote them ends, so one transaction for the whole plant makes each entry slower
+    than the one before. A load cut short (stopped, killed) is finished by the next call,
+    laid on the day it began (read from the site's history), so the plant is the same as
+    one loaded in a single go. :class:`DemoAlreadyLoaded` when the plant is complete.
+
+    Follow-up work is suspended while loading; the plans' due dates are refreshed and
+    every SIF recomputed once at the end.
+    """
+    spec = json.loads(path.read_text(encoding="utf-8"))
+    code = spec["site"]["code"]
+    report = progress or (lambda what, done, total: None)
+    site = Site.objects.filter(code=code).first()
+    built: set[str] = set()
+    if site is not None:
+        built = set(SafetyFunction.objects.filter(unit__site=site).values_list("tag", flat=True))
+        if _complete(site, spec, built):
+            raise DemoAlreadyLoaded(code)
+        today = started_on(site)  # finish the load that was cut short, on its own day
+        report(f"resume {today:%Y-%m-%d}", len(built), len(spec["sifs"]))
+    # One transaction for the whole load when the caller holds one, else one per step.
+    whole = transaction.get_connection().in_atomic_block
+    step = contextlib.nullcontext if whole else transaction.atomic
+    total = len(spec["sifs"])
+    with followup.suspended(), (transaction.atomic() if whole else contextlib.nullcontext()):
+        builder = _Builder(spec, today)
+        with step():
+            builder.start(site)
+        report("library", 0, total)
+        for index, entry in enumerate(spec["sifs"]):
+            if entry["tag"] not in built:
+                with step():
+                    builder.build_sif(index, entry)
+            report(entry["tag"], index + 1, total)
+        if not Demand.objects.filter(sif__unit__site=builder.site).exists():
+            with step():
+                builder.build_open_items()
+        report("demands, bypasses, deferral", total, total)
+    site = builder.site
+    refresh_plans(TestPlan.objects.filter(sif__unit__site=site), today)
+    calculations().recompute_many(SafetyFunction.objects.filter(unit__site=site),
+                                  trigger="demo load")
+    report("recompute", total, total)
     return site
+
+
+def started_on(site: Site) -> dt.date:
+    """The demo day a load of the demo site was laid on (its first history row is dated
+    when the plant's design was recorded, ``DESIGN_LEAD`` before that day)."""
+    first = site.history.order_by("history_date", "history_id").first()
+    return first.history_date.date() + DESIGN_LEAD
+
+
+def _complete(site: Site, spec: dict, built: set[str]) -> bool:
+    """Every SIF of the spec built, the open items written (they are written last, in one
+    step) and every SIF of the spec assessed (the load's last step)."""
+    tags = {e["tag"] for e in spec["sifs"]}
+    if not tags <= built:
+        return False
+    if not Demand.objects.filter(sif__unit__site=site).exists():
+        return False
+    assessed = (calculations().Assessment.objects.filter(sif__unit__site=site, sif__tag__in=tags)
+                .values("sif").distinct().count())
+    return assessed == len(tags)
 
 
 def _at(day: dt.date, hour: int = 10) -> dt.datetime:
@@ -78,13 +153,23 @@ class _Builder:
     def __init__(self, spec: dict, today: dt.date):
         self.spec = spec
         self.today = today
+        self.designed_at = _at(today - DESIGN_LEAD)
+        self.steps: dict[int, dict[int, TestStep]] = {}
 
     # -- people, site, library ----------------------------------------------------------
-    def build(self) -> Site:
+    def start(self, site: Site | None):
+        """The site, its people and units and the device library; when ``site`` exists
+        (a load cut short), read them back instead."""
+        if site is not None:
+            self.site = site
+            usernames = [p["username"] for p in self.spec["people"]]
+            self.people = {u.username: u for u in
+                           get_user_model().objects.filter(username__in=usernames)}
+            self.units = {u.code: u for u in site.units.all()}
+            self.types = {t["key"]: DeviceType.objects.get(name=t["name"])
+                          for t in self.spec["device_types"]}
+            return
         s = self.spec["site"]
-        # The plant's design was recorded before its oldest SIF went into service (at most
-        # 12 years ago); the history of every design row is dated then.
-        self.designed_at = _at(self.today - dt.timedelta(days=12 * 365 + 90))
         self.site = changes.attribute(Site(
             code=s["code"], name=s["name"], due_soon_days=s["due_soon_days"],
             escalate_share=s["escalate_share"], escalate_days=s["escalate_days"],
@@ -93,16 +178,18 @@ class _Builder:
         self.site.save()
         User = get_user_model()
         self.people = {}
+        password = make_password(DEMO_PASSWORD)  # one hash (salted once) for every person
         for person in self.spec["people"]:
             user, _ = User.objects.get_or_create(
                 username=person["username"],
                 defaults={"first_name": person["first_name"], "last_name": person["last_name"],
                           "email": f"{person['username']}@saltmere.invalid"},
             )
-            user.set_password(DEMO_PASSWORD)
+            user.password = password
             user.save()
             for role in person["roles"]:
-                Membership.objects.create(user=user, site=self.site, role=role)
+                changes.attribute(Membership(user=user, site=self.site, role=role), None,
+                                  "demo plant", at=self.designed_at).save()
             self.people[person["username"]] = user
         self.units = {}
         for u in self.spec["units"]:
@@ -112,17 +199,16 @@ class _Builder:
             self.units[u["code"]] = unit
         self.types = {}
         for t in self.spec["device_types"]:
-            self.types[t["key"]], _ = DeviceType.objects.get_or_create(
-                name=t["name"], defaults=dict(
-                    role=t["role"], lambda_du_per_hour=t["du"], lambda_dd_per_hour=t["dd"],
-                    lambda_s_per_hour=t["s"], device_class=t["class"],
-                    systematic_capability=t["sc"],
-                    source="Illustrative value for the demo plant (not from a data source)"),
-            )
-        for index, entry in enumerate(self.spec["sifs"]):
-            self.build_sif(index, entry)
-        self.build_open_items()
-        return self.site
+            device_type = DeviceType.objects.filter(name=t["name"]).first()
+            if device_type is None:
+                device_type = changes.attribute(DeviceType(
+                    name=t["name"], role=t["role"], lambda_du_per_hour=t["du"],
+                    lambda_dd_per_hour=t["dd"], lambda_s_per_hour=t["s"],
+                    device_class=t["class"], systematic_capability=t["sc"],
+                    source="Illustrative value for the demo plant (not from a data source)",
+                ), None, "demo plant", at=self.designed_at)
+                device_type.save()
+            self.types[t["key"]] = device_type
 
     def design(self, instance, at: dt.datetime | None = None):
         """Add a design row through the one write path, by the site's lead, dated (in its
@@ -288,7 +374,7 @@ class _Builder:
                force_fail=None):
         tech = self.people["tech" if rng.random() < 0.6 else "tech2"]
         results = []
-        steps = {s.position: s for s in plan.steps.all()} if plan else {}
+        steps = self.steps_of(plan)
         for comp in components:
             # A test finds a DU failure about as often as the device's library rate says
             # (lambda_DU x the plan interval); shutdown valves somewhat more often, so the
@@ -333,11 +419,26 @@ class _Builder:
                 failure_description=desc, measurements=measurements,
             ))
         when = _at(day, rng.randint(8, 15))
+        verified = when + dt.timedelta(days=rng.randint(0, 6))
         rec = services.save_draft(user=tech, sif=sif, kind=kind, performed_at=when,
-                                  results=results, plan=plan)
-        services.sign_record(rec, tech, None, check_password=False, signed_at=when)
+                                  results=results, plan=plan, at=when)
+        services.sign_record(rec, tech, None, check_password=False, signed_at=when, at=when)
         services.verify_record(rec, self.people["verifier"], None, check_password=False,
-                               verified_at=when + dt.timedelta(days=rng.randint(0, 6)))
+                               verified_at=verified, at=verified)
+
+    def bypass(self, sif, start: dt.datetime, hours: float, **fields):
+        """A bypass asked for by the technician, authorised by the lead as it starts."""
+        b = services.open_bypass(user=self.people["tech"], sif=sif, started_at=start,
+                                 authorised_hours=hours, at=start, **fields)
+        return services.authorise_bypass(b, self.people["lead"], at=start)
+
+    def steps_of(self, plan) -> dict:
+        """The plan's steps by position (read once per plan)."""
+        if plan is None:
+            return {}
+        if plan.pk not in self.steps:
+            self.steps[plan.pk] = {s.position: s for s in plan.steps.all()}
+        return self.steps[plan.pk]
 
     def partial_tests(self, sif, plan, finals, in_service, full_dates, rng):
         last_full = full_dates[-1] if full_dates else in_service
@@ -358,10 +459,12 @@ class _Builder:
                 tech = self.people["tech2"]
                 when = _at(day, 9)
                 rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.PARTIAL,
-                                          performed_at=when, results=results, plan=plan)
-                services.sign_record(rec, tech, None, check_password=False, signed_at=when)
+                                          performed_at=when, results=results, plan=plan,
+                                          at=when)
+                services.sign_record(rec, tech, None, check_password=False, signed_at=when,
+                                     at=when)
                 services.verify_record(rec, self.people["verifier"], None,
-                                       check_password=False, verified_at=when)
+                                       check_password=False, verified_at=when, at=when)
             day = add_months(day, 6) + dt.timedelta(days=rng.randint(-15, 3))
         del last_full
 
@@ -383,8 +486,9 @@ class _Builder:
             sif = sifs[tag]
             comps = list(Component.objects.filter(subsystem__sif=sif))
             failed = [c for c in comps if c.subsystem.role == choices.SubsystemRole.FINAL][:1]
+            occurred = _at(self.today - dt.timedelta(days=days_ago), 3)
             services.record_demand(
-                user=tech, sif=sif, occurred_at=_at(self.today - dt.timedelta(days=days_ago), 3),
+                user=tech, sif=sif, occurred_at=occurred, at=occurred,
                 successful=ok, spurious=spurious,
                 description=("Spurious trip: transmitter signal spike." if spurious else
                              "Process demand: trip initiated on high reading." if ok else
@@ -393,35 +497,33 @@ class _Builder:
                 components_exercised=comps if ok else [c for c in comps if c not in failed],
                 failed_components=[] if ok else failed,
             )
-        # Bypasses: closed ones in the past, one open within time, one open too long.
+        # Bypasses: closed ones in the past, one open within time, one open too long. Each
+        # is asked for by the technician doing the work and authorised by the lead when
+        # put in place.
         for tag in rng.sample(sorted(sifs), 12):
             start = _at(self.today - dt.timedelta(days=rng.randint(30, 2500)), 7)
             hours = rng.choice([4, 8, 12, 24, 36])
-            b = services.open_bypass(
-                user=lead, sif=sifs[tag], started_at=start, authorised_hours=hours,
-                reason="Transmitter maintenance", compensating_measures=(
-                    "Operator stationed at local gauge with radio" if rng.random() < 0.5 else ""),
-                measures_effective=False)
-            services.close_bypass(b, lead, ended_at=start + dt.timedelta(
-                hours=hours * rng.uniform(0.3, 1.4)))
+            b = self.bypass(sifs[tag], start, hours, reason="Transmitter maintenance",
+                            compensating_measures=(
+                                "Operator stationed at local gauge with radio"
+                                if rng.random() < 0.5 else ""), measures_effective=False)
+            end = start + dt.timedelta(hours=hours * rng.uniform(0.3, 1.4))
+            services.close_bypass(b, lead, ended_at=end, at=end)
         # noon of the demo day, or the present moment when loading before noon (a record
         # is never dated in the future)
         now = min(dt.datetime.combine(self.today, dt.time(12, 0), tzinfo=dt.UTC),
                   timezone.now())
-        services.open_bypass(user=lead, sif=sifs["U30-SIF-302"],
-                             started_at=now - dt.timedelta(hours=3), authorised_hours=12,
-                             reason="Level transmitter LT-302B replacement",
-                             compensating_measures="Two remaining transmitters in 1oo2; "
-                                                   "operator watches local gauge")
-        services.open_bypass(user=lead, sif=sifs["U40-SIF-404"],
-                             started_at=now - dt.timedelta(hours=80), authorised_hours=24,
-                             reason="Tank gauging upgrade",
-                             compensating_measures="Manual dip every 2 h during filling")
-        # A pending deferral request on a plan coming due, and an old approved one.
+        self.bypass(sifs["U30-SIF-302"], now - dt.timedelta(hours=3), 12,
+                    reason="Level transmitter LT-302B replacement",
+                    compensating_measures="Two remaining transmitters in 1oo2; operator "
+                                          "watches local gauge")
+        self.bypass(sifs["U40-SIF-404"], now - dt.timedelta(hours=80), 24,
+                    reason="Tank gauging upgrade",
+                    compensating_measures="Manual dip every 2 h during filling")
+        # A pending deferral request on a plan coming due, asked for today.
         plan = TestPlan.objects.filter(sif=sifs["U10-SIF-105"], kind="full").first()
-        from register.schedule.due import due_date
-
         due = due_date(plan, self.today)
-        schedule_services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=45),
-                                  reason="Unit turnaround moved by six weeks; the test needs "
-                                         "the unit shut down.", due_on=due)
+        schedule_services.request_deferral(
+            user=tech, plan=plan, proposed_on=due + dt.timedelta(days=45),
+            reason="Unit turnaround moved by six weeks; the test needs the unit shut down.",
+            due_on=due, at=now)

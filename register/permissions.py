@@ -29,6 +29,9 @@ class Action:
     DECIDE_DEFERRAL = "decide_deferral"
     MANAGE_BYPASS = "manage_bypass"
     RECORD_DEMAND = "record_demand"
+    AUTHORISE_BYPASS = "authorise_bypass"
+    MANAGE_FINDING = "manage_finding"
+    CLOSE_FINDING_WITHOUT_RETEST = "close_finding_without_retest"
 
 
 RIGHTS: dict[str, frozenset[str]] = {
@@ -42,6 +45,10 @@ RIGHTS: dict[str, frozenset[str]] = {
     Action.DECIDE_DEFERRAL: frozenset({Role.LEAD}),
     Action.MANAGE_BYPASS: frozenset({Role.LEAD, Role.TECHNICIAN}),
     Action.RECORD_DEMAND: frozenset({Role.LEAD, Role.TECHNICIAN}),
+    # Never the requester: the service refuses a person authorising their own bypass.
+    Action.AUTHORISE_BYPASS: frozenset({Role.LEAD}),
+    Action.MANAGE_FINDING: frozenset({Role.LEAD, Role.TECHNICIAN}),
+    Action.CLOSE_FINDING_WITHOUT_RETEST: frozenset({Role.LEAD}),
 }
 
 

@@ -1,6 +1,6 @@
 """The field rules, in one place: judging a measured value against its test step, which
-steps a device is asked for, what a judgement proposes, and the rules a component result
-must follow.
+steps a device is asked for, what a judgement proposes (verdicts, failure mode and the
+failure description), and the rules a component result must follow.
 
 Used by the field form and its live judging endpoint, by ``MeasuredValue`` (the stored
 ``within_criterion`` flag), by ``ComponentResult.clean`` and by the spreadsheet import,
@@ -16,6 +16,7 @@ those decimals. A value on the boundary is within: 2.4 against 2.3 ± 0.1 is wit
 
 from __future__ import annotations
 
+import hashlib
 import re
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -187,10 +188,18 @@ def _role_from_words(text: str) -> str | None:
 
 
 def step_role(step, sif=None) -> str | None:
-    """The subsystem role whose devices a step measures, or None when it concerns every
-    device. A step has no role field, so it is read from what the step measures: the
-    words of its measured quantity (then of its instruction), a time in seconds (the
-    final elements' stroke), or a target equal to the SIF's trip setpoint (the sensors)."""
+    """The subsystem role whose devices a step concerns, or None when it concerns every
+    device.
+
+    The step's own setting decides: its role (``applies_to_role``), else the role of its
+    device type (``applies_to_type``). A step with neither (every step written before the
+    setting existed) is read from what it measures: the words of its measured quantity
+    (then of its instruction), a time in seconds (the final elements' stroke), or a target
+    equal to the SIF's trip setpoint (the sensors); None when that says nothing."""
+    if getattr(step, "applies_to_role", ""):
+        return step.applies_to_role
+    if getattr(step, "applies_to_type_id", None) is not None:
+        return step.applies_to_type.role
     role = _role_from_words(step.measured_quantity)
     if role:
         return role
@@ -203,13 +212,24 @@ def step_role(step, sif=None) -> str | None:
     return _role_from_words(step.instruction)
 
 
-def steps_for(component, steps: Iterable, *, roles_present: set[str], sif=None) -> list:
-    """The steps that ask ``component`` for a value. A step whose role no device of the
-    test has (e.g. a plan naming only valves) is asked of every device, so no step is
-    silently dropped."""
-    role = component.subsystem.role
+def steps_for(component, steps: Iterable, *, roles_present: set[str],
+              types_present: set[int] | None = None, sif=None) -> list:
+    """The steps ``component`` is asked for (a value, or a check to confirm).
+
+    A step set to a device type is asked of the devices of that type; one set to a role,
+    of the devices of that role; one with neither, as :func:`step_role` reads it. A step
+    that concerns no device of the test is not dropped: a device type no device has falls
+    back to the type's role, and a role no device has (e.g. a plan naming only valves) to
+    every device. ``roles_present`` and ``types_present`` (device type ids; None: not
+    known, taken as present) describe the devices of the test."""
+    role, own_type = component.subsystem.role, component.device_type_id
     out = []
     for step in steps:
+        type_id = getattr(step, "applies_to_type_id", None)
+        if type_id is not None and (types_present is None or type_id in types_present):
+            if type_id == own_type:
+                out.append(step)
+            continue
         concerns = step_role(step, sif)
         if concerns is None or concerns not in roles_present or concerns == role:
             out.append(step)
@@ -225,28 +245,58 @@ PROPOSED_FAIL = gettext_lazy("Proposed: fail (a value is outside its criterion).
 PROPOSED_DU = gettext_lazy("Proposed: dangerous undetected, as a failure found by a proof "
                            "test usually is. Change it if the failure is safe or was "
                            "already detected, and describe the failure below.")
+PROPOSED_DESCRIPTION = gettext_lazy("Proposed from the value found: check it and add what "
+                                    "you saw.")
 WITHDRAWN = gettext_lazy("The values are back within their criterion, so the proposal was "
                          "withdrawn: choose again.")
+DESCRIPTION_WITHDRAWN = gettext_lazy("The values are back within their criterion, so the "
+                                     "proposed description was withdrawn.")
 
 
 @dataclass
 class Proposal:
     """Values to preselect (``""`` clears a choice), the fields now holding a proposal
-    the technician has not changed, and a note per preselected field."""
+    the technician has not changed, and a note per preselected field.
+
+    ``description_mark`` identifies the failure description the rule wrote (empty: the
+    text shown is the technician's, or none was proposed); the page sends it back so a
+    proposed text the technician has not edited can follow the values."""
 
     changes: dict[str, str]
     marked: set[str]
     notes: dict[str, str]
+    description_mark: str = ""
+
+
+def failure_text(judged: Iterable[JudgedValue]) -> str:
+    """The failure description proposed from the values found outside their criterion:
+    each step's quantity with the judgement's reason, e.g. "Trip value as found: 83.2 % is
+    3.2 % above 80 %, more than the ± 1 % allowed." Empty when no value was."""
+    return " ".join(
+        _("%(quantity)s as found: %(reason)s") % {"quantity": item.step.measured_quantity,
+                                                  "reason": item.judgement.reason}
+        for item in judged if item.phase == "found" and item.judgement.outside)
+
+
+def text_mark(text: str) -> str:
+    """A short fingerprint of a text as the page sends it back (spacing and line ends
+    ignored): tells whether a proposed description was edited."""
+    return hashlib.sha256(" ".join((text or "").split()).encode()).hexdigest()[:16]
 
 
 def propose(*, outside_found: bool, outside_left: bool, as_found: str, as_left: str,
-            failure_mode: str, marked: Iterable[str] = ()) -> Proposal:
+            failure_mode: str, marked: Iterable[str] = (), failure_description: str = "",
+            description_mark: str = "", found_outside: Iterable[JudgedValue] = ()
+            ) -> Proposal:
     """What the server's judgement preselects for the technician, who can change it.
 
     A value outside its criterion proposes *fail* for its phase (unless "not tested" was
     chosen), and a failed as-found proposes *dangerous undetected* when no failure mode
-    is chosen. A proposal the technician left untouched is withdrawn when the values come
-    back within (a typing slip corrected); a choice the technician made is never undone.
+    is chosen and, when the description is empty, a description written from the values
+    found outside (``found_outside``, :func:`failure_text`). A proposal the technician
+    left untouched is withdrawn when the values come back within (a typing slip
+    corrected) and a proposed description follows the values while it is not edited; a
+    choice or a text of the technician's is never undone.
     """
     fail, du = choices.Verdict.FAIL, choices.FailureMode.DANGEROUS_UNDETECTED
     marked = set(marked)
@@ -269,7 +319,21 @@ def propose(*, outside_found: bool, outside_left: bool, as_found: str, as_left: 
     elif found_now != fail and "failure_mode" in marked:
         changes["failure_mode"], notes["failure_mode"] = "", WITHDRAWN
         marked.discard("failure_mode")
-    return Proposal(changes, marked, notes)
+    # The failure description: written from the values while the technician has not.
+    text = failure_description or ""
+    untouched = bool(description_mark) and text_mark(text) == description_mark
+    wanted = failure_text(found_outside) if found_now == fail and outside_found else ""
+    mark = description_mark if untouched else ""
+    if wanted and (untouched or not text.strip()):
+        if text_mark(text) != text_mark(wanted):
+            changes["failure_description"] = wanted
+            notes["failure_description"] = PROPOSED_DESCRIPTION
+        mark = text_mark(wanted)
+    elif untouched and text.strip():
+        changes["failure_description"] = ""
+        notes["failure_description"] = DESCRIPTION_WITHDRAWN
+        mark = ""
+    return Proposal(changes, marked, notes, mark)
 
 
 # ---------------------------------------------------------------------------------------

@@ -2,6 +2,7 @@
 the package whose work it runs."""
 
 from register.audit.tasks import build_evidence_pack
+from register.inbox.tasks import send_notification_email
 from register.schedule.tasks import scan_task
 
-__all__ = ["build_evidence_pack", "scan_task"]
+__all__ = ["build_evidence_pack", "scan_task", "send_notification_email"]

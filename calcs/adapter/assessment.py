@@ -394,18 +394,41 @@ def pfd_series_for(sif: SafetyFunction, start: dt.datetime, end: dt.datetime, po
 
 
 def deferral_projection(plan: TestPlan, proposed_on: dt.date, as_of: dt.datetime | None = None):
-    """Projected PFDavg with the next full test on its due date vs on ``proposed_on``."""
+    """Projected PFDavg of the SIF with the next full test at the baseline vs on
+    ``proposed_on``, both over the same window: from ``as_of`` to one plan interval after
+    the proposed date, every later test at the plan interval.
+
+    The baseline is the plan's due date while it is still ahead. Once the test is due or
+    overdue the baseline is testing now (``as_of``), never a due date in the past: what is
+    left to choose is testing today or on the proposed date. Returns ``(comparison,
+    target)``; ``comparison.on_due_date`` is the baseline, ``comparison.deferred`` the test
+    on the proposed date. A plan with no due date, a proposed date not after today (the
+    site's calendar) or one too far ahead for the calendar raises ``InputError`` (an
+    engine error and a ValueError, so every caller's existing handling shows it).
+    """
+    from calcs.engine.errors import InputError
+    from register.days import local_date
     from register.schedule.due import status_of
 
     as_of = as_of or timezone.now()
+    today = local_date(as_of, plan.sif.unit.site)
+    due = status_of(plan, today).due_on
+    if due is None:
+        raise InputError("due_on", "the plan has no due date, so there is nothing to defer")
+    if proposed_on <= today:
+        raise InputError("proposed_on", f"the proposed date {proposed_on:%Y-%m-%d} is not "
+                                        f"after today ({today:%Y-%m-%d})")
+    try:
+        proposed_at = max(_aware(proposed_on), as_of)
+        horizon = proposed_at + dt.timedelta(hours=plan.interval_hours)
+    except OverflowError:
+        raise InputError("proposed_on", f"the proposed date {proposed_on:%Y-%m-%d} is too "
+                                        "far ahead to project") from None
+    baseline_at = as_of if due <= today else max(_aware(due), as_of)
     d = load(SafetyFunction.objects.filter(pk=plan.sif_id))[0]
-    stats = device_type_stats(plan.sif.unit.site_id, as_of.date())
-    hist = history_input(d, rate_table(plan.sif.unit.site, stats, as_of.date()),
+    stats = device_type_stats(plan.sif.unit.site_id, today)
+    hist = history_input(d, rate_table(plan.sif.unit.site, stats, today),
                          assume_closed_after=as_of)
-    due = status_of(plan, as_of.date()).due_on
-    due_at = max(_aware(due), as_of)
-    proposed_at = max(_aware(proposed_on), as_of)
-    horizon = proposed_at + dt.timedelta(hours=plan.interval_hours)
-    cmp = eng_hist.compare_deferral(hist, as_of, due_at, proposed_at, horizon,
+    cmp = eng_hist.compare_deferral(hist, as_of, baseline_at, proposed_at, horizon,
                                     interval_hours=plan.interval_hours)
     return cmp, target_pfd(d)

@@ -50,11 +50,12 @@ class ComponentFilter(df.FilterSet):
 
 class TestPlanFilter(df.FilterSet):
     __test__ = False
+    state = df.ChoiceFilter(field_name="state", choices=choices.PlanState.choices,
+                            label="State today (derived when read)")
 
     class Meta:
         model = TestPlan
-        fields = {"sif": ["exact"], "kind": ["exact"], "cached_state": ["exact"],
-                  "next_due_on": ["lte", "gte"]}
+        fields = {"sif": ["exact"], "kind": ["exact"], "next_due_on": ["lte", "gte"]}
 
 
 class TestRecordFilter(df.FilterSet):
@@ -82,10 +83,12 @@ class DemandFilter(df.FilterSet):
 
 class BypassFilter(df.FilterSet):
     open = df.BooleanFilter(field_name="ended_at", lookup_expr="isnull", label="Still open")
+    state = df.ChoiceFilter(field_name="state", choices=choices.BypassState.choices,
+                            label="State now (derived when read)")
 
     class Meta:
         model = Bypass
-        fields = ["sif", "component", "cached_state"]
+        fields = ["sif", "component"]
 
 
 class DeferralFilter(df.FilterSet):

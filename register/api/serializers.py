@@ -174,13 +174,16 @@ class TestPlanSerializer(DesignSerializer):
     __test__ = False
     parent_field = "sif"
     steps = TestStepSerializer(many=True, read_only=True)
+    state = serializers.CharField(read_only=True, help_text=(
+        "The plan's state today on its site's calendar, derived when read from the due date "
+        "and the site's thresholds."))
 
     class Meta:
         model = TestPlan
         fields = ["id", "sif", "name", "kind", "components", "interval_months", "coverage",
-                  "demand_counts_as_test", "assignee", "next_due_on", "cached_state", "steps",
-                  "change_reason", "change_reference"]
-        read_only_fields = ["components", "assignee", "next_due_on", "cached_state"]
+                  "demand_counts_as_test", "effective_from", "assignee", "next_due_on",
+                  "state", "steps", "change_reason", "change_reference"]
+        read_only_fields = ["components", "assignee", "next_due_on", "state"]
 
 
 # --- Test records -----------------------------------------------------------------------
@@ -325,18 +328,28 @@ class BulkResponseSerializer(serializers.Serializer):
 class DemandSerializer(LedgerModelSerializer):
     class Meta:
         model = Demand
-        fields = ["id", "sif", "occurred_at", "successful", "spurious", "description",
-                  "components_exercised", "failed_components", "recorded_by"]
-        read_only_fields = ["recorded_by"]
+        fields = ["id", "sif", "occurred_at", "successful", "spurious", "cause", "description",
+                  "components_exercised", "failed_components", "recorded_by", "findings"]
+        read_only_fields = ["recorded_by", "findings"]
+        extra_kwargs = {
+            "components_exercised": {"help_text": "Devices that acted."},
+            "failed_components": {"help_text": "Devices that failed to act: each opens a "
+                                               "finding."},
+        }
 
 
 class BypassSerializer(LedgerModelSerializer):
+    state = serializers.CharField(read_only=True, help_text="The state now, derived when read.")
+
     class Meta:
         model = Bypass
         fields = ["id", "sif", "component", "started_at", "ended_at", "authorised_hours",
-                  "reason", "authorised_by", "compensating_measures", "measures_effective",
-                  "cached_state"]
-        read_only_fields = ["ended_at", "authorised_by", "cached_state"]
+                  "reason", "requested_by", "authorised_by", "authorised_at", "closed_by",
+                  "compensating_measures", "measures_effective", "state"]
+        # The requester is the caller; the authoriser is set by ``authorise`` only, by a
+        # lead of the site who is not the requester.
+        read_only_fields = ["ended_at", "requested_by", "authorised_by", "authorised_at",
+                            "closed_by", "state"]
 
 
 class CloseBypassSerializer(serializers.Serializer):
@@ -344,8 +357,8 @@ class CloseBypassSerializer(serializers.Serializer):
 
 
 class DeferralSerializer(LedgerModelSerializer):
-    due_on = serializers.DateField(required=False, allow_null=True, default=None,
-                                   help_text="Defaults to the plan's current due date.")
+    due_on = serializers.DateField(read_only=True, help_text=(
+        "The due date being deferred: the plan's current due date, set by the server."))
 
     class Meta:
         model = Deferral
@@ -360,8 +373,6 @@ class DeferralSerializer(LedgerModelSerializer):
 class DecideSerializer(serializers.Serializer):
     approve = serializers.BooleanField()
     note = serializers.CharField(required=False, allow_blank=True, default="")
-    projected_pfd_avg = serializers.FloatField(required=False, allow_null=True, default=None,
-                                               min_value=0.0, max_value=1.0)
 
 
 # --- Read only ----------------------------------------------------------------------------

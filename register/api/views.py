@@ -50,6 +50,8 @@ from register.models import (
 )
 from register.permissions import Action
 from register.schedule import services as schedule_services
+from register.schedule.due import with_state
+from register.schedule.scan import bypass_state_expression
 
 NON_FIELD = "non_field_errors"
 
@@ -192,6 +194,9 @@ class TestPlanViewSet(DesignViewSet):
     queryset = TestPlan.objects.select_related("sif__unit").prefetch_related("components",
                                                                             "steps")
     serializer_class = s.TestPlanSerializer
+
+    def get_queryset(self):
+        return with_state(super().get_queryset())
     filterset_class = filters.TestPlanFilter
 
 
@@ -327,7 +332,7 @@ class TestRecordViewSet(mixins.CreateModelMixin, mixins.UpdateModelMixin,
 
 class DemandViewSet(mixins.CreateModelMixin, ReadViewSet):
     queryset = Demand.objects.select_related("sif").prefetch_related(
-        "components_exercised", "failed_components")
+        "components_exercised", "failed_components", "findings")
     serializer_class = s.DemandSerializer
     filterset_class = filters.DemandFilter
     write_rights = {"create": Action.RECORD_DEMAND}
@@ -340,8 +345,12 @@ class DemandViewSet(mixins.CreateModelMixin, ReadViewSet):
 class BypassViewSet(mixins.CreateModelMixin, ReadViewSet):
     queryset = Bypass.objects.select_related("sif")
     serializer_class = s.BypassSerializer
+
+    def get_queryset(self):
+        return super().get_queryset().annotate(state=bypass_state_expression(timezone.now()))
     filterset_class = filters.BypassFilter
-    write_rights = {"create": Action.MANAGE_BYPASS, "close": Action.MANAGE_BYPASS}
+    write_rights = {"create": Action.MANAGE_BYPASS, "close": Action.MANAGE_BYPASS,
+                    "authorise": Action.AUTHORISE_BYPASS}
 
     def perform_create(self, serializer):
         serializer.instance = services.open_bypass(user=self.request.user,
@@ -355,7 +364,14 @@ class BypassViewSet(mixins.CreateModelMixin, ReadViewSet):
         ser = s.CloseBypassSerializer(data=request.data)
         ser.is_valid(raise_exception=True)
         bypass = services.close_bypass(bypass, request.user, ser.validated_data["ended_at"])
-        return Response(self.get_serializer(bypass).data)
+        return Response(self.get_serializer(self.get_queryset().get(pk=bypass.pk)).data)
+
+    @extend_schema(request=None, responses={200: s.BypassSerializer})
+    @action(detail=True, methods=["post"])
+    def authorise(self, request, pk=None):
+        """A lead of the site, never the requester, authorises the bypass (now)."""
+        bypass = services.authorise_bypass(self.get_object(), request.user)
+        return Response(self.get_serializer(self.get_queryset().get(pk=bypass.pk)).data)
 
 
 class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
@@ -365,8 +381,10 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
     write_rights = {"create": Action.REQUEST_DEFERRAL, "decide": Action.DECIDE_DEFERRAL}
 
     def perform_create(self, serializer):
-        serializer.instance = schedule_services.request_deferral(user=self.request.user,
-                                                        **serializer.validated_data)
+        d = serializer.validated_data  # the due date and the projection are the server's
+        serializer.instance = schedule_services.request_deferral(
+            user=self.request.user, plan=d["plan"], proposed_on=d["proposed_on"],
+            reason=d["reason"])
 
     @extend_schema(request=s.DecideSerializer, responses={200: s.DeferralSerializer})
     @action(detail=True, methods=["post"])
@@ -377,8 +395,7 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
         ser.is_valid(raise_exception=True)
         d = ser.validated_data
         deferral = schedule_services.decide_deferral(deferral, request.user, approve=d["approve"],
-                                            note=d["note"],
-                                            projected_pfd_avg=d["projected_pfd_avg"])
+                                                     note=d["note"])
         return Response(self.get_serializer(deferral).data)
 
 

@@ -19,9 +19,11 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_http_methods
 
+from register import choices
 from register.audit.chain import entries_for, verify_chain
 from register.audit.evidence import pack_file, pack_request_errors, request_pack
 from register.days import end_of_day
+from register.days import today as site_today
 from register.models import (
     Component,
     EvidencePack,
@@ -44,6 +46,19 @@ def _export_sites(user):
 # ---------------------------------------------------------------------------------------
 
 
+def record_label(model_label: str) -> str:
+    """A chain entry's record kind in plain words ("test record"), not the history
+    table's name."""
+    from django.apps import apps
+
+    try:
+        model = apps.get_model(model_label)
+    except (LookupError, ValueError):
+        return model_label
+    model = getattr(model, "instance_type", model)
+    return str(model._meta.verbose_name)
+
+
 @login_required
 def chain(request):
     """Verify the chain now and show the result with the newest entries."""
@@ -52,6 +67,8 @@ def chain(request):
         raise PermissionDenied("The change chain is open to auditors and leads.")
     result = verify_chain()
     recent = entries_for(user)
+    for e in recent:
+        e.record_label = record_label(e.model_label)
     return render(request, "register/audit/chain.html", {"result": result, "recent": recent})
 
 
@@ -166,7 +183,7 @@ def sif_as_of_data(sif: SafetyFunction, day: dt.date) -> dict:
     """The SIF, its hardware, test states and PFDavg as they stood at the end of ``day``."""
     from register.calculations import calculations
 
-    end = end_of_day(day)
+    end = end_of_day(day, sif.unit.site)
     # The newest history row on or before the date (a deleted SIF shows as "-").
     then = (SafetyFunction.history.filter(id=sif.pk, history_date__lte=end)
             .order_by("-history_date", "-history_id").first())
@@ -175,14 +192,18 @@ def sif_as_of_data(sif: SafetyFunction, day: dt.date) -> dict:
     subs = list(Subsystem.history.as_of(end).filter(sif_id=sif.pk).order_by("position", "id"))
     comps = list(Component.history.as_of(end).filter(
         subsystem_id__in=[s.pk for s in subs]).order_by("tag"))
-    plans = TestPlan.objects.filter(sif=sif)
-    plan_names = dict(plans.values_list("pk", "name"))
-    statuses = [(plan_names[pid], st) for pid, st in compute_statuses(plans, day).items()]
+    # The plans recorded by then, as they stood (interval of the version in force then).
+    then_plans = {p.id: p for p in TestPlan.history.as_of(end).filter(sif_id=sif.pk)}
+    plans = TestPlan.objects.filter(pk__in=then_plans)
+    statuses = [{"plan": then_plans[pid], "status": st, "badge": choices.plan_state_badge(st.state)}
+                for pid, st in sorted(compute_statuses(plans, day).items(),
+                                      key=lambda kv: then_plans[kv[0]].name)]
     stored = calculations().Assessment.objects.filter(sif=sif, as_of__lte=end).order_by("-as_of", "-id").first()
     computed, computed_error = None, ""
     try:
         d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
         _cut(d, end)
+        _as_recorded(d, then, subs, comps, then_plans)
         stats = calculations().device_type_stats(sif.unit.site_id, day)
         computed = calculations().assess(d, end, calculations().rate_table(sif.unit.site, stats, as_of=day), stats,
                                   trigger="as-of view (not stored)")
@@ -193,6 +214,37 @@ def sif_as_of_data(sif: SafetyFunction, day: dt.date) -> dict:
     return {"then": then, "subsystems": subs, "components": comps, "statuses": statuses,
             "stored": stored, "computed": computed, "computed_error": computed_error,
             "end": end}
+
+
+def _copy_fields(target, historical) -> None:
+    for f in type(target)._meta.concrete_fields:
+        if f.primary_key or f.name in ("next_due_on", "due_soon_on", "escalated_on",
+                                       "escalated_2_on", "next_change_on"):
+            continue
+        if hasattr(historical, f.attname):
+            setattr(target, f.attname, getattr(historical, f.attname))
+
+
+def _as_recorded(d, then, subs, comps, plans) -> None:
+    """Give the loaded SIF the design data it had on the date (in memory only): the SIF's,
+    its subsystems', components' and plans' values from their history rows."""
+    if then is not None:
+        _copy_fields(d.sif, then)
+    by_id = {s.pk: s for s in subs}
+    d.subsystems = [s for s in d.subsystems if s.pk in by_id]
+    for s in d.subsystems:
+        _copy_fields(s, by_id[s.pk])
+    comp_by_id = {c.pk: c for c in comps}
+    for sub_id in list(d.components):
+        if sub_id not in by_id:
+            del d.components[sub_id]
+            continue
+        d.components[sub_id] = [c for c in d.components[sub_id] if c.obj.pk in comp_by_id]
+        for c in d.components[sub_id]:
+            _copy_fields(c.obj, comp_by_id[c.obj.pk])
+    d.plans = [p for p in d.plans if p.pk in plans]
+    for p in d.plans:
+        _copy_fields(p, plans[p.pk])
 
 
 def _cut(d, end):
@@ -221,7 +273,7 @@ def sif_as_of(request, pk):
         except ValueError:
             error = "Give the date as YYYY-MM-DD."
         else:
-            if day > timezone.localdate():
+            if day > site_today(sif.unit.site):
                 day, error = None, "The date is in the future."
     ctx = {"sif": sif, "date": raw, "error": error, "day": day}
     if day:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import math
+import re
 import uuid
 
 from django import forms
@@ -63,9 +64,11 @@ class HeaderForm(forms.Form):
 class ComponentForm(forms.Form):
     """As-found / as-left verdicts, values measured on the steps, work done, failure found.
 
-    ``steps`` are the steps that apply to this component (``rules.steps_for``). Values are
-    judged by ``register.rules`` only; the page shows that judgement live (htmx) or after
-    submit, and :meth:`apply_proposals` preselects what it proposes.
+    ``steps`` are the steps that apply to this component (``rules.steps_for``): a step with
+    a measured quantity asks for values (``measured``), one without is a check to confirm
+    (``checks``). Values are judged by ``register.rules`` only; the page shows that
+    judgement live (htmx) or after submit, and :meth:`apply_proposals` preselects what it
+    proposes (verdicts, failure mode, failure description).
     """
 
     as_found = forms.ChoiceField(label="As found", choices=VERDICT_CHOICES, required=False,
@@ -78,20 +81,25 @@ class ComponentForm(forms.Form):
                                      choices=[("", "No failure")] + FAILURE_CHOICES,
                                      widget=forms.RadioSelect)
     failure_description = forms.CharField(label="Failure description", required=False,
-                                          widget=forms.Textarea(attrs={"rows": 2}))
+                                          widget=forms.Textarea(attrs={"rows": 3}))
 
     #: Name (after the prefix) of the hidden input listing the choices the page preselected
     #: from the judgement and the technician has not changed. Page state, not a result.
     PROPOSED = "proposed"
     PROPOSABLE = ("as_found", "as_left", "failure_mode")
+    #: Name of the hidden input holding the mark of a failure description the page
+    #: proposed (``rules.text_mark``). Page state, not a result.
+    PROPOSED_TEXT = "proposed_text"
 
     def __init__(self, *args, component: Component, steps: list[TestStep],
                  sif: SafetyFunction, signing: bool = False, **kwargs):
         kwargs.setdefault("prefix", f"c{component.pk}")
         super().__init__(*args, **kwargs)
-        self.component, self.steps, self.sif, self.signing = component, steps, sif, signing
-        self.proposal = rules.Proposal({}, set(self._marked()), {})
-        for step in steps:
+        self.component, self.sif, self.signing = component, sif, signing
+        self.steps = [s for s in steps if s.measured_quantity]
+        self.checks = [s for s in steps if not s.measured_quantity]
+        self.proposal = rules.Proposal({}, set(self._marked()), {}, self._description_mark())
+        for step in self.steps:
             for phase in ("found", "left"):
                 self.fields[self.value_name(step, phase)] = forms.CharField(
                     required=False, label=f"{step.measured_quantity}, as {phase}",
@@ -107,16 +115,24 @@ class ComponentForm(forms.Form):
         raw = self.data.get(self.add_prefix(self.PROPOSED), "") if self.is_bound else ""
         return [f for f in raw.split(",") if f in self.PROPOSABLE]
 
-    def judgement(self, step: TestStep, phase: str) -> rules.Judgement | None:
-        """The rule's judgement of the value shown in the box (typed or saved), or None."""
+    def _description_mark(self) -> str:
+        raw = self.data.get(self.add_prefix(self.PROPOSED_TEXT), "") if self.is_bound else ""
+        return raw if re.fullmatch(r"[0-9a-f]{16}", raw or "") else ""
+
+    def _shown(self, step: TestStep, phase: str) -> tuple[float | None, rules.Judgement | None]:
+        """The number in the box (typed or saved) and the rule's judgement of it."""
         raw = self[self.value_name(step, phase)].value()
         if raw in (None, ""):
-            return None
+            return None, None
         try:
             value = parse_number(str(raw))
         except ValueError:
-            return rules.not_a_number(str(raw))
-        return rules.judge_measurement(step, value, sif=self.sif)
+            return None, rules.not_a_number(str(raw))
+        return value, rules.judge_measurement(step, value, sif=self.sif)
+
+    def judgement(self, step: TestStep, phase: str) -> rules.Judgement | None:
+        """The rule's judgement of the value shown in the box (typed or saved), or None."""
+        return self._shown(step, phase)[1]
 
     def measurement_rows(self):
         """For the template: one row per step with its two bound fields and judgements."""
@@ -133,21 +149,27 @@ class ComponentForm(forms.Form):
         """The inputs the live judging request sends (htmx ``hx-params``)."""
         names = [self.add_prefix(self.value_name(s, p)) for s in self.steps
                  for p in ("found", "left")]
-        names += [self.add_prefix(n) for n in (*self.PROPOSABLE, self.PROPOSED)]
+        names += [self.add_prefix(n) for n in (*self.PROPOSABLE, self.PROPOSED,
+                                               "failure_description", self.PROPOSED_TEXT)]
         return ",".join(names)
 
     def apply_proposals(self) -> rules.Proposal:
         """Preselect what the judgement proposes (``rules.propose``) in the displayed
         choices; nothing is saved. The technician can change every choice."""
         outside = {"found": False, "left": False}
+        found_outside = []
         for step in self.steps:
             for phase in outside:
-                judged = self.judgement(step, phase)
-                outside[phase] = outside[phase] or bool(judged and judged.outside)
+                value, judged = self._shown(step, phase)
+                if judged and judged.outside:
+                    outside[phase] = True
+                    found_outside.append(rules.JudgedValue(step, phase, value, judged))
         current = {n: self[n].value() or "" for n in self.PROPOSABLE}
-        self.proposal = rules.propose(outside_found=outside["found"],
-                                      outside_left=outside["left"], marked=self._marked(),
-                                      **current)
+        self.proposal = rules.propose(
+            outside_found=outside["found"], outside_left=outside["left"],
+            marked=self._marked(), failure_description=self["failure_description"].value(),
+            description_mark=self._description_mark(), found_outside=found_outside,
+            **current)
         if self.proposal.changes and self.is_bound:
             self.data = self.data.copy()
             for name, value in self.proposal.changes.items():
@@ -159,9 +181,27 @@ class ComponentForm(forms.Form):
         return [{"bf": self[name], "note": self.proposal.notes.get(name, "")}
                 for name in self.PROPOSABLE if name in self.proposal.changes]
 
+    def proposed_description(self) -> dict | None:
+        """The failure description the last :meth:`apply_proposals` wrote or withdrew."""
+        if "failure_description" not in self.proposal.changes:
+            return None
+        return {"bf": self["failure_description"],
+                "note": self.proposal.notes.get("failure_description", "")}
+
     @property
     def proposed_marker(self) -> str:
         return ",".join(sorted(self.proposal.marked))
+
+    @property
+    def failure_open(self) -> bool:
+        """Whether the page shows the failure section open: something failed, a failure or
+        work is recorded, or one of its fields has an error."""
+        section = ("failure_mode", "failure_description", "work_done")
+        if choices.Verdict.FAIL in (self["as_found"].value(), self["as_left"].value()):
+            return True
+        if any(self[name].value() for name in section):
+            return True
+        return self.is_bound and any(name in self.errors for name in section)
 
     # -- validation ---------------------------------------------------------------------
     def has_entries(self) -> bool:

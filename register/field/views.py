@@ -11,7 +11,8 @@ from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.core.paginator import Paginator
 from django.db import transaction
-from django.db.models import Count, F, Q
+from django.db.models import Count, F, Q, Value
+from django.db.models.functions import Replace, Upper
 from django.http import FileResponse, Http404
 from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
@@ -30,7 +31,7 @@ from register.field.forms import (
 from register.models import Attachment, Component, TestPlan, TestRecord
 from register.permissions import Action, can, can_somewhere, require
 from register.rules import steps_for
-from register.schedule.due import compute_statuses, status_of
+from register.schedule.due import live_statuses
 
 PER_PAGE = 20
 TOKEN_RE = re.compile(r"^[0-9a-f]{32}$")
@@ -49,7 +50,7 @@ def _state_badge(state: str) -> dict:
 def _plan_status(plan: TestPlan | None):
     if plan is None:
         return None
-    st = status_of(plan, timezone.localdate())
+    st = live_statuses(TestPlan.objects.filter(pk=plan.pk))[plan.pk]
     return {"due_on": st.due_on, "days_overdue": st.days_overdue, **_state_badge(st.state)}
 
 
@@ -66,9 +67,11 @@ def _components(plan: TestPlan | None, sif) -> list[Component]:
 
 
 def _steps(plan: TestPlan | None):
+    """The plan's steps: those with a measured quantity ask for values, the others are
+    checks to confirm; ``rules.steps_for`` says which devices each one is asked of."""
     if plan is None:
         return []
-    return list(plan.steps.exclude(measured_quantity="").order_by("position"))
+    return list(plan.steps.select_related("applies_to_type").order_by("position"))
 
 
 def _initial_from(record: TestRecord | None):
@@ -91,10 +94,12 @@ def _initial_from(record: TestRecord | None):
     return header, per_component
 
 
-def _component_form(data, *, component, steps, roles, sif, **kwargs):
-    """The form of one device, asking only for the steps that apply to it."""
-    return ComponentForm(data, component=component, sif=sif, **kwargs,
-                         steps=steps_for(component, steps, roles_present=roles, sif=sif))
+def _component_form(data, *, component, steps, components, sif, **kwargs):
+    """The form of one device, asking only for the steps that apply to it (among the
+    devices of the test, ``components``)."""
+    return ComponentForm(data, component=component, sif=sif, **kwargs, steps=steps_for(
+        component, steps, roles_present={c.subsystem.role for c in components},
+        types_present={c.device_type_id for c in components}, sif=sif))
 
 
 def _build_forms(request, *, sif, plan, record=None):
@@ -105,9 +110,8 @@ def _build_forms(request, *, sif, plan, record=None):
                         extra_kind=record.kind if record else None)
     steps = _steps(plan)
     components = _components(plan, sif)
-    roles = {c.subsystem.role for c in components}
     comp_forms = [
-        _component_form(data, component=c, steps=steps, roles=roles, sif=sif,
+        _component_form(data, component=c, steps=steps, components=components, sif=sif,
                         signing=signing, initial=comp_initial.get(c.pk, {}))
         for c in components
     ]
@@ -267,6 +271,63 @@ def _max_bytes():
 
 
 # ---------------------------------------------------------------------------------------
+# The field search
+# ---------------------------------------------------------------------------------------
+
+SEPARATORS = ("-", " ", "_", "/", ".")
+SEPARATORS_RE = re.compile(r"[-\s_/.]+")
+MAX_TERMS = 6
+
+
+def search_terms(text: str) -> list[str]:
+    """The words of a search; a word of separators only ("-") is dropped."""
+    return [w for w in text.split() if SEPARATORS_RE.sub("", w)][:MAX_TERMS]
+
+
+def _compact(expression):
+    """A tag in capitals without its separators: "xv101", "XV 101" and "XV-101" alike."""
+    for sep in SEPARATORS:
+        expression = Replace(expression, Value(sep), Value(""))
+    return Upper(expression)
+
+
+def _tag_q(field: str, compact: str, term: str) -> Q:
+    """``field`` (a tag), or its ``compact`` annotation, holds ``term``."""
+    return Q(**{f"{field}__icontains": term}) | Q(**{
+        f"{compact}__contains": SEPARATORS_RE.sub("", term).upper()})
+
+
+def _devices_matching(qs, terms: list[str]):
+    """The components of ``qs`` whose tag holds any of ``terms``."""
+    match = Q()
+    for term in terms:
+        match |= _tag_q("tag", "tag_compact", term)
+    return qs.annotate(tag_compact=_compact(F("tag"))).filter(match)
+
+
+def matching_plans(plans, terms: list[str]):
+    """The plans a technician's search finds. Every word must be found in one of: the
+    SIF's tag or name (the name holds the equipment, e.g. "desalter V-1001"), the code or
+    name of its unit, or the tag of a device of the test (the devices the plan names, or
+    every device of the SIF when it names none). Tags also match without separators
+    ("lt101a" finds LT-101A); case never matters."""
+    if not terms:
+        return plans
+    through = TestPlan.components.through.objects
+    any_named = through.values("testplan_id")
+    plans = plans.annotate(sif_tag_compact=_compact(F("sif__tag")))
+    for term in terms:
+        devices = _devices_matching(Component.objects.all(), [term])
+        plans = plans.filter(
+            _tag_q("sif__tag", "sif_tag_compact", term) | Q(sif__name__icontains=term)
+            | Q(sif__unit__code__icontains=term) | Q(sif__unit__name__icontains=term)
+            | Q(pk__in=through.filter(component__in=devices.values("pk"))
+                .values("testplan_id"))
+            | (Q(sif_id__in=devices.values("subsystem__sif_id")) & ~Q(pk__in=any_named)))
+    return plans
+
+
+# ---------------------------------------------------------------------------------------
 # Views
 # ---------------------------------------------------------------------------------------
 
@@ -281,25 +342,18 @@ def worklist(request):
     plans = TestPlan.objects.restrict(user, Action.RECORD_TEST).filter(
         sif__life_stage=choices.LifeStage.IN_SERVICE)
     q = request.GET.get("q", "").strip()[:60]
-    if q:
-        through = TestPlan.components.through.objects
-        named_match = through.filter(component__tag__icontains=q).values("testplan_id")
-        any_named = through.values("testplan_id")
-        sif_match = Component.objects.filter(tag__icontains=q).values("subsystem__sif_id")
-        plans = plans.filter(
-            Q(sif__tag__icontains=q) | Q(pk__in=named_match)
-            | (Q(sif_id__in=sif_match) & ~Q(pk__in=any_named))
-        )
+    terms = search_terms(q)
+    plans = matching_plans(plans, terms)
     plans = plans.select_related("sif__unit").order_by(
         F("next_due_on").asc(nulls_last=True), "sif__tag", "name")
     page = Paginator(plans, PER_PAGE).get_page(request.GET.get("page"))
     ids = [p.pk for p in page]
-    statuses = compute_statuses(TestPlan.objects.filter(pk__in=ids), timezone.localdate())
+    statuses = live_statuses(TestPlan.objects.filter(pk__in=ids))
     matched: dict[int, list[str]] = {}
-    if q and ids:
-        for sif_id, tag in Component.objects.filter(
-                subsystem__sif_id__in={p.sif_id for p in page}, tag__icontains=q
-        ).values_list("subsystem__sif_id", "tag")[:200]:
+    if terms and ids:
+        for sif_id, tag in _devices_matching(Component.objects.filter(
+                subsystem__sif_id__in={p.sif_id for p in page}), terms).values_list(
+                "subsystem__sif_id", "tag").order_by("subsystem__sif_id", "tag")[:200]:
             matched.setdefault(sif_id, []).append(tag)
     rows = []
     for plan in page:
@@ -337,7 +391,7 @@ def judge(request, plan_id, component_id):
     if component is None:
         raise Http404("This device is not part of the test.")
     form = _component_form(request.GET, component=component, steps=_steps(plan),
-                           roles={c.subsystem.role for c in components}, sif=plan.sif)
+                           components=components, sif=plan.sif)
     form.apply_proposals()
     response = render(request, "register/field/_judged.html", {"cf": form})
     response["Cache-Control"] = "private, no-store"

@@ -40,6 +40,23 @@ def design_result(sif_id: int, kind: str | None = None, pk: int | None = None,
         return exc, calculations().target_pfd(d)
 
 
+def _plan_effect(plan, changes: dict) -> dict:
+    """What a plan change does to the plan's current due date and state."""
+    from register.days import today as site_today
+    from register.schedule.due import live_statuses, status_with_change
+
+    today = site_today(plan.sif.unit.site)
+    effective = changes.get("effective_from") or today
+    now = live_statuses(type(plan).objects.filter(pk=plan.pk))[plan.pk]
+    then = status_with_change(plan, changes.get("interval_months", plan.interval_months),
+                              effective, today)
+    return {"effective_from": effective, "due_before": now.due_on, "due_after": then.due_on,
+            "state_before": choices.plan_state_badge(now.state),
+            "state_after": choices.plan_state_badge(then.state),
+            "kept": now.due_on is not None and now.due_on < effective
+            and now.due_on == then.due_on and then.days_overdue > 0}
+
+
 def _fingerprint(changes: dict) -> str:
     return json.dumps({k: changes[k] for k in sorted(changes)}, default=str)
 
@@ -79,7 +96,8 @@ def edit_design(request, kind, pk):
                     else:
                         messages.success(request, "Change saved.")
                     return redirect(reverse("register:sif_detail", args=[sif_id]) + "#design")
-            preview = {"after": after, "fingerprint": fingerprint,
+            plan_effect = _plan_effect(obj, changes) if kind == "plan" else None
+            preview = {"after": after, "fingerprint": fingerprint, "plan": plan_effect,
                        "after_error": str(after) if isinstance(after, Exception) else "",
                        "after_sil": None if isinstance(after, Exception)
                        else calculations().sil_from_pfd(after.pfd_avg),

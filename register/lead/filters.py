@@ -8,10 +8,10 @@ from __future__ import annotations
 
 import django_filters as df
 from django.db.models import Case, Exists, IntegerField, OuterRef, Q, Subquery, Value, When
-from django.utils import timezone
 
 from register import choices
 from register.calculations import calculations
+from register.days import today
 from register.models import (
     Bypass,
     Component,
@@ -24,9 +24,9 @@ from register.models import (
     not_decommissioned,
 )
 from register.presenters import VERDICT_BADGE, sif_ids_with_repeat_offenders
+from register.schedule.due import LATE_STATES, on_time_rate, with_state
 
 PlanState = choices.PlanState
-LATE_STATES = [PlanState.OVERDUE, PlanState.ESCALATED, PlanState.ESCALATED_2]
 ESCALATED_STATES = [PlanState.ESCALATED, PlanState.ESCALATED_2]
 DEMAND_FLAG_TEXT = "Observed demand rate"
 ANY = "Any"
@@ -40,9 +40,15 @@ def _yes_no():
     return forms.Select(choices=[("", ANY), ("true", "Yes"), ("false", "No")])
 
 
-_RANK = Case(*[When(cached_state=state, then=Value(rank))
-               for state, rank in choices.PLAN_STATE_RANK.items()],
-             default=Value(0), output_field=IntegerField())
+def _plans_of_row():
+    """The SIF's plans with their state for today (read time, ``schedule.due``)."""
+    return with_state(TestPlan.objects.filter(sif_id=OuterRef("pk")))
+
+
+def _rank():
+    return Case(*[When(state=state, then=Value(rank))
+                  for state, rank in choices.PLAN_STATE_RANK.items()],
+                default=Value(0), output_field=IntegerField())
 
 
 def _latest(field: str):
@@ -52,7 +58,7 @@ def _latest(field: str):
 
 def annotate_register(qs):
     """Columns of the register list, as subqueries: one SQL query for a whole page."""
-    plans = TestPlan.objects.filter(sif_id=OuterRef("pk"))
+    plans = _plans_of_row()
     return qs.annotate(
         latest_id=_latest("id"),
         latest_meets=_latest("meets_target"),
@@ -62,11 +68,11 @@ def annotate_register(qs):
         latest_target=_latest("target_pfd_avg"),
         next_due=Subquery(plans.filter(next_due_on__isnull=False).order_by("next_due_on")
                           .values("next_due_on")[:1]),
-        worst_state=Subquery(plans.annotate(rank=_RANK).order_by("-rank")
-                             .values("cached_state")[:1]),
-        has_late=Exists(plans.filter(cached_state__in=LATE_STATES)),
-        has_escalated=Exists(plans.filter(cached_state__in=ESCALATED_STATES)),
-        has_due_soon=Exists(plans.filter(cached_state=PlanState.DUE_SOON)),
+        worst_state=Subquery(plans.annotate(rank=_rank()).order_by("-rank")
+                             .values("state")[:1]),
+        has_late=Exists(plans.filter(state__in=LATE_STATES)),
+        has_escalated=Exists(plans.filter(state__in=ESCALATED_STATES)),
+        has_due_soon=Exists(plans.filter(state=PlanState.DUE_SOON)),
         open_bypass=Exists(Bypass.objects.filter(sif_id=OuterRef("pk"), ended_at__isnull=True)),
     ).select_related("unit__site")
 
@@ -111,7 +117,9 @@ class SifFilter(df.FilterSet):
         ("tag", "tag"), ("unit__code", "unit"), ("target_sil", "sil"),
         ("latest_achieved", "achieved"), ("latest_design", "design"),
         ("next_due", "due"),
-    ), label="Sort by", empty_label="Unit and tag")
+    ), field_labels={"tag": "Tag", "unit__code": "Unit", "target_sil": "Required SIL",
+                     "latest_achieved": "Achieved PFDavg", "latest_design": "Design PFDavg",
+                     "next_due": "Next due date"}, label="Sort by", empty_label="Unit and tag")
 
     class Meta:
         model = SafetyFunction
@@ -181,12 +189,13 @@ class SifFilter(df.FilterSet):
                   "escalated": ESCALATED_STATES}.get(value)
         if not states:
             return qs
-        return qs.filter(Exists(TestPlan.objects.filter(sif_id=OuterRef("pk"),
-                                                        cached_state__in=states)))
+        # the SIFs in service with at least one such plan (as the overview counts them)
+        return qs.filter(life_stage=choices.LifeStage.IN_SERVICE).filter(
+            Exists(_plans_of_row().filter(state__in=states)))
 
     def by_overdue(self, qs, name, value):
-        exists = Exists(TestPlan.objects.filter(sif_id=OuterRef("pk"),
-                                                cached_state__in=LATE_STATES))
+        exists = Exists(_plans_of_row().filter(state__in=LATE_STATES,
+                                               sif__life_stage=choices.LifeStage.IN_SERVICE))
         if value is None:
             return qs
         return qs.filter(exists) if value else qs.exclude(exists)
@@ -213,8 +222,29 @@ class SifFilter(df.FilterSet):
     def by_late_12m(self, qs, name, value):
         if value is None:
             return qs
-        from register.lead.views import on_time_rate
-
         plans = TestPlan.objects.filter(sif__in=self.queryset.values("pk"))
-        late = on_time_rate(plans, timezone.localdate()).late_sif_ids
+        late = on_time_rate(plans, today()).late_sif_ids
         return qs.filter(pk__in=late) if value else qs.exclude(pk__in=late)
+
+
+def describe(f: SifFilter) -> list[str]:
+    """What a filtered list shows, in words, one line per active filter (the list's
+    heading, so a figure of the overview and the list it opens say the same thing)."""
+    form = f.form
+    if not form.is_valid():
+        return []
+    lines = []
+    for name, field in form.fields.items():
+        value = form.cleaned_data.get(name)
+        if name in ("sort",) or value in (None, "", [], ()):
+            continue
+        if hasattr(field, "choices") and not hasattr(value, "pk"):
+            shown = dict(field.choices).get(value, value)
+            if shown in ("true", True):
+                shown = "yes"
+            elif shown in ("false", False):
+                shown = "no"
+        else:
+            shown = value
+        lines.append(f"{field.label}: {shown}")
+    return lines

@@ -34,12 +34,21 @@ class SubsystemChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = Subsystem
         fields = ("voting", "beta", "beta_d",)
+        labels = {"beta": "Common cause factor β (undetected failures)",
+                  "beta_d": "Common cause factor βD (detected failures)"}
 
 
 class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = TestPlan
-        fields = ("interval_months",)
+        fields = ("interval_months", "effective_from")
+        widgets = {"effective_from": forms.DateInput(attrs={"type": "date"})}
+        help_texts = {"effective_from": "Empty: from today. Due dates that have already "
+                                        "fallen stay under the plan then in force."}
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.initial["effective_from"] = None  # a new change: from today unless given
 
 
 FORMS = {"component": (Component, ComponentChangeForm),

@@ -709,6 +709,6 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str)
         from register.calculations import calculations
         from register.schedule.due import refresh_plans
 
-        refresh_plans(TestPlan.objects.filter(sif_id__in=affected), timezone.localdate())
+        refresh_plans(TestPlan.objects.filter(sif_id__in=affected))
         calculations().recompute_many(SafetyFunction.objects.filter(pk__in=affected), trigger="import")
     return plan

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import datetime as dt
 from collections import defaultdict
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from urllib.parse import urlencode
 
 from django.contrib.auth.decorators import login_required
 from django.core.paginator import Paginator
-from django.db.models import Exists, Min, OuterRef
+from django.db.models import Exists, OuterRef
 from django.http import Http404, HttpResponse
 from django.shortcuts import get_object_or_404, render
 from django.urls import reverse
@@ -18,7 +18,8 @@ from django.utils import timezone
 from register import changes as changes_mod
 from register import charts, choices, presenters
 from register.calculations import calculations
-from register.lead.filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter
+from register.days import today as site_today
+from register.lead.filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter, describe
 from register.models import (
     Bypass,
     Component,
@@ -32,10 +33,14 @@ from register.models import (
     TestRecord,
     not_decommissioned,
 )
+from register.operations.page import sif_operations
 from register.people import person_name
 from register.permissions import Action, can, require
-from register.schedule.due import FULL_CREDIT, PARTIAL_CREDIT, add_months
-from register.schedule.scan import bypass_state
+from register.schedule.due import (
+    LATE_STATES,
+    on_time_rate,
+    with_state,
+)
 
 PlanState = choices.PlanState
 PAGE_SIZE = 50
@@ -45,83 +50,6 @@ def list_url(**params) -> str:
     """Link to the register list filtered by ``params`` (the overview's links)."""
     clean = {k: v for k, v in params.items() if v not in (None, "")}
     return reverse("register:sif_list") + ("?" + urlencode(clean) if clean else "")
-
-
-# ---------------------------------------------------------------------------------------
-# Proof-test on-time rate
-# ---------------------------------------------------------------------------------------
-
-
-@dataclass
-class OnTime:
-    due: int = 0
-    on_time: int = 0
-    late_sif_ids: set = field(default_factory=set)
-    per_plan: dict = field(default_factory=dict)  # plan id -> (due, on time)
-
-    @property
-    def rate(self) -> float | None:
-        return self.on_time / self.due if self.due else None
-
-
-def on_time_rate(plans, today: dt.date, days: int = 365) -> OnTime:
-    """Proof-test on-time rate over the last ``days`` days.
-
-    Definition: each test plan falls due on (last counting test, or in-service date
-    for the first cycle) + its interval, moved to the approved date when a deferral of
-    that due date was approved. A due date counts in the period when it lies between
-    ``today - days`` and ``today`` (today itself not yet late). It is *on time* when a
-    signed, current test of a kind that counts for the plan was performed on or before
-    that due date. The rate is due dates met on time / due dates in the period; a due
-    date still open and past is late. Four queries for any number of plans.
-    """
-    out = OnTime()
-    plans = list(plans.select_related("sif"))
-    if not plans:
-        return out
-    sif_ids = {p.sif_id for p in plans}
-    start = today - dt.timedelta(days=days)
-    first_service = dict(
-        Component.objects.filter(subsystem__sif_id__in=sif_ids).values("subsystem__sif_id")
-        .annotate(first=Min("in_service_on")).values_list("subsystem__sif_id", "first"))
-    records = defaultdict(list)
-    for sif_id, kind, at in (TestRecord.objects.filter(sif_id__in=sif_ids,
-                                                       superseded_by__isnull=True)
-                             .exclude(status=choices.RecordStatus.DRAFT)
-                             .values_list("sif_id", "kind", "performed_at")
-                             .order_by("performed_at")):
-        records[sif_id].append((kind, at.date()))
-    approved = {(p, due): new for p, due, new in Deferral.objects.filter(
-        plan__in=[p.pk for p in plans], status=choices.DeferralStatus.APPROVED)
-        .values_list("plan_id", "due_on", "proposed_on")}
-    for plan in plans:
-        kinds = PARTIAL_CREDIT if plan.kind == choices.TestKind.PARTIAL else FULL_CREDIT
-        credit = first_service.get(plan.sif_id) or plan.sif.in_service_on
-        if credit is None:
-            continue
-        due_n = on_n = 0
-
-        def due_after(day, plan=plan):
-            due = add_months(day, plan.interval_months)
-            return approved.get((plan.pk, due), due)
-
-        for kind, day in records[plan.sif_id]:
-            if kind not in kinds or day < credit:
-                continue
-            due = due_after(credit)
-            if start <= due < today:
-                due_n += 1
-                on_n += day <= due
-            credit = day
-        due = due_after(credit)
-        if start <= due < today:  # still open and past its due date
-            due_n += 1
-        out.per_plan[plan.pk] = (due_n, on_n)
-        out.due += due_n
-        out.on_time += on_n
-        if on_n < due_n:
-            out.late_sif_ids.add(plan.sif_id)
-    return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -198,22 +126,29 @@ def plant_overview(user, today: dt.date):
         row.repeat_offenders += len(offenders)
         row.repeat_sifs += bool(offenders)
     plans = TestPlan.objects.restrict(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
-    for unit_id, state, due in plans.values_list("sif__unit_id", "cached_state", "next_due_on"):
-        row = rows[unit_id]
-        if state == PlanState.DUE_SOON:
+    # SIFs are counted (once each, whatever the number of their plans), as the lists the
+    # figures open count them: due soon, overdue (escalated included), escalated.
+    per_sif: dict[int, list] = defaultdict(list)
+    for sif_id, unit_id, state, due in with_state(plans).values_list(
+            "sif_id", "sif__unit_id", "state", "next_due_on"):
+        per_sif[sif_id].append((unit_id, state, due))
+    for entries in per_sif.values():
+        row = rows[entries[0][0]]
+        soon = [due for _, state, due in entries if state == PlanState.DUE_SOON and due]
+        late = [due for _, state, due in entries if state in LATE_STATES and due]
+        escalated = [due for _, state, due in entries if state in ESCALATED_STATES and due]
+        if soon:
             row.due_soon += 1
-            if due:
-                left = (due - today).days
-                row.due_soon_days = left if row.due_soon_days is None else min(
-                    row.due_soon_days, left)
-        elif state in (PlanState.OVERDUE, *ESCALATED_STATES):
-            late = (today - due).days if due else 0
-            if state == PlanState.OVERDUE:
-                row.overdue += 1
-                row.overdue_days = max(row.overdue_days, late)
-            else:
-                row.escalated += 1
-                row.escalated_days = max(row.escalated_days, late)
+            left = min((due - today).days for due in soon)
+            row.due_soon_days = left if row.due_soon_days is None else min(
+                row.due_soon_days, left)
+        if late:
+            row.overdue += 1
+            row.overdue_days = max(row.overdue_days, max((today - d).days for d in late))
+        if escalated:
+            row.escalated += 1
+            row.escalated_days = max(row.escalated_days,
+                                     max((today - d).days for d in escalated))
     for b in Bypass.objects.restrict(user).filter(ended_at__isnull=True).select_related("sif"):
         row = rows[b.sif.unit_id]
         row.bypasses += 1
@@ -273,7 +208,7 @@ def sif_list(request):
     export_sites = [s for s in Site.objects.restrict(request.user)
                     if can(request.user, Action.EXPORT, s.pk)]
     return render(request, "register/lead/sif_list.html", {
-        "filter": f, "page": page, "query": params.urlencode(),
+        "filter": f, "page": page, "query": params.urlencode(), "showing": describe(f),
         "can_export": bool(export_sites),
         "can_import": any(can(request.user, Action.EDIT_REGISTER, s.pk)
                           for s in Site.objects.restrict(request.user)),
@@ -335,17 +270,13 @@ def _history(sif: SafetyFunction, sub_ids, comp_ids, limit=60):
     return entries[:limit]
 
 
-def _fmt_hours(hours: float) -> str:
-    return f"{hours / 24:.1f} d" if hours >= 48 else f"{hours:.1f} h"
-
-
 @login_required
 def sif_detail(request, pk):
     sif = get_object_or_404(SafetyFunction.objects.restrict(request.user)
                             .select_related("unit__site", "owner"), pk=pk)
     site_id = sif.unit.site_id
     now = timezone.now()
-    today = timezone.localdate()
+    today = site_today(sif.unit.site)
     d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
     lopa, lopa_error = None, ""
     if d.scenarios:
@@ -374,11 +305,6 @@ def sif_detail(request, pk):
                .annotate(is_superseded=Exists(TestRecord.objects.filter(
                    supersedes_id=OuterRef("pk"))))
                .select_related("plan").order_by("-performed_at"))
-    bypasses = []
-    for b in d.bypasses[::-1]:
-        badge = choices.bypass_state_badge(bypass_state(b, now))
-        bypasses.append({"obj": b, "state": badge["label"], "duration": _fmt_hours(
-            b.duration_hours(now)), "open": b.ended_at is None, "style": badge["style"]})
     may_decide = can(request.user, Action.DECIDE_DEFERRAL, site_id)
     deferrals = []
     for df_ in Deferral.objects.filter(plan__sif=sif).select_related(
@@ -404,8 +330,9 @@ def sif_detail(request, pk):
         "sif": sif, "lopa": lopa, "lopa_error": lopa_error, "design": design,
         "design_error": design_error, "subsystems": subsystems, "assessment": assessment,
         "verdict": presenters.assessment_view(assessment),
-        "target": target, "band": band, "records": records, "demands": d.demands[::-1],
-        "bypasses": bypasses, "deferrals": deferrals, "plans": plans,
+        "target": target, "band": band, "records": records,
+        **sif_operations(request.user, sif, d, now),
+        "deferrals": deferrals, "plans": plans,
         "history": _history(sif, [s.pk for s in d.subsystems], comp_ids),
         "can_edit": can(request.user, Action.EDIT_REGISTER, site_id),
         "may_decide": may_decide,
@@ -451,7 +378,6 @@ def test_detail(request, pk):
 __all__ = [
     "Demand",
     "home",
-    "on_time_rate",
     "sif_chart",
     "sif_detail",
     "sif_export",

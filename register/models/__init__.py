@@ -40,9 +40,11 @@ from register.models.notifications import (
     Notification,
 )
 from register.models.operations import (
+    MAX_BYPASS_HOURS,
     Bypass,
     Deferral,
     Demand,
+    Finding,
 )
 from register.models.records import (
     Attachment,
@@ -60,6 +62,7 @@ from register.models.site import (
 
 __all__ = [
     "GENESIS_HASH",
+    "MAX_BYPASS_HOURS",
     "Attachment",
     "Bypass",
     "ChainAppendOnlyError",
@@ -72,6 +75,7 @@ __all__ = [
     "Demand",
     "DeviceType",
     "EvidencePack",
+    "Finding",
     "HazardScenario",
     "InitiatingCause",
     "MeasuredValue",

@@ -312,8 +312,15 @@ def _own_or_type(own: float | None, from_type: float) -> float:
 class TestPlan(models.Model):
     """A commitment to test a SIF (or chosen components) at an interval, with its procedure.
 
-    ``next_due_on`` and ``cached_state`` are caches, kept by ``register.schedule.due``;
-    the state shown to people is always computed from the records.
+    A change of interval, coverage or scope takes effect from ``effective_from`` (empty:
+    from the start) and applies only to due dates that had not yet fallen by then; the plan
+    in force on any past date is read from the plan's history (``register.schedule.due``).
+
+    The ``*_on`` columns below are written only by ``register.schedule.due.refresh_plans``
+    from the records: the current due date and the dates on which the plan's state next
+    turns (due soon, overdue the day after ``next_due_on``, escalated, second level). The
+    state shown anywhere is derived from them at read time for the reader's date
+    (``register.schedule.due.with_state``), never stored.
     """
 
     __test__ = False  # not a pytest test class
@@ -339,15 +346,27 @@ class TestPlan(models.Model):
     )
     assignee = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.SET_NULL,
                                  null=True, blank=True, related_name="assigned_plans")
-    # Caches (see class docstring).
-    next_due_on = models.DateField(_("next due (cached)"), null=True, blank=True, editable=False)
-    cached_state = models.CharField(max_length=12, choices=choices.PlanState.choices,
-                                    default=choices.PlanState.NO_PLAN, editable=False)
+    effective_from = models.DateField(
+        _("in force from"), null=True, blank=True,
+        help_text=_("The day this interval, coverage and scope take effect (default: the day "
+                    "the change is approved). Due dates that fell before it stay as they were."),
+    )
+    # Derived from the records by register.schedule.due.refresh_plans (class docstring).
+    next_due_on = models.DateField(_("next due"), null=True, blank=True, editable=False)
+    due_soon_on = models.DateField(_("due soon from"), null=True, blank=True, editable=False)
+    escalated_on = models.DateField(_("escalated from"), null=True, blank=True, editable=False)
+    escalated_2_on = models.DateField(_("second escalation from"), null=True, blank=True,
+                                      editable=False)
+    next_change_on = models.DateField(
+        _("state next changes on"), null=True, blank=True, editable=False, db_index=True,
+        help_text=_("The next date on which the derived state turns or a later version of the "
+                    "plan takes effect: the scan looks only at plans whose date has come."),
+    )
 
     site_path = "sif__unit__site"
     objects = SiteScopedQuerySet.as_manager()
-    history = HistoricalRecords(m2m_fields=[components], excluded_fields=["next_due_on",
-                                                                         "cached_state"])
+    history = HistoricalRecords(m2m_fields=[components], excluded_fields=[
+        "next_due_on", "due_soon_on", "escalated_on", "escalated_2_on", "next_change_on"])
 
     class Meta:
         ordering = ["sif", "name"]
@@ -355,6 +374,17 @@ class TestPlan(models.Model):
 
     def __str__(self):
         return f"{self.sif.tag}: {self.name}"
+
+    #: Written only by ``register.schedule.due.refresh_plans`` (bulk_update): an ordinary
+    #: save of a plan loaded earlier must not put back the values it was loaded with.
+    DERIVED_FIELDS = ("next_due_on", "due_soon_on", "escalated_on", "escalated_2_on",
+                      "next_change_on")
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None and not self._state.adding and kwargs.get("update_fields") is None:
+            kwargs["update_fields"] = [f.name for f in self._meta.concrete_fields
+                                       if not f.primary_key and f.name not in self.DERIVED_FIELDS]
+        super().save(*args, **kwargs)
 
     @property
     def interval_hours(self) -> float:
@@ -379,6 +409,17 @@ class TestStep(models.Model):
     tolerance = models.FloatField(_("tolerance (±)"), null=True, blank=True,
                                   validators=non_negative)
     limit = models.FloatField(_("limit"), null=True, blank=True)
+    # Which devices of the test are asked this step (register.rules.steps_for).
+    applies_to_role = models.CharField(
+        _("asked of (role)"), max_length=10, choices=choices.SubsystemRole.choices,
+        blank=True, default="",
+        help_text=_("The devices this step is asked of: sensors, logic solver or final "
+                    "elements. Empty, with no device type: read from what the step measures, "
+                    "else every device."))
+    applies_to_type = models.ForeignKey(
+        DeviceType, on_delete=models.PROTECT, null=True, blank=True, related_name="+",
+        verbose_name=_("asked of (device type)"),
+        help_text=_("Optional: only devices of this type are asked this step."))
 
     site_path = "plan__sif__unit__site"
     objects = SiteScopedQuerySet.as_manager()
@@ -401,6 +442,13 @@ class TestStep(models.Model):
             self.limit is None
         ):
             raise ValidationError({"limit": _("This criterion needs a limit.")})
+        if self.applies_to_role and self.applies_to_type_id is not None \
+                and self.applies_to_type.role != self.applies_to_role:
+            raise ValidationError({"applies_to_type": _(
+                "A step asked of the %(role)s cannot name a device type used for "
+                "%(type_role)s: change the role or the type.") % {
+                    "role": self.get_applies_to_role_display().lower(),
+                    "type_role": self.applies_to_type.get_role_display().lower()}})
 
     def judge(self, value: float | None) -> bool | None:
         """True if ``value`` meets the criterion, False if not, None when nothing to judge

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import zoneinfo
+
 from django.conf import settings
+from django.core.exceptions import ValidationError
 from django.core.validators import MaxValueValidator, MinValueValidator
 from django.db import models
 from django.utils.translation import gettext_lazy as _
@@ -18,6 +21,14 @@ from register.models.base import (
 # ---------------------------------------------------------------------------------------
 # Sites, units, people
 # ---------------------------------------------------------------------------------------
+
+
+def _valid_time_zone(value: str) -> None:
+    try:
+        zoneinfo.ZoneInfo(value)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ValidationError(_("Not a known time zone name (for example Europe/Oslo).")) \
+            from None
 
 
 class Site(models.Model):
@@ -41,6 +52,11 @@ class Site(models.Model):
         _("second escalation, days overdue"), default=90,
         help_text=_("Days overdue after which the second escalation level is reached."),
     )
+    time_zone = models.CharField(
+        _("time zone"), max_length=64, default="UTC", validators=[_valid_time_zone],
+        help_text=_("The site's calendar: due dates, the end of a day and the scan follow it "
+                    "(an IANA name such as Europe/Oslo or America/Chicago)."),
+    )
     rate_basis = models.CharField(
         _("failure rate used for achieved PFDavg"), max_length=10,
         choices=choices.RateBasis.choices, default=choices.RateBasis.FIELD,
@@ -61,6 +77,10 @@ class Site(models.Model):
 
     site_path = None
     objects = SiteScopedQuerySet.as_manager()
+
+    @property
+    def zone(self) -> zoneinfo.ZoneInfo:
+        return zoneinfo.ZoneInfo(self.time_zone)
     history = HistoricalRecords()
 
     class Meta:

@@ -1,38 +1,52 @@
-"""Due dates and states of test plans, computed from the records for any moment.
+"""Due dates, states, on-time rates and overdue periods of test plans: the one rule,
+computed from the records for any date or date range.
 
 Rules, in one place:
 
 1. A plan's components are the ones it names, or every component of the SIF.
-2. Each component's last credit is its latest *counting* event: a signed, current (not
+2. Each component's credit events are its *counting* events: a signed, current (not
    superseded) test record of a kind that counts for the plan and that has a result for
    the component; or, where the plan allows it, a successful real demand that exercised
    the component. Full-plan credit: full proof tests and validation tests. Partial-plan
    credit: partial tests and full proof tests (a full test reveals what a partial one
-   does). With no credit yet, the component's in-service date counts.
+   does). With no credit yet, the component's in-service date counts. An event counts on
+   the site's calendar date (``Site.time_zone``).
 3. Due date = the earliest last credit among the plan's components + the interval in
-   calendar months. An approved deferral of exactly that due date moves it to the
-   approved date, once.
+   calendar months of the plan version in force at that credit. A later version of the
+   plan (``TestPlan.effective_from``) applies only to a due date that had not yet fallen
+   when the version took effect: a due date that fell before stays, so a later edit
+   cannot clear an overdue. An approved deferral of exactly that due date, decided by
+   then, moves it to the approved date, once.
 4. State as of a date: not yet due before the site's lead time; due soon from then to
    the due date inclusive (due today is not overdue); overdue the day after; escalated
    when overdue by MORE than ``escalate_share`` x interval or ``escalate_days``,
    whichever is reached first; second-level escalation when overdue by more than
    ``second_escalation_days`` (never earlier than the first level).
+5. Over a date range, the due date is constant between change points (a credit event, a
+   deferral decision, a plan version taking effect), so the states of every day, the
+   overdue periods and the on-time rate follow from the due date at each change point.
+   A due date *counts* in a range when it lies in it and before its last day; it is met
+   *on time* when a credit event on or before it replaced it.
 
-Stored ``TestPlan.next_due_on`` and ``cached_state`` are caches for lists and
-notifications; :func:`refresh_plans` is the one function that writes them.
+``refresh_plans`` writes the current due date and the dates on which the state next turns
+into ``TestPlan`` (the one writer of those columns); lists and the API derive the state
+for the reader's day from them in SQL (``with_state``). Past dates always come from the
+records (``compute_statuses``, ``plan_timelines``).
 """
 
 from __future__ import annotations
 
+import bisect
 import calendar
 import datetime as dt
+import math
 from collections import defaultdict
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
-from django.db.models import Max
+from django.db.models import Case, CharField, Max, Q, Value, When
 
 from register import choices
-from register.days import end_of_day
+from register.days import end_of_day, local_date, today
 from register.models import (
     Component,
     ComponentResult,
@@ -46,6 +60,9 @@ PlanState = choices.PlanState
 
 FULL_CREDIT = (choices.TestKind.FULL, choices.TestKind.VALIDATION)
 PARTIAL_CREDIT = (choices.TestKind.PARTIAL, choices.TestKind.FULL, choices.TestKind.VALIDATION)
+LATE_STATES = (PlanState.OVERDUE, PlanState.ESCALATED, PlanState.ESCALATED_2)
+#: Pseudo-kind of a credit event that is a successful real demand (Demand rows).
+REAL_DEMAND = "real_demand"
 
 
 def add_months(day: dt.date, months: int) -> dt.date:
@@ -65,6 +82,7 @@ class PlanStatus:
     days_overdue: int
     deferred: bool
     last_credit_on: dt.date | None
+    interval_months: int | None = None
 
 
 @dataclass(frozen=True)
@@ -80,49 +98,170 @@ class Thresholds:
                    site.second_escalation_days)
 
 
+@dataclass(frozen=True)
+class StateDates:
+    """The first day of each state after a due date (due soon, overdue, escalated, second
+    escalation); before ``due_soon_on`` the plan is on track."""
+
+    due_on: dt.date
+    due_soon_on: dt.date
+    overdue_on: dt.date
+    escalated_on: dt.date
+    escalated_2_on: dt.date
+
+
+def state_dates(due_on: dt.date, interval_months: int, th: Thresholds) -> StateDates:
+    """Rule 4 as dates. Overdue by MORE than a threshold of ``x`` days means from day
+    ``floor(x) + 1`` after the due date."""
+    interval_days = (add_months(due_on, interval_months) - due_on).days
+    first = min(th.escalate_share * interval_days, th.escalate_days)
+    second = max(th.second_escalation_days, first)
+    return StateDates(
+        due_on=due_on,
+        due_soon_on=due_on - dt.timedelta(days=th.due_soon_days),
+        overdue_on=due_on + dt.timedelta(days=1),
+        escalated_on=due_on + dt.timedelta(days=math.floor(first) + 1),
+        escalated_2_on=due_on + dt.timedelta(days=math.floor(second) + 1),
+    )
+
+
 def state_for(due_on: dt.date | None, as_of: dt.date, interval_months: int,
               th: Thresholds) -> tuple[str, int]:
     """Return (state, days overdue) for a due date seen on ``as_of``."""
     if due_on is None:
         return PlanState.NO_PLAN, 0
-    if as_of <= due_on:
-        if (due_on - as_of).days <= th.due_soon_days:
-            return PlanState.DUE_SOON, 0
-        return PlanState.ON_TRACK, 0
-    late = (as_of - due_on).days
-    interval_days = (add_months(due_on, interval_months) - due_on).days
-    first = min(th.escalate_share * interval_days, th.escalate_days)
-    second = max(th.second_escalation_days, first)
-    if late > second:
+    d = state_dates(due_on, interval_months, th)
+    late = max((as_of - due_on).days, 0)
+    if as_of >= d.escalated_2_on:
         return PlanState.ESCALATED_2, late
-    if late > first:
+    if as_of >= d.escalated_on:
         return PlanState.ESCALATED, late
-    return PlanState.OVERDUE, late
+    if as_of >= d.overdue_on:
+        return PlanState.OVERDUE, late
+    if as_of >= d.due_soon_on:
+        return PlanState.DUE_SOON, 0
+    return PlanState.ON_TRACK, 0
 
 
 # ---------------------------------------------------------------------------------------
-# Bulk computation: a fixed number of queries for any number of plans.
+# The facts of each plan, loaded in bulk (a fixed number of queries per time zone)
 # ---------------------------------------------------------------------------------------
 
 
-def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
-    """Status of every plan in ``plans`` (a queryset) as of a date, in six queries.
+@dataclass(frozen=True)
+class Version:
+    """One version of a plan: what it asks, and from when (None: from the start)."""
 
-    Only events on or before ``as_of`` count, so a past date shows the plant as it was.
-    """
-    plans = list(plans.select_related("sif__unit__site"))
+    effective_from: dt.date | None
+    interval_months: int
+
+
+@dataclass
+class _Facts:
+    plan: TestPlan
+    kinds: tuple
+    comps: list[int]
+    in_service: dict[int, dt.date]
+    # component -> sorted credit dates (site calendar)
+    credits: dict[int, list[dt.date]] = field(default_factory=dict)
+    # (due_on -> list of (decided_on, proposed_on)), approved deferrals
+    deferrals: dict[dt.date, list[tuple[dt.date, dt.date]]] = field(default_factory=dict)
+    versions: list[Version] = field(default_factory=list)
+    thresholds: Thresholds | None = None
+
+    def versions_on(self, day: dt.date) -> list[Version]:
+        return [v for v in self.versions if v.effective_from is None or v.effective_from <= day]
+
+    def interval_on(self, day: dt.date) -> int:
+        applicable = self.versions_on(day)
+        return applicable[-1].interval_months if applicable else self.plan.interval_months
+
+    def last_credit(self, day: dt.date) -> dt.date | None:
+        """Rule 2-3: the earliest, over the plan's components, of each one's last credit
+        on or before ``day`` (its in-service date when it has none)."""
+        lasts = []
+        for comp in self.comps:
+            dates = self.credits.get(comp, [])
+            i = bisect.bisect_right(dates, day)
+            if i:
+                lasts.append(dates[i - 1])
+            elif self.in_service.get(comp):
+                lasts.append(self.in_service[comp])
+        if not lasts and self.plan.sif.in_service_on:
+            lasts.append(self.plan.sif.in_service_on)
+        return min(lasts) if lasts else None
+
+    def due(self, day: dt.date) -> tuple[dt.date | None, bool, dt.date | None]:
+        """(due date, deferred, last credit) as known on ``day``."""
+        last = self.last_credit(day)
+        if last is None:
+            return None, False, None
+        applicable = self.versions_on(day)
+        if not applicable:
+            applicable = [Version(None, self.plan.interval_months)]
+        k = 0
+        for i, v in enumerate(applicable):
+            if v.effective_from is None or v.effective_from <= last:
+                k = i
+        due = add_months(last, applicable[k].interval_months)
+        for v in applicable[k + 1:]:
+            if due < v.effective_from:
+                break  # it had fallen due before this version took effect: it stays
+            due = add_months(last, v.interval_months)
+        for decided_on, proposed_on in self.deferrals.get(due, []):
+            if decided_on <= day:
+                return proposed_on, True, last
+        return due, False, last
+
+    def change_points(self, start: dt.date, end: dt.date) -> list[dt.date]:
+        """Days in (start, end] on which the due date may change."""
+        points = set()
+        for dates in self.credits.values():
+            points.update(d for d in dates if start < d <= end)
+        for decisions in self.deferrals.values():
+            points.update(d for d, _ in decisions if start < d <= end)
+        points.update(v.effective_from for v in self.versions
+                      if v.effective_from and start < v.effective_from <= end)
+        return sorted(points)
+
+
+def _versions(plan_ids) -> dict[int, list[Version]]:
+    """Each plan's versions from its history, in the order they were recorded. A change
+    recorded without ``effective_from`` (before plans had one) took effect the day it was
+    recorded; the first version applies from the start."""
+    out: dict[int, list[Version]] = defaultdict(list)
+    rows = (TestPlan.history.filter(id__in=plan_ids)
+            .order_by("id", "history_date", "history_id")
+            .values_list("id", "history_date", "effective_from", "interval_months"))
+    for plan_id, recorded, effective, interval in rows:
+        versions = out[plan_id]
+        if not versions:
+            versions.append(Version(None, interval))
+            continue
+        when = effective or recorded.date()
+        if versions[-1].interval_months == interval:
+            continue
+        # a version never takes effect before one recorded earlier
+        if versions[-1].effective_from and when < versions[-1].effective_from:
+            when = versions[-1].effective_from
+        versions.append(Version(when, interval))
+    return out
+
+
+def _load(plans: list[TestPlan], until: dt.date, since: dt.date | None = None
+          ) -> dict[int, _Facts]:
+    """Everything rule 1-3 needs for ``plans``, events up to the end of ``until`` on each
+    site's calendar. With ``since``, every credit event after ``since`` is loaded too (for
+    timelines); otherwise only each component's last one."""
+    facts: dict[int, _Facts] = {}
     if not plans:
-        return {}
+        return facts
     plan_ids = [p.pk for p in plans]
     sif_ids = {p.sif_id for p in plans}
-    cutoff = end_of_day(as_of)
-
-    # 1. Plan -> named components.
     named: dict[int, list[int]] = defaultdict(list)
     for plan_id, comp_id in TestPlan.components.through.objects.filter(
             testplan_id__in=plan_ids).values_list("testplan_id", "component_id"):
         named[plan_id].append(comp_id)
-    # 2. Components of these SIFs with their in-service dates.
     comps_of_sif: dict[int, list[int]] = defaultdict(list)
     in_service: dict[int, dt.date] = {}
     for comp_id, sif_id, started in Component.objects.filter(
@@ -130,62 +269,96 @@ def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
                                                        "in_service_on"):
         comps_of_sif[sif_id].append(comp_id)
         in_service[comp_id] = started
-    # 3. Last counting test per (component, kind).
-    last_test: dict[tuple[int, str], dt.datetime] = {}
-    rows = (
-        ComponentResult.objects.filter(
-            component__subsystem__sif_id__in=sif_ids,
-            record__performed_at__lte=cutoff,
-            record__superseded_by__isnull=True,
-        )
-        .exclude(record__status=choices.RecordStatus.DRAFT)
-        .values("component_id", "record__kind")
-        .annotate(last=Max("record__performed_at"))
-    )
-    for row in rows:
-        last_test[(row["component_id"], row["record__kind"])] = row["last"]
-    # 4. Last successful real demand per exercised component.
-    last_demand: dict[int, dt.datetime] = {}
-    for row in (
-        Demand.components_exercised.through.objects.filter(
-            demand__sif_id__in=sif_ids, demand__successful=True,
-            demand__occurred_at__lte=cutoff,
-        ).values("component_id").annotate(last=Max("demand__occurred_at"))
-    ):
-        last_demand[row["component_id"]] = row["last"]
-    # 5. Approved deferrals, decided by then.
-    approved: dict[tuple[int, dt.date], dt.date] = {}
-    for plan_id, due_on, proposed_on in Deferral.objects.filter(
+    versions = _versions(plan_ids)
+    by_zone: dict[str, list[TestPlan]] = defaultdict(list)
+    for p in plans:
+        by_zone[p.sif.unit.site.time_zone].append(p)
+    # per zone: component -> kind -> dates
+    events: dict[int, dict[str, set[dt.date]]] = defaultdict(lambda: defaultdict(set))
+    for zone, zone_plans in by_zone.items():
+        zone_sifs = {p.sif_id for p in zone_plans}
+        cutoff = end_of_day(until, zone)
+        lower = end_of_day(since, zone) if since else cutoff
+        base = (ComponentResult.objects.filter(
+            component__subsystem__sif_id__in=zone_sifs, record__superseded_by__isnull=True)
+            .exclude(record__status=choices.RecordStatus.DRAFT))
+        for comp, kind, last in (base.filter(record__performed_at__lte=lower)
+                                 .values("component_id", "record__kind")
+                                 .annotate(last=Max("record__performed_at"))
+                                 .values_list("component_id", "record__kind", "last")):
+            events[comp][kind].add(local_date(last, zone))
+        if since:
+            for comp, kind, at in base.filter(
+                    record__performed_at__gt=lower, record__performed_at__lte=cutoff
+            ).values_list("component_id", "record__kind", "record__performed_at"):
+                events[comp][kind].add(local_date(at, zone))
+        demands = Demand.components_exercised.through.objects.filter(
+            demand__sif_id__in=zone_sifs, demand__successful=True)
+        for comp, last in (demands.filter(demand__occurred_at__lte=lower)
+                           .values("component_id").annotate(last=Max("demand__occurred_at"))
+                           .values_list("component_id", "last")):
+            events[comp][REAL_DEMAND].add(local_date(last, zone))
+        if since:
+            for comp, at in demands.filter(
+                    demand__occurred_at__gt=lower, demand__occurred_at__lte=cutoff
+            ).values_list("component_id", "demand__occurred_at"):
+                events[comp][REAL_DEMAND].add(local_date(at, zone))
+    approved: dict[int, dict[dt.date, list]] = defaultdict(lambda: defaultdict(list))
+    for plan_id, due_on, proposed_on, decided_at, zone in Deferral.objects.filter(
             plan_id__in=plan_ids, status=choices.DeferralStatus.APPROVED,
-            decided_at__lte=cutoff).values_list("plan_id", "due_on", "proposed_on"):
-        approved[(plan_id, due_on)] = proposed_on
-
-    result = {}
+            decided_at__isnull=False).values_list(
+            "plan_id", "due_on", "proposed_on", "decided_at", "plan__sif__unit__site__time_zone"):
+        decided_on = local_date(decided_at, zone)
+        if decided_on <= until:
+            approved[plan_id][due_on].append((decided_on, proposed_on))
     for plan in plans:
         kinds = PARTIAL_CREDIT if plan.kind == choices.TestKind.PARTIAL else FULL_CREDIT
         if plan.demand_counts_as_test:
-            kinds = (*kinds, choices.TestKind.DEMAND)  # a demand logged as a test record
+            kinds = (*kinds, choices.TestKind.DEMAND, REAL_DEMAND)
         comps = named.get(plan.pk) or comps_of_sif.get(plan.sif_id, [])
-        credits = []
-        for comp_id in comps:
-            dates = [last_test[(comp_id, k)].date() for k in kinds if (comp_id, k) in last_test]
-            if plan.demand_counts_as_test and comp_id in last_demand:
-                dates.append(last_demand[comp_id].date())
-            if not dates and in_service.get(comp_id):
-                dates.append(in_service[comp_id])
-            if dates:
-                credits.append(max(dates))
-        if not credits and plan.sif.in_service_on:
-            credits.append(plan.sif.in_service_on)
-        last_credit = min(credits) if credits else None
-        due = add_months(last_credit, plan.interval_months) if last_credit else None
-        deferred = False
-        if due is not None and (plan.pk, due) in approved:
-            due, deferred = approved[(plan.pk, due)], True
-        state, late = state_for(due, as_of, plan.interval_months,
-                                Thresholds.of(plan.sif.unit.site))
-        result[plan.pk] = PlanStatus(plan.pk, due, state, late, deferred, last_credit)
-    return result
+        f = _Facts(plan=plan, kinds=kinds, comps=comps, in_service=in_service,
+                   deferrals={d: sorted(v) for d, v in approved.get(plan.pk, {}).items()},
+                   versions=versions.get(plan.pk) or [Version(None, plan.interval_months)],
+                   thresholds=Thresholds.of(plan.sif.unit.site))
+        for comp in comps:
+            dates = set()
+            for kind in kinds:
+                dates |= events.get(comp, {}).get(kind, set())
+            f.credits[comp] = sorted(dates)
+        facts[plan.pk] = f
+    return facts
+
+
+def _plans(plans) -> list[TestPlan]:
+    if isinstance(plans, list):
+        return plans
+    return list(plans.select_related("sif__unit__site"))
+
+
+def _status(f: _Facts, as_of: dt.date) -> PlanStatus:
+    due, deferred, last = f.due(as_of)
+    interval = f.interval_on(as_of)
+    state, late = state_for(due, as_of, interval, f.thresholds)
+    return PlanStatus(f.plan.pk, due, state, late, deferred, last, interval)
+
+
+def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
+    """Status of every plan in ``plans`` (a queryset) on a date of the site's calendar.
+
+    Only events on or before ``as_of``, and plan versions in force by then, count, so a
+    past date shows the plant as it was.
+    """
+    return {pk: _status(f, as_of) for pk, f in _load(_plans(plans), as_of).items()}
+
+
+def status_with_change(plan: TestPlan, interval_months: int, effective_from: dt.date,
+                       as_of: dt.date) -> PlanStatus:
+    """The plan's status on ``as_of`` if a new version with ``interval_months`` took effect
+    on ``effective_from`` (nothing is saved): the change preview."""
+    plans = _plans(TestPlan.objects.filter(pk=plan.pk))
+    f = _load(plans, as_of)[plan.pk]
+    f.versions = [*f.versions, Version(effective_from, interval_months)]
+    return _status(f, max(as_of, effective_from))
 
 
 def status_of(plan: TestPlan, as_of: dt.date) -> PlanStatus:
@@ -193,9 +366,134 @@ def status_of(plan: TestPlan, as_of: dt.date) -> PlanStatus:
 
 
 def due_date(plan: TestPlan, as_of: dt.date | None = None) -> dt.date | None:
-    from django.utils import timezone
+    if as_of is None:
+        as_of = today(TestPlan.objects.select_related("sif__unit__site").get(pk=plan.pk)
+                      .sif.unit.site)
+    return status_of(plan, as_of).due_on
 
-    return status_of(plan, as_of or timezone.localdate()).due_on
+
+# ---------------------------------------------------------------------------------------
+# Date ranges: states day by day, overdue periods, on-time rate
+# ---------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Segment:
+    """From ``start`` to ``end`` (inclusive) the due date was ``due_on``."""
+
+    start: dt.date
+    end: dt.date
+    due_on: dt.date | None
+    interval_months: int
+    ended_by_credit: bool  # the next segment starts because a credit event changed it
+    deferred: bool = False  # the due date is an approved deferral's date
+
+
+@dataclass
+class PlanTimeline:
+    plan_id: int
+    segments: list[Segment]
+    thresholds: Thresholds
+
+    def state_on(self, day: dt.date) -> str:
+        for s in self.segments:
+            if s.start <= day <= s.end:
+                return state_for(s.due_on, day, s.interval_months, self.thresholds)[0]
+        raise ValueError(f"{day} is outside the timeline")
+
+    def overdue_periods(self) -> list[tuple[dt.date, dt.date]]:
+        """Maximal runs of days on which the plan was overdue (any level), inclusive."""
+        runs: list[list[dt.date]] = []
+        for s in self.segments:
+            if s.due_on is None:
+                continue
+            first = max(s.start, s.due_on + dt.timedelta(days=1))
+            if first > s.end:
+                continue
+            if runs and runs[-1][1] + dt.timedelta(days=1) >= first:
+                runs[-1][1] = max(runs[-1][1], s.end)
+            else:
+                runs.append([first, s.end])
+        return [(a, b) for a, b in runs]
+
+    def due_dates(self) -> list[tuple[dt.date, bool]]:
+        """Each due date that counts in the range (rule 5) and whether it was met on time."""
+        out = []
+        first_day, last_day = self.segments[0].start, self.segments[-1].end
+        i = 0
+        while i < len(self.segments):
+            s = self.segments[i]
+            j = i
+            while j + 1 < len(self.segments) and self.segments[j + 1].due_on == s.due_on:
+                j += 1
+            run_end = self.segments[j]
+            d = s.due_on
+            if d is not None and first_day <= d < last_day:
+                if j + 1 < len(self.segments):
+                    replaced_on = self.segments[j + 1].start
+                    if run_end.ended_by_credit:
+                        out.append((d, replaced_on <= d))
+                    elif replaced_on > d:  # deferred or re-planned after it had fallen due
+                        out.append((d, False))
+                else:
+                    out.append((d, False))  # still open and past
+            i = j + 1
+        return out
+
+
+def plan_timelines(plans, start: dt.date, end: dt.date) -> dict[int, PlanTimeline]:
+    """The due date of each plan on every day from ``start`` to ``end`` (inclusive), as
+    segments, computed by the same rule and from the same events as ``compute_statuses``
+    (one evaluation per change point)."""
+    plans = _plans(plans)
+    out = {}
+    for pk, f in _load(plans, end, since=start).items():
+        points = [start, *f.change_points(start, end)]
+        credit_days = {d for dates in f.credits.values() for d in dates}
+        segments = []
+        for i, p in enumerate(points):
+            seg_end = points[i + 1] - dt.timedelta(days=1) if i + 1 < len(points) else end
+            due, deferred, _ = f.due(p)
+            next_is_credit = i + 1 < len(points) and points[i + 1] in credit_days
+            segments.append(Segment(p, seg_end, due, f.interval_on(p), next_is_credit,
+                                    deferred))
+        out[pk] = PlanTimeline(pk, segments, f.thresholds)
+    return out
+
+
+@dataclass
+class OnTime:
+    due: int = 0
+    on_time: int = 0
+    late_sif_ids: set = field(default_factory=set)
+    per_plan: dict = field(default_factory=dict)  # plan id -> (due, on time)
+
+    @property
+    def rate(self) -> float | None:
+        return self.on_time / self.due if self.due else None
+
+
+def on_time_rate(plans, as_of: dt.date, days: int = 365) -> OnTime:
+    """Proof-test on-time rate over the ``days`` days up to ``as_of``: due dates that fell
+    in the period (before ``as_of`` itself) and how many were met on time (rule 5)."""
+    out = OnTime()
+    plans = _plans(plans)
+    timelines = plan_timelines(plans, as_of - dt.timedelta(days=days), as_of)
+    sif_of = {p.pk: p.sif_id for p in plans}
+    for pk, tl in timelines.items():
+        dues = tl.due_dates()
+        n, ok = len(dues), sum(1 for _, met in dues if met)
+        out.per_plan[pk] = (n, ok)
+        out.due += n
+        out.on_time += ok
+        if ok < n:
+            out.late_sif_ids.add(sif_of[pk])
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# The plan's current due date and state dates, and the state read in SQL
+# ---------------------------------------------------------------------------------------
 
 
 def active_plans():
@@ -203,21 +501,109 @@ def active_plans():
     return TestPlan.objects.filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
 
 
-def refresh_plans(plan_queryset, as_of: dt.date) -> dict[int, PlanStatus]:
-    """Write the cache columns of the given plans. Returns the computed statuses."""
-    statuses = compute_statuses(plan_queryset, as_of)
-    if not statuses:
-        return statuses
-    stale = list(
-        TestPlan.objects.filter(pk__in=statuses.keys()).only("id", "next_due_on",
-                                                             "cached_state")
-    )
+STATE_COLUMNS = list(TestPlan.DERIVED_FIELDS)
+
+
+def _columns(f: _Facts, s: PlanStatus, as_of: dt.date) -> dict:
+    if s.due_on is None:
+        values = dict.fromkeys(STATE_COLUMNS)
+    else:
+        d = state_dates(s.due_on, s.interval_months or f.plan.interval_months, f.thresholds)
+        values = {"next_due_on": s.due_on, "due_soon_on": d.due_soon_on,
+                  "escalated_on": d.escalated_on, "escalated_2_on": d.escalated_2_on}
+        turns = [d.due_soon_on, d.overdue_on, d.escalated_on, d.escalated_2_on]
+        ahead = [t for t in turns if t > as_of]
+        values["next_change_on"] = min(ahead) if ahead else None
+    later = [v.effective_from for v in f.versions
+             if v.effective_from and v.effective_from > as_of]
+    if later and (values["next_change_on"] is None or min(later) < values["next_change_on"]):
+        values["next_change_on"] = min(later)
+    return values
+
+
+def refresh_plans(plan_queryset, as_of: dt.date | None = None) -> dict[int, PlanStatus]:
+    """Write each plan's current due date and state dates (``STATE_COLUMNS``) from the
+    records, as of ``as_of`` (default: today on each site's calendar). Returns the
+    computed statuses."""
+    plans = _plans(plan_queryset)
+    statuses: dict[int, PlanStatus] = {}
     changed = []
-    for plan in stale:
-        s = statuses[plan.pk]
-        if plan.next_due_on != s.due_on or plan.cached_state != s.state:
-            plan.next_due_on, plan.cached_state = s.due_on, s.state
+    days: dict[str, dt.date] = {}
+    facts = {}
+    for zone in {p.sif.unit.site.time_zone for p in plans}:
+        days[zone] = as_of or today(zone)
+    by_day: dict[dt.date, list[TestPlan]] = defaultdict(list)
+    for p in plans:
+        by_day[days[p.sif.unit.site.time_zone]].append(p)
+    for day, day_plans in by_day.items():
+        for pk, f in _load(day_plans, day).items():
+            s = _status(f, day)
+            statuses[pk] = s
+            facts[pk] = (f, day)
+    for plan in plans:
+        f, day = facts[plan.pk]
+        values = _columns(f, statuses[plan.pk], day)
+        if any(getattr(plan, k) != v for k, v in values.items()):
+            for k, v in values.items():
+                setattr(plan, k, v)
             changed.append(plan)
     if changed:
-        TestPlan.objects.bulk_update(changed, ["next_due_on", "cached_state"])
+        TestPlan.objects.bulk_update(changed, STATE_COLUMNS, batch_size=1000)
     return statuses
+
+
+def _state_case(day: dt.date) -> list[When]:
+    return [
+        When(Q(next_due_on__isnull=True), then=Value(PlanState.NO_PLAN)),
+        When(Q(escalated_2_on__lte=day), then=Value(PlanState.ESCALATED_2)),
+        When(Q(escalated_on__lte=day), then=Value(PlanState.ESCALATED)),
+        When(Q(next_due_on__lt=day), then=Value(PlanState.OVERDUE)),
+        When(Q(due_soon_on__lte=day), then=Value(PlanState.DUE_SOON)),
+    ]
+
+
+def state_expression(prefix: str = "", as_of: dt.date | None = None):
+    """The plan's state for today on its site's calendar (or on ``as_of``), as a SQL
+    expression over the columns ``refresh_plans`` writes. ``prefix`` is the lookup from
+    the queried model to the plan (for example ``"plans__"``)."""
+    def q(cond: Q) -> Q:
+        return Q(**{f"{prefix}{k}": v for k, v in cond.children})
+
+    whens = []
+    if as_of is not None:
+        groups = {as_of: None}
+    else:
+        groups = defaultdict(list)
+        for zone in Site.objects.values_list("time_zone", flat=True).distinct():
+            groups[today(zone)].append(zone)
+    for day, zones in groups.items():
+        zone_q = Q(**{f"{prefix}sif__unit__site__time_zone__in": zones}) if zones else Q()
+        for w in _state_case(day):
+            whens.append(When(zone_q & q(w.condition), then=w.result))
+    return Case(*whens, default=Value(PlanState.ON_TRACK), output_field=CharField())
+
+
+def with_state(plans, as_of: dt.date | None = None):
+    """``plans`` annotated with ``state``: the state for the reader's day (read time)."""
+    return plans.annotate(state=state_expression(as_of=as_of))
+
+
+def live_statuses(plans) -> dict[int, PlanStatus]:
+    """Each plan's status today on its site's calendar (from the records)."""
+    plans = _plans(plans)
+    out = {}
+    by_zone: dict[str, list[TestPlan]] = defaultdict(list)
+    for p in plans:
+        by_zone[p.sif.unit.site.time_zone].append(p)
+    for zone, zone_plans in by_zone.items():
+        out.update(compute_statuses(zone_plans, today(zone)))
+    return out
+
+
+__all__ = [
+    "FULL_CREDIT", "LATE_STATES", "PARTIAL_CREDIT", "OnTime", "PlanState", "PlanStatus",
+    "PlanTimeline", "Segment", "StateDates", "Thresholds", "Version", "active_plans",
+    "add_months", "compute_statuses", "due_date", "live_statuses", "on_time_rate",
+    "plan_timelines", "refresh_plans", "state_dates", "state_expression", "state_for",
+    "status_of", "status_with_change", "with_state",
+]

@@ -12,7 +12,6 @@ import contextvars
 
 from celery import current_app
 from django.db import transaction
-from django.utils import timezone
 
 _suspended = contextvars.ContextVar("followup_suspended", default=False)
 
@@ -70,6 +69,9 @@ def _refresh_sif(sif_id: int) -> None:
     from register.models import TestPlan
     from register.schedule.due import refresh_plans
 
-    refresh_plans(TestPlan.objects.filter(sif_id=sif_id), timezone.localdate())
+    refresh_plans(TestPlan.objects.filter(sif_id=sif_id))
     # The register reaches the calculations by task name only (register.calculations).
     current_app.tasks["calcs.recompute_sif"].delay(sif_id, "record changed")
+    from register.schedule.services import withdraw_done_deferrals  # a test done: moot requests
+
+    withdraw_done_deferrals(sif_id)

@@ -1,155 +1,198 @@
 """The periodic follow-up scan: test plans and bypasses, their state changes, notifications.
 
 ``scan(as_of)`` is the one entry point, used by the Celery beat task and the
-``scan_plans`` command. It is idempotent: each notification has a unique
-``(recipient, subject_key)`` where the subject key names the plan (or bypass), the
-state and the due cycle, so a second run, or a run after a worker was killed mid-way,
-creates nothing twice and still creates whatever the first run missed. Emails are
-claimed row by row (``emailed_at``) before sending, so a notification is emailed at
-most once; the in-app notification always exists.
+``scan_plans`` command. It looks only at the plans whose state may have turned: those
+whose ``next_change_on`` has come on their site's calendar, and those never refreshed
+since the state-date columns were added (``next_due_on`` set, ``due_soon_on`` empty).
+It refreshes them (``register.schedule.due.refresh_plans``) and writes one append-only
+``PlanStateChange`` row per transition (``record_transitions``), from which the
+notifications are created, all in one transaction: a scan killed mid-way leaves nothing
+half done, and the next one does the whole work. Rows are unique per (plan, due date,
+new state) and notifications per (recipient, subject key), so a second run creates
+nothing twice. Each new notification is e-mailed by its own task after the commit
+(``register.inbox.delivery``); the scan also sweeps up any whose task was lost.
+
+The query count of a scan does not depend on the size of the plant: a fixed number per
+time zone, plus one write per thousand plans refreshed.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from collections import Counter
+from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 
 from django.db import transaction
-from django.urls import reverse
+from django.db.models import Case, CharField, Count, F, Max, Q, Value, When
 from django.utils import timezone
 
 from register import choices
-from register.days import end_of_day
+from register.days import end_of_day, today
+from register.inbox import notices
 from register.inbox.delivery import send_pending_emails
-from register.models import (
-    Bypass,
-    Membership,
-    Notification,
-    TestPlan,
+from register.models import Bypass, Site
+from register.models.notifications import PlanStateChange
+from register.schedule.due import (
+    PlanStatus,
+    active_plans,
+    compute_statuses,
+    refresh_plans,
+    with_state,
 )
-from register.schedule.due import PlanStatus, active_plans, refresh_plans
 
 PlanState = choices.PlanState
-ESCALATIONS = {PlanState.ESCALATED, PlanState.ESCALATED_2}
-NOTIFY_STATES = {PlanState.DUE_SOON, PlanState.OVERDUE, *ESCALATIONS}
-#: A bypass open longer than this multiple of its authorised duration is escalated.
-BYPASS_ESCALATION_FACTOR = 2.0
 
 
 @dataclass
 class ScanResult:
-    as_of: dt.date
-    plans: dict[int, PlanStatus] = field(default_factory=dict)
-    counts: Counter = field(default_factory=Counter)
+    as_of: dt.date | None
+    plans: dict[int, PlanStatus] = field(default_factory=dict)  # the plans looked at
+    counts: Counter = field(default_factory=Counter)  # every followed plan, by state
     bypass_states: dict[int, str] = field(default_factory=dict)
+    transitions: int = 0
     notifications_created: int = 0
     emails_sent: int = 0
+
+
+# ---------------------------------------------------------------------------------------
+# Bypasses: the state derived from the times the bypass keeps
+# ---------------------------------------------------------------------------------------
+
+
+def bypass_state_expression(at: dt.datetime):
+    """``bypass_state`` as a SQL expression over the columns the bypass keeps
+    (``authorised_until``, ``escalates_at``), for lists and filters."""
+    return Case(
+        When(Q(ended_at__lte=at), then=Value(choices.BypassState.CLOSED)),
+        When(Q(escalates_at__lt=at), then=Value(choices.BypassState.ESCALATED)),
+        When(Q(authorised_until__lt=at), then=Value(choices.BypassState.OVERDUE)),
+        default=Value(choices.BypassState.OPEN), output_field=CharField())
 
 
 def bypass_state(bypass: Bypass, at: dt.datetime) -> str:
     if bypass.ended_at is not None and bypass.ended_at <= at:
         return choices.BypassState.CLOSED
     hours = bypass.duration_hours(at)
-    if hours > bypass.authorised_hours * BYPASS_ESCALATION_FACTOR:
+    if hours > bypass.authorised_hours * bypass.ESCALATION_FACTOR:
         return choices.BypassState.ESCALATED
     if hours > bypass.authorised_hours:
         return choices.BypassState.OVERDUE
     return choices.BypassState.OPEN
 
 
-def scan(as_of: dt.date | None = None, *, notify: bool = True) -> ScanResult:
-    """Compute every plan's and open bypass's state as of a date; on today's scan, update
-    the caches and create one notification per state change.
+def _open_bypasses(at: dt.datetime):
+    return Bypass.objects.filter(started_at__lte=at).filter(
+        Q(ended_at__isnull=True) | Q(ended_at__gt=at))
 
-    A scan for a past date (``notify=False``) only reports: it writes nothing.
+
+# ---------------------------------------------------------------------------------------
+# State changes as rows
+# ---------------------------------------------------------------------------------------
+
+
+def last_changes(plan_ids) -> dict[int, PlanStateChange]:
+    """Each plan's newest state-change row (one query)."""
+    newest = (PlanStateChange.objects.filter(plan_id__in=plan_ids).values("plan_id")
+              .annotate(last=Max("id")).values("last"))
+    return {c.plan_id: c for c in PlanStateChange.objects.filter(id__in=newest)}
+
+
+def record_transitions(statuses: dict[int, PlanStatus], *, at: dt.datetime,
+                       cause: str) -> list[PlanStateChange]:
+    """Write one state-change row for each plan whose state or due date differs from its
+    last row (a plan without a row gets its first), and notify from the new rows.
+
+    ``statuses``: the plans' statuses just computed (``refresh_plans``,
+    ``compute_statuses``); ``at``: when; ``cause``: a ``choices.ChangeCause``. Call it in
+    the transaction that refreshed the plans. Rows are unique per (plan, due date, new
+    state): a change already written (another run, a concurrent refresh) is not written
+    again, nor notified again. Returns the new rows; three queries, plus those of the
+    notifications, whatever the number of plans.
     """
-    as_of = as_of or timezone.localdate()
+    return _record(statuses, at, cause)[0]
+
+
+def _record(statuses, at, cause) -> tuple[list[PlanStateChange], int]:
+    """``record_transitions``, also returning the number of notifications created."""
+    if not statuses:
+        return [], 0
+    last = last_changes(list(statuses))
+    wanted = []
+    for plan_id, s in statuses.items():
+        before = last.get(plan_id)
+        if before is not None and (before.to_state, before.due_on) == (s.state, s.due_on):
+            continue
+        wanted.append(PlanStateChange(
+            plan_id=plan_id, from_state=before.to_state if before else "", to_state=s.state,
+            due_on=s.due_on, from_due_on=before.due_on if before else None, at=at,
+            cause=cause))
+    if not wanted:
+        return [], 0
+    existing = set(PlanStateChange.objects.filter(
+        plan_id__in={c.plan_id for c in wanted}, to_state__in={c.to_state for c in wanted}
+    ).values_list("plan_id", "due_on", "to_state"))
+    new = [c for c in wanted if (c.plan_id, c.due_on, c.to_state) not in existing]
+    if not new:
+        return [], 0
+    PlanStateChange.objects.bulk_create(new, ignore_conflicts=True)
+    return new, notices.notify_plan_changes(new)
+
+
+# ---------------------------------------------------------------------------------------
+# The scan
+# ---------------------------------------------------------------------------------------
+
+
+def plans_to_look_at(as_of: dt.date | None = None):
+    """Followed plans whose state may have turned by ``as_of`` (default: today on each
+    site's calendar), or that were never refreshed."""
+    never_refreshed = Q(next_due_on__isnull=False, due_soon_on__isnull=True)
+    if as_of is not None:
+        return active_plans().filter(Q(next_change_on__lte=as_of) | never_refreshed)
+    zones: dict[dt.date, list[str]] = defaultdict(list)
+    for zone in Site.objects.values_list("time_zone", flat=True).distinct():
+        zones[today(zone)].append(zone)
+    come = Q(pk__in=[])
+    for day, names in zones.items():
+        come |= Q(sif__unit__site__time_zone__in=names, next_change_on__lte=day)
+    return active_plans().filter(come | never_refreshed)
+
+
+def scan(as_of: dt.date | None = None, *, notify: bool = True) -> ScanResult:
+    """Refresh the plans whose state may have turned, write their state changes and
+    notify from them; announce bypasses past their authorised time. ``as_of`` (default:
+    today on each site's calendar) is for tests and the command.
+
+    ``notify=False`` only reports the state of every followed plan and open bypass on
+    ``as_of`` (a past or future date), from the records: it writes nothing.
+    """
     result = ScanResult(as_of=as_of)
-    plans = active_plans()
-    if notify:
-        result.plans = refresh_plans(plans, as_of)
-    else:
-        from register.schedule.due import compute_statuses
-
-        result.plans = compute_statuses(plans, as_of)
-    result.counts = Counter(s.state for s in result.plans.values())
-
-    at = end_of_day(as_of)
-    if as_of == timezone.localdate():
-        at = timezone.now()
-    bypasses = list(Bypass.objects.filter(started_at__lte=at).exclude(ended_at__lt=at)
-                    .select_related("sif__unit__site", "sif__owner", "authorised_by"))
-    for b in bypasses:
-        result.bypass_states[b.pk] = bypass_state(b, at)
+    at = timezone.now() if as_of is None or as_of == timezone.localdate() else \
+        end_of_day(as_of)
     if not notify:
+        result.plans = compute_statuses(active_plans(), as_of or timezone.localdate())
+        result.counts = Counter(s.state for s in result.plans.values())
+        result.bypass_states = {b.pk: bypass_state(b, at) for b in _open_bypasses(at)}
         return result
 
-    changed = [b for b in bypasses if b.cached_state != result.bypass_states[b.pk]]
-    for b in changed:
-        b.cached_state = result.bypass_states[b.pk]
-    if changed:
-        Bypass.objects.bulk_update(changed, ["cached_state"])
-
-    notes = _plan_notifications(result.plans) + _bypass_notifications(bypasses, result)
     with transaction.atomic():
-        before = Notification.objects.count()
-        Notification.objects.bulk_create(notes, ignore_conflicts=True, batch_size=1000)
-        result.notifications_created = Notification.objects.count() - before
+        result.plans = refresh_plans(plans_to_look_at(as_of), as_of)
+        rows, result.notifications_created = _record(result.plans, at,
+                                                     choices.ChangeCause.SCAN)
+        result.transitions = len(rows)
+
+        bypasses = (_open_bypasses(at).annotate(state=bypass_state_expression(at))
+                    .select_related("sif__unit__site", "sif__owner", "authorised_by",
+                                    "requested_by"))
+        result.bypass_states = dict(bypasses.values_list("pk", "state"))
+        changed = list(bypasses.exclude(state=F("announced_state")))
+        for b in changed:
+            b.announced_state = b.state
+        if changed:
+            Bypass.objects.bulk_update(changed, ["announced_state"])
+            result.notifications_created += notices.notify_bypasses(
+                changed, {b.pk: b.state for b in changed}, at)
+    result.counts = Counter(dict(with_state(active_plans(), as_of).values("state")
+                                 .annotate(n=Count("id")).values_list("state", "n")))
     result.emails_sent = send_pending_emails()
     return result
-
-
-def _leads_by_site() -> dict[int, list]:
-    out: dict[int, list] = {}
-    for m in Membership.objects.filter(role=choices.Role.LEAD).select_related("user"):
-        out.setdefault(m.site_id, []).append(m.user)
-    return out
-
-
-def _plan_notifications(statuses: dict[int, PlanStatus]) -> list[Notification]:
-    wanted = {pid: s for pid, s in statuses.items() if s.state in NOTIFY_STATES}
-    if not wanted:
-        return []
-    leads = _leads_by_site()
-    notes = []
-    for plan in TestPlan.objects.filter(pk__in=wanted).select_related(
-            "sif__unit__site", "sif__owner", "assignee"):
-        s = wanted[plan.pk]
-        site = plan.sif.unit.site
-        recipients = {u.pk: u for u in (plan.sif.owner, plan.assignee) if u}
-        if s.state in ESCALATIONS:
-            recipients.update({u.pk: u for u in leads.get(site.pk, [])})
-        label = PlanState(s.state).label.lower()
-        late = f", {s.days_overdue} days overdue" if s.days_overdue else ""
-        message = (f"{plan.sif.tag} {plan.name}: {label} (due {s.due_on:%d %b %Y}{late}).")
-        key = f"plan:{plan.pk}:{s.state}:{s.due_on.isoformat()}"
-        link = reverse("register:sif_detail", args=[plan.sif_id])
-        for user in recipients.values():
-            notes.append(Notification(recipient=user, site=site,
-                                      kind=choices.NotificationKind.PLAN_STATE,
-                                      subject_key=key, message=message, link=link))
-    return notes
-
-
-def _bypass_notifications(bypasses, result: ScanResult) -> list[Notification]:
-    leads = _leads_by_site()
-    notes = []
-    for b in bypasses:
-        state = result.bypass_states[b.pk]
-        if state not in (choices.BypassState.OVERDUE, choices.BypassState.ESCALATED):
-            continue
-        site = b.sif.unit.site
-        recipients = {u.pk: u for u in (b.authorised_by, b.sif.owner) if u}
-        if state == choices.BypassState.ESCALATED:
-            recipients.update({u.pk: u for u in leads.get(site.pk, [])})
-        hours = b.duration_hours(timezone.now())
-        message = (f"{b.sif.tag} bypass open {hours:.0f} h, authorised for "
-                   f"{b.authorised_hours:g} h: {choices.BypassState(state).label.lower()}.")
-        key = f"bypass:{b.pk}:{state}"
-        link = reverse("register:sif_detail", args=[b.sif_id])
-        for user in recipients.values():
-            notes.append(Notification(recipient=user, site=site,
-                                      kind=choices.NotificationKind.BYPASS_STATE,
-                                      subject_key=key, message=message, link=link))
-    return notes

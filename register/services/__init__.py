@@ -13,6 +13,7 @@ from register.services.design import (
     update_design,
 )
 from register.services.operations import (
+    authorise_bypass,
     close_bypass,
     open_bypass,
     record_demand,
@@ -38,6 +39,7 @@ __all__ = [
     "StaleDraftError",
     "_sif_id_of",
     "add_attachment",
+    "authorise_bypass",
     "close_bypass",
     "create_design",
     "discard_draft",

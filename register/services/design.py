@@ -6,9 +6,28 @@ from django.core.exceptions import ValidationError
 from django.db import transaction
 
 from register.changes import attribute
+from register.days import today as site_today
+from register.models import TestPlan
 from register.permissions import Action, require, site_id_of
 from register.schedule import followup
 from register.services.base import _sif_id_of
+
+#: Fields of a plan whose change is a new version of the plan (``TestPlan.effective_from``).
+PLAN_VERSION_FIELDS = ("interval_months", "coverage", "kind", "demand_counts_as_test")
+
+
+def _date_plan_change(plan: TestPlan, changes: dict) -> None:
+    """A plan change takes effect from a date, by default the day it is approved, never
+    earlier: a change dated in the past would rewrite what was due then."""
+    if not any(f in changes for f in PLAN_VERSION_FIELDS) and "effective_from" not in changes:
+        return
+    today = site_today(plan.sif.unit.site)
+    if changes.get("effective_from") is None:
+        plan.effective_from = today
+    elif plan.effective_from < today:
+        raise ValidationError({"effective_from": (
+            f"A change cannot take effect before today ({today:%Y-%m-%d}): due dates that "
+            "have already fallen stay under the plan then in force.")})
 
 
 @transaction.atomic
@@ -25,6 +44,8 @@ def update_design(instance, user, *, reason: str, reference: str, changes: dict)
                                          "request reference."})
     for name, value in changes.items():
         setattr(instance, name, value)
+    if isinstance(instance, TestPlan):
+        _date_plan_change(instance, changes)
     instance.full_clean()
     attribute(instance, user, f"[{reference}] {reason}").save()
     sif_id = _sif_id_of(instance)

@@ -1,4 +1,7 @@
-"""Demands, bypasses and deferrals."""
+"""Demands and bypasses: recording a demand or spurious trip (each device that failed to act
+opens a finding), opening a bypass (a request until a lead who is not the requester
+authorises it), authorising and closing it. Deferrals are in ``register.schedule.services``;
+findings in ``register.operations.services``."""
 
 from __future__ import annotations
 
@@ -16,6 +19,7 @@ from register.models import (
     Demand,
     SafetyFunction,
 )
+from register.operations import services as findings
 from register.permissions import Action, require
 from register.schedule import followup
 
@@ -24,17 +28,53 @@ from register.schedule import followup
 # ---------------------------------------------------------------------------------------
 
 
+def _device_errors(sif: SafetyFunction, successful: bool, spurious: bool, acted,
+                   failed) -> dict[str, list[str]]:
+    """The per-device rules of a demand: devices of this SIF, each either acted or failed,
+    and a real demand the SIF did not act on names the device(s) that failed."""
+    errors: dict[str, list[str]] = {}
+    others = [c.tag for c in [*acted, *failed] if c.subsystem.sif_id != sif.pk]
+    if others:
+        errors["components_exercised"] = [f"Not devices of {sif.tag}: {', '.join(others)}."]
+    both = sorted({c.tag for c in acted} & {c.tag for c in failed})
+    if both:
+        errors["failed_components"] = [f"A device either acted or failed to act, not both: "
+                                       f"{', '.join(both)}."]
+    if not successful and not spurious and not failed:
+        errors.setdefault("failed_components", []).append(
+            "The SIF did not act: name the device or devices that failed to act (each opens "
+            "a finding).")
+    return errors
+
+
 @transaction.atomic
 def record_demand(*, user, sif: SafetyFunction, occurred_at: dt.datetime, successful: bool,
                   description: str, spurious: bool = False,
-                  components_exercised=(), failed_components=()) -> Demand:
+                  components_exercised=(), failed_components=(),
+                  cause: str = choices.DemandCause.NOT_RECORDED,
+                  at: dt.datetime | None = None) -> Demand:
+    """Record a real demand or a spurious trip with what each device did.
+
+    ``components_exercised``: devices that acted; ``failed_components``: devices that failed
+    to act. Each failed device opens a finding (``register.operations.services``), whether or
+    not the SIF as a whole acted. ``at`` dates the history rows (the demo loader).
+    """
     require(user, Action.RECORD_DEMAND, sif.unit.site_id)
+    acted, failed = list(components_exercised), list(failed_components)
     demand = Demand(sif=sif, occurred_at=occurred_at, successful=successful, spurious=spurious,
-                    description=description, recorded_by=user)
-    demand.full_clean()
-    attribute(demand, user, "demand recorded").save()
-    demand.components_exercised.set(components_exercised)
-    demand.failed_components.set(failed_components)
+                    description=description, recorded_by=user, cause=cause)
+    errors = _device_errors(sif, successful, spurious, acted, failed)
+    try:
+        demand.full_clean()
+    except ValidationError as exc:
+        for key, messages in exc.message_dict.items():
+            errors.setdefault(key, []).extend(messages)
+    if errors:
+        raise ValidationError(errors)
+    attribute(demand, user, "demand recorded", at=at).save()
+    demand.components_exercised.set(acted)
+    demand.failed_components.set(failed)
+    findings.open_for_demand(demand, failed, user, at=at)
     followup.after_test_change(sif.pk)
     return demand
 
@@ -42,15 +82,21 @@ def record_demand(*, user, sif: SafetyFunction, occurred_at: dt.datetime, succes
 @transaction.atomic
 def open_bypass(*, user, sif: SafetyFunction, started_at: dt.datetime, authorised_hours: float,
                 reason: str, compensating_measures: str = "", measures_effective: bool = False,
-                component: Component | None = None) -> Bypass:
+                component: Component | None = None, at: dt.datetime | None = None) -> Bypass:
+    """Record a bypass put in place at ``started_at`` and ask for its authorisation.
+
+    The bypass counts as bypass time from ``started_at`` whether or not it is authorised
+    (the function is disabled either way); until a lead of the site who is not ``user``
+    authorises it (:func:`authorise_bypass`) it shows as awaiting authorisation.
+    """
     require(user, Action.MANAGE_BYPASS, sif.unit.site_id)
     bypass = Bypass(sif=sif, component=component, started_at=started_at,
-                    authorised_hours=authorised_hours, reason=reason, authorised_by=user,
-                    compensating_measures=compensating_measures,
+                    authorised_hours=authorised_hours, reason=(reason or "").strip(),
+                    requested_by=user, compensating_measures=compensating_measures,
                     measures_effective=measures_effective)
     bypass.full_clean()
     _overlap_check(bypass)
-    attribute(bypass, user, "bypass opened").save()
+    attribute(bypass, user, "bypass opened", at=at).save()
     followup.after_test_change(sif.pk)
     return bypass
 
@@ -68,14 +114,36 @@ def _overlap_check(bypass: Bypass):
 
 
 @transaction.atomic
-def close_bypass(bypass: Bypass, user, ended_at: dt.datetime | None = None) -> Bypass:
+def authorise_bypass(bypass: Bypass, user, *, at: dt.datetime | None = None) -> Bypass:
+    """A lead of the site, never the requester, authorises a bypass still in place.
+
+    ``at`` is the moment of the authorisation and dates its history row (default now).
+    """
+    bypass = Bypass.objects.select_for_update().select_related("sif__unit").get(pk=bypass.pk)
+    require(user, Action.AUTHORISE_BYPASS, bypass.sif.unit.site_id)
+    if bypass.authorised_by_id is not None:
+        raise ValidationError("This bypass is already authorised.")
+    if bypass.ended_at is not None:
+        raise ValidationError("This bypass has ended: it ran without an authorisation, and "
+                              "that stays on record.")
+    bypass.authorised_by = user
+    bypass.authorised_at = at or timezone.now()
+    bypass.full_clean()  # the model refuses the requester as authoriser (Bypass.clean)
+    attribute(bypass, user, "bypass authorised", at=at).save()
+    return bypass
+
+
+@transaction.atomic
+def close_bypass(bypass: Bypass, user, ended_at: dt.datetime | None = None,
+                 at: dt.datetime | None = None) -> Bypass:
+    """Record the removal of the bypass at ``ended_at`` (default now) by ``user``."""
     bypass = Bypass.objects.select_for_update().get(pk=bypass.pk)
     require(user, Action.MANAGE_BYPASS, bypass.sif.unit.site_id)
     if bypass.ended_at is not None:
         raise ValidationError("This bypass is already closed.")
     bypass.ended_at = ended_at or timezone.now()
-    bypass.cached_state = choices.BypassState.CLOSED
+    bypass.closed_by = user
     bypass.full_clean()
-    attribute(bypass, user, "bypass closed").save()
+    attribute(bypass, user, "bypass closed", at=at).save()
     followup.after_test_change(bypass.sif_id)
     return bypass

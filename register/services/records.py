@@ -21,6 +21,7 @@ from register.models import (
     TestRecord,
     TestStep,
 )
+from register.operations import services as findings
 from register.people import person_name
 from register.permissions import Action, require, site_id_of
 from register.schedule import followup
@@ -132,6 +133,7 @@ def save_draft(
     supersedes: TestRecord | None = None,
     correction_reason: str = "",
     client_key: str | None = None,
+    at: dt.datetime | None = None,
 ) -> TestRecord:
     """Create or update a draft test record with its component results.
 
@@ -139,6 +141,7 @@ def save_draft(
     draft's version differs, nothing is written and :class:`StaleDraftError` is raised,
     unless the stored draft already holds exactly these entries (the same form sent twice),
     when nothing is written either. ``record.was_written`` tells which happened.
+    ``at`` dates the history rows when the test is loaded from the past (the demo).
     """
     require(user, Action.RECORD_TEST, sif.unit.site_id)
     if record is None:
@@ -169,7 +172,7 @@ def save_draft(
     record.correction_reason = correction_reason
     record.client_key = client_key
     record.full_clean()
-    attribute(record, user, "draft saved").save()
+    attribute(record, user, "draft saved", at=at).save()
 
     record.results.all().delete()
     errors = {}
@@ -196,13 +199,14 @@ def save_draft(
             for key, msg in outside.items():
                 errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {msg}"]
             continue
-        attribute(result, user).save()
+        attribute(result, user, at=at).save()
         for mv in item.measurements:
             # MeasuredValue.save judges a value with a step by the one rule
-            MeasuredValue.objects.create(
+            value = MeasuredValue(
                 result=result, step=mv.step, phase=mv.phase, quantity=mv.quantity,
                 value=mv.value, unit=mv.unit, within_criterion=None,
             )
+            (attribute(value, user, at=at) if at else value).save(force_insert=True)
     if errors:
         raise ValidationError(errors)
     record.was_written = True
@@ -226,10 +230,12 @@ def discard_draft(record: TestRecord, user) -> None:
 
 @transaction.atomic
 def sign_record(record: TestRecord, user, password: str | None, *, check_password=True,
-                signed_at: dt.datetime | None = None) -> TestRecord:
+                signed_at: dt.datetime | None = None,
+                at: dt.datetime | None = None) -> TestRecord:
     """The performer signs a draft by re-entering the password; the record is then frozen.
 
     ``signed_at`` is for loading historical records (import, demo); it defaults to now.
+    ``at`` dates the history row the same way (default: now).
     """
     record = TestRecord.objects.select_for_update().get(pk=record.pk)
     require(user, Action.RECORD_TEST, record.sif.unit.site_id)
@@ -246,14 +252,21 @@ def sign_record(record: TestRecord, user, password: str | None, *, check_passwor
     record.status = choices.RecordStatus.SIGNED
     record.signed_at = signed_at or timezone.now()
     record.performed_by_name = person_name(user)
-    attribute(record, user, "signed by performer").save()
+    attribute(record, user, "signed by performer", at=at).save()
     followup.after_test_change(record.sif_id)
+    findings.after_record_signed(record, user, at=at)  # open, carry over, close findings
+    if signed_at is None:  # not for records loaded from the past (import, demo)
+        from register.inbox import notices
+
+        notices.failure_found(record)
+        notices.waiting_for_countersignature(record)
     return record
 
 
 @transaction.atomic
 def verify_record(record: TestRecord, user, password: str | None, *, check_password=True,
-                  verified_at: dt.datetime | None = None) -> TestRecord:
+                  verified_at: dt.datetime | None = None,
+                  at: dt.datetime | None = None) -> TestRecord:
     """A verifier (never the performer) countersigns a signed record."""
     record = TestRecord.objects.select_for_update().get(pk=record.pk)
     require(user, Action.VERIFY_TEST, record.sif.unit.site_id)
@@ -270,7 +283,7 @@ def verify_record(record: TestRecord, user, password: str | None, *, check_passw
     record.verified_by_name = person_name(user)
     record.verified_at = verified_at or timezone.now()
     record.status = choices.RecordStatus.VERIFIED
-    attribute(record, user, "countersigned by verifier").save()
+    attribute(record, user, "countersigned by verifier", at=at).save()
     followup.after_test_change(record.sif_id)
     return record
 

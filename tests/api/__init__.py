@@ -84,7 +84,8 @@ def _fill(place: Place, now):
                                         started_at=now - dt.timedelta(hours=3),
                                         authorised_hours=8, reason="Transmitter swap")
     place.deferral = Deferral.objects.create(
-        plan=place.plan, due_on=dt.date(2029, 1, 1), proposed_on=dt.date(2029, 3, 1),
+        plan=place.plan, due_on=now.date() + dt.timedelta(days=10),
+        proposed_on=now.date() + dt.timedelta(days=60),
         reason="Turnaround moved", requested_by=user)
     place.pack = EvidencePack.objects.create(
         scope="site", site=place.site, period_start=dt.date(2025, 1, 1),

@@ -39,6 +39,9 @@ OWN_ONLY = ((200, 200, 200, 200, 200, 401), (404, 404, 404, 404, 404, 401))
 # Evidence packs: the export right (lead, verifier, auditor) at the pack's site.
 EXPORT_READ = ((200, 404, 200, 200, 404, 401), (404, 404, 404, 404, 200, 401))
 EXPORT_CREATES = ((201, 403, 201, 201, 400, 401), (400, 403, 400, 400, 201, 401))
+# The lead decides a deferral (and authorises a bypass); at the other site the outsider
+# asked for it himself, and the decider is never the requester.
+DECIDES = ((200, 403, 403, 403, 404, 401), (404, 403, 403, 403, 400, 401))
 
 
 def _ago(**kw):
@@ -153,6 +156,8 @@ TABLE = [
     ("bypasses create", "post", lambda p, w, r: "/api/bypasses/", lambda p: {
         "sif": p.sif.pk, "component": p.components[0].pk, "started_at": _ago(hours=1),
         "authorised_hours": 4, "reason": "Valve maintenance"}, FIELD_CREATES),
+    ("bypasses authorise", "post",
+     lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/authorise/", lambda p: {}, DECIDES),
     ("bypasses close", "post", lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/close/",
      lambda p: {}, FIELD_ACTS),
     ("bypasses delete", "delete", lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/", None,
@@ -161,10 +166,11 @@ TABLE = [
     ("deferrals detail", "get", lambda p, w, r: f"/api/deferrals/{p.deferral.pk}/", None,
      READ),
     ("deferrals create", "post", lambda p, w, r: "/api/deferrals/", lambda p: {
-        "plan": p.plan.pk, "due_on": "2030-01-01", "proposed_on": "2030-02-15",
+        "plan": p.plan.pk, "due_on": "2030-01-01",  # the server sets the due date
+        "proposed_on": (timezone.localdate() + dt.timedelta(days=45)).isoformat(),
         "reason": "Shutdown moved by six weeks"}, FIELD_CREATES),
     ("deferrals decide", "post", lambda p, w, r: f"/api/deferrals/{p.deferral.pk}/decide/",
-     lambda p: {"approve": True, "note": "Risk acceptable"}, LEAD_CHANGES),
+     lambda p: {"approve": True, "note": "Risk acceptable"}, DECIDES),
     ("deferrals update", "patch", lambda p, w, r: f"/api/deferrals/{p.deferral.pk}/",
      lambda p: {"reason": "x"}, NOT_ALLOWED),
     ("assessments list", "get", lambda p, w, r: "/api/assessments/", None, LIST),

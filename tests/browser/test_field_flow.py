@@ -55,12 +55,12 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     page.set_viewport_size({"width": 390, "height": 844})
     base = live_server.url
     plan = TestPlan.objects.get(pk=plant["plan"].pk)
-    due_before, state_before = plan.next_due_on, plan.cached_state
+    due_before, state_before = plan.next_due_on, _state(plan)
     assert state_before in (choices.PlanState.OVERDUE, choices.PlanState.ESCALATED,
                             choices.PlanState.ESCALATED_2)
 
     sign_in(page, base, "tech")
-    page.get_by_label("Find by SIF or device tag").fill("101A")
+    page.get_by_label("Find a test").fill("101A")
     page.get_by_role("button", name="Search").click()
     page.wait_for_url("**/field/?q=101A*")
     tiles = page.locator(".plan-row")
@@ -107,7 +107,7 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     expect(page.locator("#record-status")).to_contain_text("Signed, awaiting verifier")
 
     plan.refresh_from_db()
-    assert plan.next_due_on != due_before and plan.cached_state != state_before
+    assert plan.next_due_on != due_before and _state(plan) != state_before
     assert plan.next_due_on.isoformat() in page.locator("#next-due").inner_text()
     assert "Not yet due" in page.locator("#plan-status").inner_text()
     assert "Achieved PFDavg" in page.locator("#achieved").inner_text()
@@ -123,3 +123,46 @@ def test_technician_records_failing_test_and_verifier_countersigns(plant, live_s
     page.screenshot(path=str(ARTIFACTS / "field-4-verified.png"), full_page=True)
     record = TestRecord.objects.get(sif=plant["sif"])
     assert record.status == choices.RecordStatus.VERIFIED
+
+
+def _state(plan):
+    from register.models import TestPlan
+    from register.schedule.due import with_state
+
+    return with_state(TestPlan.objects.filter(pk=plan.pk)).get().state
+
+
+@pytest.mark.browser
+def test_accepting_the_proposed_failure_signs_at_the_first_attempt(plant, live_server, page):
+    """A value outside its criterion: the server's live verdict fills in the failure it
+    implies (fail, dangerous undetected, a description from the step and value) and the
+    technician, accepting it, signs at the first attempt."""
+    need(shutil.which("chromium") is not None, "Chromium not installed")
+    page.set_viewport_size({"width": 390, "height": 844})
+    sign_in(page, live_server.url, "tech")
+    page.goto(f"{live_server.url}/field/plans/{plant['plan'].pk}/start/")
+    lt = page.locator("fieldset.device", has_text="LT-101A")
+    xv = page.locator("fieldset.device", has_text="XV-101")
+    # Nothing failed yet: the failure sections are shut, so the page stays short.
+    expect(lt.locator("details.failure-section")).not_to_have_attribute("open", "")
+    expect(lt.get_by_label("Failure description")).to_be_hidden()
+    lt.get_by_label("As found (%)").fill("82.6")
+    text = "Trip value as found: 82.6 % is 2.6 % above 80 %, more than the ± 1 % allowed."
+    expect(lt.get_by_label("Failure description")).to_have_value(text)
+    expect(lt.get_by_label("Failure description")).to_be_visible()
+    assert lt.locator("input[name$='-as_found'][value='fail']").is_checked()
+    assert lt.get_by_label("Dangerous, undetected (found by this test)").is_checked()
+    lt.locator("label.choice", has_text="Pass").nth(1).click()  # as left
+    for device in (xv, page.locator("fieldset.device").filter(has_not_text="LT-101A")):
+        for radio in device.locator("input[name$='-as_found'][value='pass'], "
+                                    "input[name$='-as_left'][value='pass']").all():
+            radio.check()
+    expect(xv.locator("details.failure-section")).not_to_have_attribute("open", "")
+    page.screenshot(path=str(ARTIFACTS / "field-5-proposed-failure.png"), full_page=True)
+    page.get_by_label("Your password").fill(f.PASSWORD)
+    page.get_by_role("button", name="Save and sign").click()
+    page.wait_for_url("**/field/records/*/")
+    expect(page.locator("#record-status")).to_contain_text("Signed, awaiting verifier")
+    result = TestRecord.objects.get(sif=plant["sif"]).results.get(component__tag="LT-101A")
+    assert (result.as_found, result.as_left, result.failure_mode, result.failure_description) \
+        == ("fail", "pass", "du", text)

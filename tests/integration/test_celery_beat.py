@@ -1,8 +1,8 @@
 """A real Celery worker and beat on the real Redis broker, against the real PostgreSQL.
 
-Plans whose cached state is still "not yet due" but whose due date has passed cross the
-threshold when beat's scan runs: exactly one notification per change is recorded, and
-later scans record none.
+Plans refreshed while "not yet due" whose due date has since passed cross the threshold
+when beat's scan runs: exactly one state-change row and one notification per change are
+recorded, and later scans record none.
 """
 
 import datetime as dt
@@ -20,7 +20,8 @@ from django.utils import timezone
 
 from register import choices
 from register.models import Notification, TestPlan
-from register.schedule.due import refresh_plans
+from register.models.notifications import PlanStateChange
+from register.schedule.due import refresh_plans, with_state
 from tests import factories as f
 from tests.conftest import need
 
@@ -56,9 +57,11 @@ def test_beat_scan_on_real_worker_sends_one_notification_per_change(tmp_path):
     for days in (-1, -1, 10):
         f.sif(unit, owner=owner, in_service=today - dt.timedelta(days=365 - days))
     refresh_plans(TestPlan.objects.all(), today - dt.timedelta(days=60))
-    assert set(TestPlan.objects.values_list("cached_state", flat=True)) == {"on_track"}
+    sixty_days_ago = today - dt.timedelta(days=60)
+    assert set(with_state(TestPlan.objects.all(), sixty_days_ago).values_list(
+        "state", flat=True)) == {"on_track"}
 
-    broker = BROKER.rsplit("/", 1)[0] + "/15"  # a database of its own
+    broker = BROKER  # its own database number, given by whoever runs the suite
     redis.Redis.from_url(broker).flushdb()
     env = {**os.environ, "DATABASE_URL": _database_url(), "CELERY_BROKER_URL": broker,
            "CELERY_TASK_ALWAYS_EAGER": "false", "SCAN_PERIOD_SECONDS": "2",
@@ -86,8 +89,10 @@ def test_beat_scan_on_real_worker_sends_one_notification_per_change(tmp_path):
         assert {(u, k.split(":")[2]) for u, k in rows} == expected
         assert len(set(rows)) == 3
         assert log.count("register.scan") >= 3, "beat should have run the scan several times"
-        states = sorted(TestPlan.objects.values_list("cached_state", flat=True))
+        states = sorted(with_state(TestPlan.objects.all()).values_list("state", flat=True))
         assert states == ["due_soon", "overdue", "overdue"]
+        changes = sorted(PlanStateChange.objects.values_list("from_state", "to_state"))
+        assert changes == [("", "due_soon"), ("", "overdue"), ("", "overdue")]
     finally:
         os.killpg(worker.pid, signal.SIGTERM)
         worker.wait(timeout=30)

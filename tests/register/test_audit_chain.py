@@ -197,3 +197,19 @@ def test_unchained_history_rows_are_reported(plant):
     brk = audit.verify_chain().first_break
     assert brk.kind == "entry missing" and brk.model == "register.HistoricalBypass"
     assert brk.object_id == "999"
+
+
+def test_rows_chained_before_a_column_was_added_still_verify():
+    """A history table that gained a column after its rows were chained: the row hashes
+    as it did without the column while the column holds the value every older row got;
+    once someone changes that column, the old hash no longer matches."""
+    from register.audit.chain import _as_chained_before, content_hash
+
+    old = {"history_id": 1, "id": 3, "code": "north", "name": "North works"}
+    now = {**old, "time_zone": "UTC"}
+    before = _as_chained_before("register.HistoricalSite", now)
+    assert before == old and content_hash(before) == content_hash(old)
+    assert content_hash(now) != content_hash(old)
+    assert _as_chained_before("register.HistoricalSite", {**old, "time_zone": "Asia/Tokyo"}) \
+        is None
+    assert _as_chained_before("register.HistoricalTestRecord", {**old}) is None

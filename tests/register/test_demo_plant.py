@@ -1,6 +1,8 @@
-"""Tests that read the demo plant, loaded once for the module (rolled back at the end):
-the stored verdict (every criterion counts, failures found make figures worse), the
-loader's idempotency, and a one-SIF evidence pack of a demo SIF with every element."""
+"""Tests that read the demo plant, loaded once per session into its own database
+(``tests/conftest.py::demo_plant``; each test's writes are rolled back): the stored
+verdict (every criterion counts, failures found make figures worse), the loader's
+idempotency, its history dated at each event (the as-of view years back), the commands'
+output, and a one-SIF evidence pack of a demo SIF with every element."""
 
 import csv
 import datetime as dt
@@ -13,8 +15,9 @@ from django.contrib.auth import get_user_model
 from django.db import transaction
 from django.urls import reverse
 from django.utils import timezone
+from django.utils.html import escape
 
-from calcs.adapter import latest_assessments, recompute_many
+from calcs.adapter import recompute_many
 from register import choices, demo, services
 from register.audit import chain as audit
 from register.audit import evidence
@@ -29,24 +32,10 @@ from register.schedule import services as schedule_services
 from tests import factories as f
 from tests.register.test_evidence_pack import _pdf_text, _unzip
 
-pytestmark = pytest.mark.django_db
 
-
-class _Rollback(Exception):
-    pass
-
-
-@pytest.fixture(scope="module")
-def plant(django_db_setup, django_db_blocker):
-    with django_db_blocker.unblock():
-        try:
-            with transaction.atomic():
-                site = demo.load(timezone.localdate())
-                sifs = {s.tag: s for s in SafetyFunction.objects.filter(unit__site=site)}
-                yield site, sifs, latest_assessments([s.pk for s in sifs.values()])
-                raise _Rollback
-        except _Rollback:
-            pass
+@pytest.fixture
+def plant(demo_plant):
+    return demo_plant.site, demo_plant.sifs, demo_plant.latest
 
 
 def test_demo_load_is_idempotent(plant):
@@ -60,12 +49,180 @@ def test_demo_load_is_idempotent(plant):
     assert (SafetyFunction.objects.count(), TestRecord.objects.count(),
             Site.objects.count()) == counts
     assert counts[0] >= 40
-    states = set(TestPlan.objects.values_list("cached_state", flat=True))
+    from register.schedule.due import with_state
+
+    states = set(with_state(TestPlan.objects.all()).values_list("state", flat=True))
     assert {"due_soon", "overdue", "escalated", "escalated_2"} <= states
+
+
+def test_a_load_cut_short_is_finished_on_the_day_it_began(plant):
+    from calcs.models import Assessment
+    from register.models import ChainEntry, Site
+
+    site, sifs, latest = plant
+    counts = (SafetyFunction.objects.count(), TestRecord.objects.count(),
+              ChainEntry.objects.count())
+    # As left by a load stopped before its last step (every SIF assessed).
+    Assessment.objects.filter(sif__unit__site=site).delete()
+    began = demo.started_on(site)
+    seen = []
+    again = demo.load(began + dt.timedelta(days=30),
+                      progress=lambda what, done, total: seen.append((what, done)))
+    assert again == site and Site.objects.count() == 1
+    assert seen[0] == (f"resume {began:%Y-%m-%d}", len(sifs))
+    assert (SafetyFunction.objects.count(), TestRecord.objects.count(),
+            ChainEntry.objects.count()) == counts  # nothing built twice
+    assessed = {a.sif_id: a.meets_target
+                for a in Assessment.objects.filter(sif__unit__site=site)}
+    assert assessed == {pk: a.meets_target for pk, a in latest.items()}
+    with pytest.raises(demo.DemoAlreadyLoaded):
+        demo.load(began)
 
 
 def lines(a):
     return {x["key"]: x for x in a.verdict["lines"]}
+
+
+def test_the_demo_holds_42_sifs_of_which_23_meet_their_target(plant):
+    _, sifs, latest = plant
+    meeting = sum(1 for a in latest.values() if a.meets_target)
+    assert (len(sifs), meeting, len(sifs) - meeting) == (42, 23, 19)
+
+
+def test_load_demo_shows_each_sif_as_it_is_built_and_sums_up(demo_plant):
+    out = demo_plant.load_output
+    shown = [line.split()[-1] for line in out.splitlines() if line.strip().startswith("SIF ")]
+    assert shown == [e["tag"] for e in json.loads(demo.DEMO_FILE.read_text())["sifs"]]
+    assert f"SIF 42/42 {shown[-1]}" in out
+    assert "site, people and device library: done" in out
+    assert "demands, bypasses, deferral: done" in out
+    meeting = sum(1 for a in demo_plant.latest.values() if a.meets_target)
+    assert (f"42 SIFs ({meeting} meet their target, {42 - meeting} do not), "
+            f"{TestRecord.objects.count()} test records") in out
+
+
+def _same_moment(history_rows, moment_of):
+    """Rows whose history date is not the moment of their event: (row, expected)."""
+    return [(h, moment_of(h)) for h in history_rows if h.history_date != moment_of(h)]
+
+
+def test_every_history_row_is_dated_when_its_event_happened(demo_plant):
+    from register.models import (
+        Bypass,
+        Deferral,
+        Demand,
+        DeviceType,
+        HazardScenario,
+        MeasuredValue,
+        Membership,
+        PlantUnit,
+        Site,
+        Subsystem,
+        TestPlan,
+        TestStep,
+    )
+
+    site, sifs = demo_plant.site, demo_plant.sifs
+    assert demo.started_on(site) == demo_plant.today
+    designed_at = dt.datetime.combine(demo_plant.today - demo.DESIGN_LEAD, dt.time(10),
+                                      tzinfo=dt.UTC)
+    # The design: recorded before the oldest SIF went into service.
+    assert min(s.in_service_on for s in sifs.values()) > designed_at.date()
+    for model in (Site, PlantUnit, Membership, DeviceType, SafetyFunction, Subsystem,
+                  Component, TestPlan, TestStep, HazardScenario):
+        dates = set(model.history.values_list("history_date", flat=True))
+        assert dates == {designed_at}, model
+    # Tests: drafted and signed when performed, countersigned when verified.
+    records = {r.pk: r for r in TestRecord.objects.all()}
+    assert len(records) > 600
+    moment = {"draft saved": "performed_at", "signed by performer": "signed_at",
+              "countersigned by verifier": "verified_at"}
+    rows = list(TestRecord.history.all())
+    assert len(rows) == 3 * len(records)
+    assert not _same_moment(rows, lambda h: getattr(records[h.id],
+                                                    moment[h.history_change_reason]))
+    performed = {pk: r.performed_at for pk, r in records.items()}
+    assert not _same_moment(ComponentResult.history.all(), lambda h: performed[h.record_id])
+    result_record = dict(ComponentResult.objects.values_list("pk", "record_id"))
+    assert MeasuredValue.history.count() > 1000
+    assert not _same_moment(MeasuredValue.history.all(),
+                            lambda h: performed[result_record[h.result_id]])
+    # Demands when they occurred, bypasses when opened and when closed.
+    demands = {d.pk: d.occurred_at for d in Demand.objects.all()}
+    assert len(demands) == 10
+    assert not _same_moment(Demand.history.all(), lambda h: demands[h.id])
+    bypasses = {b.pk: b for b in Bypass.objects.all()}
+    assert len(Bypass.history.filter(history_change_reason="bypass closed")) == 12
+    assert not _same_moment(Bypass.history.all(), lambda h: (
+        bypasses[h.id].ended_at if h.history_change_reason == "bypass closed"
+        else bypasses[h.id].started_at))  # opened, and authorised as it started
+    # The deferral was asked for on the demo day.
+    (request,) = Deferral.history.all()
+    assert request.history_date.date() == demo_plant.today
+
+
+def test_as_of_five_years_back_shows_the_sif_its_plans_and_the_tests_done_by_then(
+        demo_plant, client):
+    from register.days import end_of_day
+
+    sif = demo_plant.sifs["U10-SIF-101"]
+    day = demo_plant.today - dt.timedelta(days=5 * 365)
+    end = end_of_day(day, demo_plant.site)
+    full = list(TestRecord.objects.filter(sif=sif, kind=choices.TestKind.FULL)
+                .order_by("performed_at").values_list("performed_at", flat=True))
+    done, later = [t for t in full if t <= end], [t for t in full if t > end]
+    assert done and later  # the date falls inside the SIF's test history
+    client.force_login(get_user_model().objects.get(username="auditor"))
+    page = client.get(reverse("audit:sif_as_of", args=[sif.pk]),
+                      {"date": day.isoformat()}).content.decode()
+    assert "not in the register yet" not in page
+    assert escape(sif.name) in page and "XV-101" in page
+    assert "No test plans" not in page
+    row = page[page.index("<td>Full proof test"):]
+    row = row[:row.index("</tr>")]
+    assert f"{done[-1]:%Y-%m-%d}" in row  # the last full test done by then
+    assert f"{later[0]:%Y-%m-%d}" not in row
+    assert "Recomputed now with the engine from the records up to that date" in page
+
+
+def test_rundemo_prepares_with_progress_and_sums_up_the_emails_in_one_line(
+        demo_plant, settings, tmp_path, capsys):
+    from django.core.management import call_command
+
+    from register.models import Notification
+
+    settings.VAR_DIR = tmp_path
+    settings.EMAIL_BACKEND = "django.core.mail.backends.console.EmailBackend"  # the demo's
+    lead = get_user_model().objects.get(username="lead")
+    # An unsent notification from an hour ago: the scan's sweep e-mails it.
+    note = Notification.objects.create(
+        recipient=lead, site=demo_plant.site, kind=choices.NotificationKind.PLAN_STATE,
+        subject_key="test:unsent", message="A notification still to be e-mailed.")
+    Notification.objects.filter(pk=note.pk).update(
+        created_at=timezone.now() - dt.timedelta(hours=1))
+    out = io.StringIO()
+    call_command("rundemo", "--no-serve", stdout=out)
+    text = out.getvalue() + capsys.readouterr().out
+    steps = [line for line in text.splitlines() if line[:4] in ("1/3 ", "2/3 ", "3/3 ")]
+    assert [s[:4] for s in steps] == ["1/3 ", "2/3 ", "3/3 "]
+    assert "Migrating the database" in steps[0] and "up to date" in steps[0]
+    assert "already loaded; nothing changed" in text
+    assert "test plans" in text  # the scan's counts
+    (summary,) = [line for line in text.splitlines() if line.startswith("E-mails:")]
+    emailed_to = summary.split(" e-mailed to ", 1)[1].split(".", 1)[0].split(", ")
+    assert "lead" in emailed_to and str(tmp_path / "demo-mail") in summary
+    assert "A notification still to be e-mailed." not in text  # no e-mail text dumped
+    assert "Subject:" not in text
+    files = list((tmp_path / "demo-mail").iterdir())
+    assert any("A notification still to be e-mailed." in f.read_text() for f in files)
+    Notification.objects.get(pk=note.pk, emailed_at__isnull=False)
+
+
+def test_rundemo_help_documents_the_address():
+    from register.management.commands.rundemo import Command
+
+    text = " ".join(Command().create_parser("manage.py", "rundemo").format_help().split())
+    assert "addrport" in text and "0.0.0.0:8000" in text and "127.0.0.1:8000" in text
 
 
 def test_every_stored_verdict_is_the_meets_target_flag(plant):
@@ -127,6 +284,7 @@ def small_plant():
 _full_test = f.full_test
 
 
+@pytest.mark.django_db
 def test_a_failure_found_at_the_last_test_fails_the_observed_line(small_plant):
     _, u, tech = small_plant
     now = timezone.now()

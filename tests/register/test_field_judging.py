@@ -1,11 +1,13 @@
-"""Judging on the test entry page: each device is asked only for its own steps, the live
-judging endpoint answers with the server's verdict (and only to people who may record at
-the site), and the judgement preselects the as-found verdict and the failure mode."""
+"""Judging on the test entry page: each device is asked only for its own steps (as the
+step's setting or, without one, its words say), the live judging endpoint answers with the
+server's verdict (and only to people who may record at the site), and the judgement
+preselects the as-found verdict, the failure mode and the failure description."""
 
 from __future__ import annotations
 
 import datetime as dt
 import re
+from html.parser import HTMLParser
 
 import pytest
 from django.db import transaction
@@ -219,18 +221,25 @@ def test_endpoint_has_the_rights_of_the_form_page(world):
 # --- without JavaScript ------------------------------------------------------------------
 
 
+def _typed(w, *, token: str, action: str, trip_found: str, **extra) -> dict:
+    """What the technician sends: the transmitter's trip value as found and its as-left
+    verdict, the valve's closing time, pass for the valve and the logic solver."""
+    lt, xv, sls = w["lt"], w["xv"], w["sls"]
+    when = (timezone.localtime() - dt.timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M")
+    return {"form_token": token * 32, "kind": "full", "performed_at": when, "action": action,
+            f"c{lt.pk}-v{w['trip'].pk}_found": trip_found, f"c{lt.pk}-as_left": "pass",
+            f"c{xv.pk}-v{w['closing'].pk}_found": "6.1", f"c{xv.pk}-as_found": "pass",
+            f"c{xv.pk}-as_left": "pass", f"c{sls.pk}-as_found": "pass",
+            f"c{sls.pk}-as_left": "pass", **extra}
+
+
 @pytest.mark.django_db
 def test_without_javascript_the_verdict_and_proposal_show_after_submit(world):
     w = world
-    lt, xv, sls, trip, closing = w["lt"], w["xv"], w["sls"], w["trip"], w["closing"]
+    lt = w["lt"]
     client = _client(w["tech"])
     start = reverse("field:start", args=[w["plan"].pk])
-    when = (timezone.localtime() - dt.timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M")
-    data = {"form_token": "7" * 32, "kind": "full", "performed_at": when, "action": "save",
-            f"c{lt.pk}-v{trip.pk}_found": "83.2", f"c{lt.pk}-as_left": "pass",
-            f"c{xv.pk}-v{closing.pk}_found": "6.1", f"c{xv.pk}-as_found": "pass",
-            f"c{xv.pk}-as_left": "pass", f"c{sls.pk}-as_found": "pass",
-            f"c{sls.pk}-as_left": "pass"}
+    data = _typed(w, token="7", action="save", trip_found="83.2")
     resp = client.post(start, data)
     html = resp.content.decode()
     assert resp.status_code == 400 and not TestRecord.objects.filter(sif=w["sif"]).exists()
@@ -250,3 +259,146 @@ def test_without_javascript_the_verdict_and_proposal_show_after_submit(world):
     result = record.results.get(component=lt)
     assert (result.as_found, result.failure_mode) == ("fail", "du")
     assert result.measurements.get().within_criterion is False
+
+
+# --- the step's own setting, on the page --------------------------------------------------
+
+
+@pytest.mark.django_db
+def test_the_steps_own_setting_decides_which_device_is_asked(world):
+    """A step set to a role is asked of that role's devices whatever its words say; a step
+    without a value to measure shows as a check on the devices it concerns."""
+    w = world
+    lt, xv, sls = w["lt"], w["xv"], w["sls"]
+    scan = TestStep.objects.create(
+        plan=w["plan"], position=4, instruction="Time the solver from input to output.",
+        measured_quantity="Response time", unit="s", criterion=choices.CriterionKind.AT_MOST,
+        limit=0.5, applies_to_role=choices.SubsystemRole.LOGIC)
+    assert rules.step_role(TestStep(measured_quantity="Response time", unit="s")) == "final"
+    html = _client(w["tech"]).get(reverse("field:start", args=[w["plan"].pk])).content.decode()
+    assert f'name="c{sls.pk}-v{scan.pk}_found"' in html
+    assert f'name="c{lt.pk}-v{scan.pk}_found"' not in html
+    assert f'name="c{xv.pk}-v{scan.pk}_found"' not in html
+    assert html.count('class="measured"') == 6
+    # The logic check (nothing measured) is shown to the logic solver, and only there.
+    check = "Confirm the logic solver sets its outputs."
+    assert html.count(check) == 1
+    panels = html.split('<fieldset class="panel device"')[1:]
+    assert [check in p for p in panels] == ["SLS-J1-301" in p for p in panels]
+
+
+# --- the failure description the judgement proposes -----------------------------------------
+
+
+def _textarea(html: str, name: str) -> str | None:
+    import html as html_lib
+
+    found = re.search(rf'<textarea[^>]*name="{name}"[^>]*>(.*?)</textarea>', html, re.S)
+    return html_lib.unescape(found.group(1)).strip() if found else None
+
+
+def _hidden(html: str, name: str) -> str | None:
+    found = re.search(rf'<input type="hidden" name="{name}"[^>]*value="([^"]*)"', html)
+    return found.group(1) if found else None
+
+
+@pytest.mark.django_db
+def test_an_outside_value_prefills_the_failure_description_live(world):
+    w = world
+    lt, trip = w["lt"], w["trip"]
+    p = f"c{lt.pk}"
+    client = _client(w["tech"])
+    html = client.get(judge_url(w, lt), {f"{p}-v{trip.pk}_found": "83.2"},
+                      **HTMX).content.decode()
+    text = "Trip value as found: 83.2 % is 3.2 % above 80 %, more than the ± 1 % allowed."
+    assert _checked(html, f"{p}-as_found") == "fail" and _checked(html, f"{p}-failure_mode") \
+        == "du"
+    assert f'id="id_{p}-failure_description-box" hx-swap-oob="innerHTML"' in html
+    assert _textarea(html, f"{p}-failure_description") == text
+    assert str(rules.PROPOSED_DESCRIPTION) in html
+    mark = _hidden(html, f"{p}-proposed_text")
+    assert mark == rules.text_mark(text)
+    shown = {f"{p}-as_found": "fail", f"{p}-failure_mode": "du",
+             f"{p}-proposed": "as_found,failure_mode", f"{p}-failure_description": text,
+             f"{p}-proposed_text": mark}
+    # The value retyped: the untouched description follows it.
+    html = client.get(judge_url(w, lt), {**shown, f"{p}-v{trip.pk}_found": "83.5"},
+                      **HTMX).content.decode()
+    assert _textarea(html, f"{p}-failure_description").startswith(
+        "Trip value as found: 83.5 % is 3.5 % above 80 %")
+    # Edited by the technician: the text is theirs and is not sent back or replaced.
+    own = {**shown, f"{p}-failure_description": text + " Impulse line blocked."}
+    for value in ("83.5", "80.2"):
+        html = client.get(judge_url(w, lt), {**own, f"{p}-v{trip.pk}_found": value},
+                          **HTMX).content.decode()
+        assert _textarea(html, f"{p}-failure_description") is None
+        assert _hidden(html, f"{p}-proposed_text") == ""
+
+
+class _Fields(HTMLParser):
+    """What a browser without JavaScript sends for the form ``form_id`` as the page shows
+    it: text, hidden and date inputs, checked radios and textareas (no buttons, no files)."""
+
+    def __init__(self, form_id):
+        super().__init__(convert_charrefs=True)
+        self.form_id, self.inside, self.data, self._textarea = form_id, False, {}, None
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "form":
+            self.inside = a.get("id") == self.form_id
+        elif self.inside and tag == "input" and a.get("name"):
+            kind = a.get("type", "text")
+            if kind in ("radio", "checkbox"):
+                if "checked" in a:
+                    self.data[a["name"]] = a.get("value", "on")
+            elif kind not in ("file", "submit", "button"):
+                self.data[a["name"]] = a.get("value") or ""
+        elif self.inside and tag == "textarea":
+            self._textarea = a["name"]
+            self.data[a["name"]] = ""
+
+    def handle_endtag(self, tag):
+        if tag == "form":
+            self.inside = False
+        elif tag == "textarea":
+            self._textarea = None
+
+    def handle_data(self, data):
+        if self._textarea:
+            self.data[self._textarea] += data.lstrip("\n") if not self.data[
+                self._textarea] else data
+
+
+def _as_shown(html: str) -> dict:
+    parser = _Fields("entry-form")
+    parser.feed(html)
+    return parser.data
+
+
+@pytest.mark.django_db
+def test_without_javascript_accepting_the_proposal_signs_at_the_next_attempt(world):
+    """Signing with a value outside: the server shows its verdict and fills in the failure
+    it implies (fail, dangerous undetected, the description); sending the page back as it
+    is, with the password, signs."""
+    w = world
+    lt, xv = w["lt"], w["xv"]
+    client = _client(w["tech"])
+    start = reverse("field:start", args=[w["plan"].pk])
+    first = client.post(start, _typed(w, token="8", action="sign", trip_found="82.5", **{
+        "password": f.PASSWORD, f"c{lt.pk}-v{w['trip'].pk}_left": "80.1"}))
+    html = first.content.decode()
+    assert first.status_code == 400 and not TestRecord.objects.filter(sif=w["sif"]).exists()
+    shown = _as_shown(html)
+    text = "Trip value as found: 82.5 % is 2.5 % above 80 %, more than the ± 1 % allowed."
+    assert (shown[f"c{lt.pk}-as_found"], shown[f"c{lt.pk}-failure_mode"],
+            shown[f"c{lt.pk}-failure_description"]) == ("fail", "du", text)
+    assert f'<details class="failure-section" id="c{lt.pk}-failure" open>' in html
+    assert f'<details class="failure-section" id="c{xv.pk}-failure">' in html  # passed: shut
+    again = client.post(start, {**shown, "action": "sign", "password": f.PASSWORD})
+    assert again.status_code == 302, again.content.decode()[:3000]
+    record = TestRecord.objects.get(sif=w["sif"])
+    assert record.status == choices.RecordStatus.SIGNED
+    result = record.results.get(component=lt)
+    assert (result.as_found, result.as_left, result.failure_mode, result.failure_description) \
+        == ("fail", "pass", "du", text)

@@ -1,9 +1,13 @@
-"""The field workflow through the web: list, entry, signing, countersigning, corrections."""
+"""The field workflow through the web: list and search, entry, signing, countersigning,
+corrections; the entry page and the search on the demo plant."""
 
 import datetime as dt
+import re
 
 import pytest
+from django.contrib.auth import get_user_model
 from django.core.files.uploadedfile import SimpleUploadedFile
+from django.test import Client
 from django.urls import reverse
 from django.utils import timezone
 
@@ -13,14 +17,13 @@ from register.models import (
     Attachment,
     Component,
     MeasuredValue,
+    PlantUnit,
     SafetyFunction,
     TestPlan,
     TestRecord,
     TestStep,
 )
 from tests import factories as f
-
-pytestmark = pytest.mark.django_db
 
 
 @pytest.fixture
@@ -89,6 +92,7 @@ def start_url(p):
 # --- the list ----------------------------------------------------------------------------
 
 
+@pytest.mark.django_db
 def test_worklist_finds_plan_by_part_of_a_device_tag(client, plant, django_assert_max_num_queries):
     login(client, plant["tech"])
     with django_assert_max_num_queries(20):
@@ -102,9 +106,49 @@ def test_worklist_finds_plan_by_part_of_a_device_tag(client, plant, django_asser
     assert "SIF-101" not in miss and "No test plan matches" in miss
 
 
+def _tiles(client, q):
+    html = client.get(reverse("field:worklist"), {"q": q}).content.decode()
+    return sorted(re.findall(r'<strong class="tag">([^<]+)</strong>', html)), html
+
+
+@pytest.mark.django_db
+def test_worklist_finds_what_technicians_type(client, plant, django_assert_max_num_queries):
+    """SIF tag, SIF name (with its equipment), unit code or name, device tag; every word
+    must match somewhere; tags with or without separators; a plan naming its devices is
+    found by those devices only."""
+    site = plant["sif"].unit.site
+    gas = f.unit(site, code="U2")
+    PlantUnit.objects.filter(pk=gas.pk).update(name="Gas compression")
+    compressor = f.sif(gas, tag="SIF-201")
+    SafetyFunction.objects.filter(pk=compressor.pk).update(
+        name="High-high pressure in compressor K-201 discharge trips feed")
+    partial = TestPlan.objects.create(sif=plant["sif"], name="Partial stroke test",
+                                      kind=choices.TestKind.PARTIAL, interval_months=6)
+    partial.components.set([plant["xv"]])
+    login(client, plant["tech"])
+    both = ["SIF-101", "SIF-101"]  # the full and the partial test of SIF-101
+    cases = {
+        "compressor": ["SIF-201"], "k-201": ["SIF-201"], "Gas compression": ["SIF-201"],
+        "u2": ["SIF-201"], "level": both, "sif101": both, "SIF 201": ["SIF-201"],
+        "lt101a": ["SIF-101"], "LT 101A": ["SIF-101"], "xv-101": both,
+        "high": sorted(both + ["SIF-201"]), "level compressor": [], "-": sorted(
+            both + ["SIF-201"]),
+    }
+    for q, expected in cases.items():
+        tags, html = _tiles(client, q)
+        assert tags == expected, q
+    # The plan naming only the valve is not found by the transmitter's tag.
+    tags, html = _tiles(client, "LT-101A")
+    assert tags == ["SIF-101"] and "Partial stroke test" not in html
+    assert "Devices: LT-101A" in html  # the device that matched is named on the tile
+    with django_assert_max_num_queries(20):
+        client.get(reverse("field:worklist"), {"q": "high compressor k-201 u2 sif201"})
+
+
 # --- the full flow ----------------------------------------------------------------------
 
 
+@pytest.mark.django_db
 def test_draft_sign_verify_moves_due_date_and_recomputes(client, plant,
                                                          django_capture_on_commit_callbacks):
     p = plant
@@ -157,6 +201,7 @@ def test_draft_sign_verify_moves_due_date_and_recomputes(client, plant,
 # --- bad input keeps what was typed ------------------------------------------------------
 
 
+@pytest.mark.django_db
 def test_non_number_is_refused_next_to_the_field_and_kept(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(plant, lt_found="8o.4",
@@ -168,6 +213,7 @@ def test_non_number_is_refused_next_to_the_field_and_kept(client, plant):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_value_outside_criterion_cannot_pass(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(plant, xv_found="9.0"))  # > 8 s response
@@ -176,6 +222,7 @@ def test_value_outside_criterion_cannot_pass(client, plant):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_future_date_is_refused(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(
@@ -185,6 +232,7 @@ def test_future_date_is_refused(client, plant):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_date_before_in_service_is_refused(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(
@@ -196,6 +244,7 @@ def test_date_before_in_service_is_refused(client, plant):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_failure_needs_classification_and_description(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(plant, lt_found="83", lt_found_verdict="fail"))
@@ -204,6 +253,7 @@ def test_failure_needs_classification_and_description(client, plant):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_performer_cannot_countersign_own_record(client, plant):
     p = plant
     f.Membership.objects.create(user=p["tech"], site=p["sif"].unit.site,
@@ -221,6 +271,7 @@ def test_performer_cannot_countersign_own_record(client, plant):
     assert record.status == choices.RecordStatus.SIGNED and record.verified_by is None
 
 
+@pytest.mark.django_db
 def test_same_post_twice_creates_one_record(client, plant):
     login(client, plant["tech"])
     data = entry_data(plant)
@@ -240,6 +291,7 @@ def test_same_post_twice_creates_one_record(client, plant):
     assert TestRecord.objects.count() == 1
 
 
+@pytest.mark.django_db
 def test_stale_draft_keeps_the_typing_and_the_other_save(client, plant):
     login(client, plant["tech"])
     client.post(start_url(plant), entry_data(plant))
@@ -261,6 +313,7 @@ def test_stale_draft_keeps_the_typing_and_the_other_save(client, plant):
     assert f'name="expected_version" value="{record.draft_version}"' in body
 
 
+@pytest.mark.django_db
 def test_attachment_checks_type_and_is_served_as_download(client, plant, settings, tmp_path):
     settings.MEDIA_ROOT = tmp_path
     login(client, plant["tech"])
@@ -282,6 +335,7 @@ def test_attachment_checks_type_and_is_served_as_download(client, plant, setting
     assert client.get(reverse("field:attachment", args=[att.pk])).status_code == 404
 
 
+@pytest.mark.django_db
 def test_attachment_size_limit(client, plant, settings):
     settings.ATTACHMENT_MAX_BYTES = 100
     login(client, plant["tech"])
@@ -291,6 +345,7 @@ def test_attachment_size_limit(client, plant, settings):
     assert not TestRecord.objects.exists()
 
 
+@pytest.mark.django_db
 def test_correction_needs_reason_and_links_both_versions(client, plant):
     login(client, plant["tech"])
     client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
@@ -309,6 +364,7 @@ def test_correction_needs_reason_and_links_both_versions(client, plant):
 # --- rights ------------------------------------------------------------------------------
 
 
+@pytest.mark.django_db
 def test_wrong_password_keeps_the_draft(client, plant):
     login(client, plant["tech"])
     resp = client.post(start_url(plant), entry_data(plant, action="sign", password="nope"),
@@ -318,6 +374,7 @@ def test_wrong_password_keeps_the_draft(client, plant):
     assert "The password is not correct" in resp.content.decode()
 
 
+@pytest.mark.django_db
 def test_technician_cannot_verify(client, plant):
     login(client, plant["tech"])
     client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
@@ -332,6 +389,7 @@ def test_technician_cannot_verify(client, plant):
     assert record.status == choices.RecordStatus.SIGNED
 
 
+@pytest.mark.django_db
 def test_auditor_gets_403_on_every_post(client, plant):
     login(client, plant["tech"])
     client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
@@ -352,6 +410,7 @@ def test_auditor_gets_403_on_every_post(client, plant):
     assert TestRecord.objects.count() == 2
 
 
+@pytest.mark.django_db
 def test_other_site_user_gets_404(client, plant):
     login(client, plant["tech"])
     client.post(start_url(plant), entry_data(plant, action="sign", password=f.PASSWORD))
@@ -369,6 +428,7 @@ def test_other_site_user_gets_404(client, plant):
     assert client.get(reverse("field:start", args=[plant["other_plan"].pk])).status_code == 200
 
 
+@pytest.mark.django_db
 def test_the_performer_discards_a_draft_and_the_history_keeps_it(client, plant):
     """A draft is deleted only by its performer, through the one service; the deletion is a
     history row attributed to them (so it is chained); a signed record cannot be discarded."""
@@ -394,3 +454,81 @@ def test_the_performer_discards_a_draft_and_the_history_keeps_it(client, plant):
     services.sign_record(signed, tech, None, check_password=False)
     response = client.post(f"/field/records/{signed.pk}/discard/")
     assert response.status_code == 302 and TestRecord.objects.filter(pk=signed.pk).exists()
+
+
+# --- the demo plant -----------------------------------------------------------------------
+
+
+def _demo_client() -> Client:
+    client = Client()
+    client.force_login(get_user_model().objects.get(username="tech"))
+    return client
+
+
+def _value_steps(html: str, component) -> set[str]:
+    return set(re.findall(rf'name="c{component.pk}-v(\d+)_found"', html))
+
+
+def test_each_device_of_the_demos_u30_sif_301_is_asked_only_its_own_steps(demo_plant):
+    sif = demo_plant.sifs["U30-SIF-301"]
+    plan = TestPlan.objects.get(sif=sif, name="Full proof test")
+    steps = {s.position: s for s in plan.steps.all()}
+    trip, check, closing = steps[1], steps[2], steps[3]
+    devices = list(Component.objects.filter(subsystem__sif=sif).select_related("subsystem"))
+    client = _demo_client()
+    expected = {"sensing": {str(trip.pk)}, "logic": set(), "final": {str(closing.pk)}}
+    # As loaded (steps read from what they measure), then as the demo should set them.
+    for setting in (None, {1: "sensing", 2: "logic", 3: "final"}):
+        if setting:
+            for position, role in setting.items():
+                TestStep.objects.filter(pk=steps[position].pk).update(applies_to_role=role)
+        html = client.get(reverse("field:start", args=[plan.pk])).content.decode()
+        for device in devices:
+            assert _value_steps(html, device) == expected[device.subsystem.role], device.tag
+        per_role = {role: sum(d.subsystem.role == role for d in devices) for role in expected}
+        assert html.count('class="measured"') == 2 * (per_role["sensing"] + per_role["final"])
+        assert html.count(check.instruction) == per_role["logic"]
+
+
+def _found_tags(client, q: str) -> list[str]:
+    html = client.get(reverse("field:worklist"), {"q": q}).content.decode()
+    return re.findall(r'<strong class="tag">([^<]+)</strong>\s*<span class="badge', html)
+
+
+def test_field_search_finds_sif_unit_equipment_and_device_tags_in_the_demo(demo_plant):
+    client = _demo_client()
+    plans = list(TestPlan.objects.filter(sif__unit__site=demo_plant.site,
+                                         sif__life_stage=choices.LifeStage.IN_SERVICE)
+                 .select_related("sif__unit").prefetch_related("components",
+                                                               "sif__subsystems__components"))
+
+    def expected(word_match):
+        return sorted(p.sif.tag for p in plans if word_match(p))
+
+    def devices(p):
+        named = list(p.components.all())
+        return named or [c for s in p.sif.subsystems.all() for c in s.components.all()]
+
+    def compact(text):
+        return re.sub(r"[-\s_/.]", "", text).upper()
+
+    cases = {
+        "desalter": lambda p: "desalter" in p.sif.name.lower(),
+        "V-1001": lambda p: "v-1001" in p.sif.name.lower(),
+        "gas compression": lambda p: "gas compression" in p.sif.unit.name.lower(),
+        "U20": lambda p: p.sif.unit.code == "U20",
+        "lt101": lambda p: any("LT101" in compact(c.tag) for c in devices(p)),
+        "XV 301A": lambda p: any("XV" in c.tag and "301A" in c.tag for c in devices(p)),
+        "u30-sif-301": lambda p: p.sif.tag == "U30-SIF-301",
+    }
+    for q, match in cases.items():
+        want = expected(match)
+        assert want and len(want) <= 20, q  # a real match, on the first page
+        assert sorted(_found_tags(client, q)) == want, q
+    # The examples the search box shows all find something in the demo.
+    page = client.get(reverse("field:worklist")).content.decode()
+    placeholder = re.search(r'id="q"[^>]*placeholder="e\.g\. ([^"]+)"', page).group(1)
+    examples = [e.strip() for e in placeholder.split(" or ")]
+    assert len(examples) >= 2
+    for example in examples:
+        assert _found_tags(client, example), example

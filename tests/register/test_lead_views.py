@@ -330,3 +330,20 @@ def test_lead_decides_a_deferral_with_the_projection(client, plant):
                                       proposed_on=TODAY + dt.timedelta(days=90), reason="x")
     assert client.post(reverse("deferrals:decide", args=[other.pk]),
                        {"decision": "approve"}).status_code == 403
+
+
+def test_every_overview_count_equals_the_list_it_opens(client, plant):
+    """Each number on the overview (cards and unit rows) opens a list with exactly that
+    many SIFs, and the list says what was selected."""
+    import html as html_mod
+
+    client.force_login(plant["lead"])
+    page = client.get("/").content.decode()
+    links = re.findall(r'href="(/sifs/\?[^"]+)">(?:<span class="big">)?(\d+)<', page)
+    assert len(links) >= 20
+    for url, shown in links:
+        listing = client.get(html_mod.unescape(url)).content.decode()
+        count = re.search(r'id="list-count"><strong>(\d+)</strong>', listing)
+        assert count and count.group(1) == shown, (url, shown)
+        if "plan_state=" in url or "late_12m" in url:
+            assert 'class="showing"' in listing, url

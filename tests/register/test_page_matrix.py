@@ -46,6 +46,10 @@ RECORD_PAGE = ((200, 200, 403, 403, 404, LOGIN), (404, 404, 404, 404, 200, LOGIN
 POSTS = [
     ("record verify", lambda p, w: f"/field/records/{p.signed.pk}/verify/"),
     ("record correct", lambda p, w: f"/field/records/{p.signed.pk}/correct/"),
+    ("bypass authorise", lambda p, w: f"/operations/bypasses/{p.bypass.pk}/authorise/"),
+    ("bypass close", lambda p, w: f"/operations/bypasses/{p.bypass.pk}/close/"),
+    ("finding update", lambda p, w: f"/operations/findings/{p.finding.pk}/update/"),
+    ("finding close", lambda p, w: f"/operations/findings/{p.finding.pk}/close/"),
 ]
 
 # Discarding a draft (POST): only its performer may; for everyone else, nothing changes.
@@ -70,6 +74,7 @@ PAGES = [
      RECORD_PAGE),
     ("verify queue", lambda p, w: "/field/verify/", VERIFIERS),
     ("deferral list", lambda p, w: "/deferrals/", ALL),
+    ("inbox", lambda p, w: "/inbox/", ALL),
     ("deferral request", lambda p, w: f"/deferrals/plans/{p.plan.pk}/new/", RECORD_PAGE),
     ("deferral decide", lambda p, w: f"/deferrals/{p.deferral.pk}/decide/", LEAD_PAGE),
     ("chain", lambda p, w: "/audit/chain/", CHAIN),
@@ -77,6 +82,12 @@ PAGES = [
     ("pack detail", lambda p, w: f"/audit/packs/{p.pack.pk}/", EXPORT_PAGE),
     ("pack status", lambda p, w: f"/audit/packs/{p.pack.pk}/status.json", EXPORT_PAGE),
     ("as-of", lambda p, w: f"/audit/sifs/{p.sif.pk}/as-of/?date=2026-01-01", AS_OF_PAGE),
+    ("operations", lambda p, w: "/operations/?q=SIF", ALL),
+    ("findings", lambda p, w: "/operations/findings/?show=all", ALL),
+    ("bypass new", lambda p, w: f"/operations/sifs/{p.sif.pk}/bypass/", RECORD_PAGE),
+    ("demand new", lambda p, w: f"/operations/sifs/{p.sif.pk}/demand/", RECORD_PAGE),
+    ("bypass detail", lambda p, w: f"/operations/bypasses/{p.bypass.pk}/", SITE_READ),
+    ("finding detail", lambda p, w: f"/operations/findings/{p.finding.pk}/", SITE_READ),
 ]
 
 CASES = [
@@ -90,8 +101,25 @@ CASES = [
 @pytest.fixture(scope="module")
 def world(django_db_setup, django_db_blocker):
     with django_db_blocker.unblock(), transaction.atomic():
-        yield build_world()
+        yield _with_findings(build_world())
         transaction.set_rollback(True)
+
+
+def _with_findings(world):
+    """Each place also gets a finding: a device that failed to act on a demand."""
+    import datetime as dt
+
+    from django.utils import timezone
+
+    from register import services
+
+    for place in (world.own, world.other):
+        demand = services.record_demand(
+            user=place.performer, sif=place.sif, successful=False,
+            occurred_at=timezone.now() - dt.timedelta(days=3),
+            description="Valve stayed open", failed_components=[place.components[-1]])
+        place.finding = demand.findings.get()
+    return world
 
 
 def _client(world, role):
@@ -196,7 +224,8 @@ def test_every_route_is_in_a_permission_matrix():
                  "password_reset", "password_reset_done", "password_reset_confirm",
                  "password_reset_complete", "admin_login", "api:token", "api:bulk-results",
                  "api:schema", "api:docs", "api:docs-assets", "api:api-root",
-                 "audit:pack_download", "field:attachment", "api:evidence-pack-download"}
+                 "audit:pack_download", "field:attachment", "api:evidence-pack-download",
+                 "inbox:read", "inbox:read_all"}  # own notifications: tests/register/test_inbox.py
     missing = sorted(n for n in set(_route_names()) if not n.startswith("admin:")
                      and n not in covered and n not in elsewhere)
     assert not missing, f"routes without a permission matrix row: {missing}"

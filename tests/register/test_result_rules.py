@@ -231,3 +231,117 @@ def test_the_service_refuses_a_passed_value_outside_its_criterion(world):
                                                         world["step"])])])
     [(key, [msg])] = exc.value.message_dict.items()
     assert key == "results[0].as_found" and "2.41 bar" in msg
+
+
+# --- which steps a device is asked for: the step's own setting (no database) ---------------
+
+
+def _device(role, type_pk):
+    from register.models import DeviceType, Subsystem
+
+    return Component(subsystem=Subsystem(role=role),
+                     device_type=DeviceType(pk=type_pk, role=role))
+
+
+def test_a_steps_own_role_or_device_type_decides_over_its_words():
+    from register.models import DeviceType
+
+    lt, sls = _device("sensing", 1), _device("logic", 2)
+    ball, globe = _device("final", 3), _device("final", 4)
+    devices = [lt, sls, ball, globe]
+    roles, types = {"sensing", "logic", "final"}, {1, 2, 3, 4}
+    # Its words read "final" (a time in seconds), its setting says the logic solver.
+    response = _step(measured_quantity="Response time", unit="s",
+                     criterion=choices.CriterionKind.AT_MOST, limit=1.0,
+                     applies_to_role=choices.SubsystemRole.LOGIC)
+    assert rules.step_role(_step(measured_quantity="Response time", unit="s")) == "final"
+    leak = _step(measured_quantity="Seat leakage", unit="ml/min",
+                 applies_to_type=DeviceType(pk=4, role="final"))
+    # A device type no device of the test has: asked of the devices of its role.
+    gone = _step(measured_quantity="Stroke time", unit="s",
+                 applies_to_type=DeviceType(pk=99, role="final"))
+    unclear = _step(measured_quantity="Insulation resistance", unit="MΩ")
+
+    def asked(device):
+        return rules.steps_for(device, [response, leak, gone, unclear], roles_present=roles,
+                               types_present=types)
+
+    assert [asked(d) for d in devices] == [
+        [unclear], [response, unclear], [gone, unclear], [leak, gone, unclear]]
+    # A role no device of the test has (a plan naming only valves): asked of everyone.
+    assert rules.steps_for(ball, [response], roles_present={"final"},
+                           types_present={3}) == [response]
+
+
+@pytest.mark.django_db
+def test_a_step_cannot_name_a_device_type_of_another_role(world):
+    valve_type = f.device_type(role="final")
+    step = TestStep(plan=world["plan"], position=5, instruction="Check the seat.",
+                    applies_to_role=choices.SubsystemRole.SENSING, applies_to_type=valve_type)
+    with pytest.raises(ValidationError) as exc:
+        step.full_clean()
+    assert exc.value.message_dict == {"applies_to_type": [
+        "A step asked of the sensing cannot name a device type used for final elements: "
+        "change the role or the type."]}
+    step.applies_to_role = choices.SubsystemRole.FINAL
+    step.full_clean()
+
+
+# --- what an outside value proposes for the failure description (no database) -------------
+
+
+def _outside(value, step=None):
+    step = step or _step()
+    return rules.JudgedValue(step, "found", value, rules.judge_measurement(step, value))
+
+
+def test_an_outside_value_proposes_a_failure_described_from_the_step_and_value():
+    found = _outside(2.6)
+    text = rules.failure_text([found])
+    assert text == "Trip value as found: 2.6 bar is 0.3 bar above 2.3 bar, more than the " \
+                   "± 0.1 bar allowed."
+    got = rules.propose(outside_found=True, outside_left=False, as_found="", as_left="",
+                        failure_mode="", found_outside=[found])
+    assert got.changes == {"as_found": "fail", "failure_mode": "du",
+                           "failure_description": text}
+    assert got.marked == {"as_found", "failure_mode"}
+    assert got.description_mark == rules.text_mark(text)
+    assert got.notes["failure_description"] == rules.PROPOSED_DESCRIPTION
+    # Every value found outside is named; a value left outside is not a failure found.
+    closing = _step(measured_quantity="Closing time", unit="s",
+                    criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    left = rules.JudgedValue(_step(), "left", 2.7, rules.judge_measurement(_step(), 2.7))
+    both = rules.failure_text([found, left, _outside(12.5, closing)])
+    assert both == f"{text} Closing time as found: 12.5 s is over the limit of 10 s by 2.5 s."
+
+
+def test_a_proposed_description_follows_the_values_until_the_technician_edits_it():
+    first = rules.failure_text([_outside(2.6)])
+    mark = rules.text_mark(first)
+    common = {"outside_left": False, "as_found": "fail", "as_left": "",
+              "failure_mode": "du", "marked": ["as_found", "failure_mode"]}
+    # A typing slip corrected, still outside: the untouched text follows the new value.
+    again = rules.propose(outside_found=True, failure_description=first,
+                          description_mark=mark, found_outside=[_outside(2.45)], **common)
+    assert again.changes == {"failure_description": rules.failure_text([_outside(2.45)])}
+    assert again.description_mark == rules.text_mark(again.changes["failure_description"])
+    # The same value again: nothing to change (the browser's line ends do not count).
+    same = rules.propose(outside_found=True, failure_description=first.replace(" ", "\r\n", 1),
+                         description_mark=mark, found_outside=[_outside(2.6)], **common)
+    assert same.changes == {} and same.description_mark == mark
+    # Back within: the untouched text is withdrawn with the other proposals.
+    back = rules.propose(outside_found=False, failure_description=first,
+                         description_mark=mark, **common)
+    assert back.changes == {"as_found": "", "failure_mode": "", "failure_description": ""}
+    assert back.notes["failure_description"] == rules.DESCRIPTION_WITHDRAWN
+    assert back.description_mark == ""
+    # An edited text is the technician's: never replaced nor withdrawn.
+    own = first + " Impulse line partly blocked."
+    for outside, found in ((True, [_outside(2.45)]), (False, [])):
+        kept = rules.propose(outside_found=outside, failure_description=own,
+                             description_mark=mark, found_outside=found, **common)
+        assert "failure_description" not in kept.changes and kept.description_mark == ""
+    # "Not tested" as found: no failure is proposed, so no description either.
+    untested = rules.propose(outside_found=True, outside_left=False, as_found="not_tested",
+                             as_left="", failure_mode="", found_outside=[_outside(2.6)])
+    assert untested.changes == {} and untested.description_mark == ""

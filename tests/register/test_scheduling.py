@@ -114,16 +114,16 @@ def test_deferral_approved_moves_due_once_and_an_early_test_resets(plant):
     plan = TestPlan.objects.get(sif=sif)
     today = timezone.localdate()
     due = status_of(plan, today).due_on
-    d = schedule_services.request_deferral(user=tech, plan=plan, proposed_on=due + dt.timedelta(days=40),
+    d = schedule_services.request_deferral(user=tech, plan=plan, proposed_on=today + dt.timedelta(days=40),
                                   reason="turnaround")
     with pytest.raises(PermissionDenied):
         schedule_services.decide_deferral(d, tech, approve=True)  # technicians cannot decide
     schedule_services.decide_deferral(d, lead, approve=True, note="accepted")
     st = status_of(plan, today)
-    assert st.due_on == due + dt.timedelta(days=40) and st.deferred
+    assert st.due_on == today + dt.timedelta(days=40) and st.deferred
     # A second deferral of the same due date cannot be approved.
     d2 = schedule_services.request_deferral(user=tech, plan=plan, due_on=due,
-                                   proposed_on=due + dt.timedelta(days=80), reason="again")
+                                   proposed_on=today + dt.timedelta(days=80), reason="again")
     with pytest.raises(ValidationError, match="deferred once"):
         schedule_services.decide_deferral(d2, lead, approve=True)
     # The test done early, before the deferred date: the next due date follows the test.

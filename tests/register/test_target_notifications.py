@@ -1,5 +1,6 @@
-"""A SIF whose verdict turns to "does not meet target" is notified to its site's leads, once
-per change (register.inbox.notices.notify_verdict_changes)."""
+"""A recompute's verdict change is written as an append-only row; a SIF whose verdict turns
+to "does not meet target" is notified from it to its site's leads, once per change
+(register.inbox.notices.notify_verdict_changes), and e-mailed once by its own task."""
 
 from __future__ import annotations
 
@@ -8,7 +9,7 @@ import itertools
 
 import pytest
 from django.core import mail
-from django.db import connection
+from django.db import IntegrityError, connection, transaction
 from django.test.utils import CaptureQueriesContext
 from django.utils import timezone
 
@@ -18,7 +19,9 @@ from register import choices
 from register.inbox.delivery import send_pending_emails
 from register.inbox.notices import notify_verdict_changes
 from register.models import Notification, SafetyFunction
+from register.models.notifications import AppendOnlyError, SifVerdictChange
 from tests import factories as f
+from tests.conftest import need
 
 pytestmark = pytest.mark.django_db
 _minutes = itertools.count(1)
@@ -58,12 +61,14 @@ def _notes(sif):
                                        subject_key__startswith=f"target:{sif.pk}:")
 
 
-def test_turning_to_fail_notifies_each_lead_once(plant):
+def test_turning_to_fail_notifies_each_lead_once(plant, django_capture_on_commit_callbacks):
     sif = plant["sif"]
     ok = _assess(sif)
     failing = _assess(sif, achieved=8e-3)
     assert failing.meets_target is False
-    assert notify_verdict_changes([(ok, failing)]) == 2
+    with django_capture_on_commit_callbacks(execute=True):
+        assert notify_verdict_changes([(ok, failing)]) == 2
+    assert len(mail.outbox) == 2  # each e-mailed by its own task after the commit
     notes = _notes(sif)
     assert {n.recipient for n in notes} == set(plant["leads"])  # not the technician owner
     for n in notes:
@@ -80,11 +85,33 @@ def test_turning_to_fail_notifies_each_lead_once(plant):
     back = _assess(sif)
     assert notify_verdict_changes([(again, back)]) == 0
     fails_again = _assess(sif, achieved=8e-3)
-    assert notify_verdict_changes([(back, fails_again)]) == 2
+    with django_capture_on_commit_callbacks(execute=True):
+        assert notify_verdict_changes([(back, fails_again)]) == 2
     assert _notes(sif).count() == 4
-    # Emailed once each, by the next scan's mail step.
-    assert send_pending_emails() == 4 and len(mail.outbox) == 4
-    assert send_pending_emails() == 0
+    assert len(mail.outbox) == 4 and not _notes(sif).filter(emailed_at__isnull=True)
+    assert send_pending_emails(older_than=dt.timedelta(0)) == 0  # the sweeper: never twice
+    # One row per change of the verdict, both ways; none for the same verdict again.
+    rows = SifVerdictChange.objects.filter(sif=sif).order_by("id")
+    assert [(r.from_meets, r.to_meets, r.assessment_id) for r in rows] == [
+        (True, False, failing.pk), (False, True, back.pk), (True, False, fails_again.pk)]
+    assert FAILED_REASON in rows[0].summary
+    notify_verdict_changes([(back, fails_again)])
+    assert rows.count() == 3
+
+
+def test_verdict_change_rows_are_append_only(plant):
+    sif = plant["sif"]
+    notify_verdict_changes([(_assess(sif), _assess(sif, achieved=8e-3))])
+    row = SifVerdictChange.objects.get(sif=sif)
+    with pytest.raises(AppendOnlyError):
+        row.save()
+    with pytest.raises(AppendOnlyError):
+        SifVerdictChange.objects.filter(pk=row.pk).delete()
+    need(connection.vendor == "postgresql", "the database trigger needs PostgreSQL")
+    with pytest.raises(IntegrityError), transaction.atomic(), connection.cursor() as c:
+        c.execute("UPDATE register_sifverdictchange SET to_meets = true WHERE id = %s",
+                  [row.pk])
+    assert SifVerdictChange.objects.get(pk=row.pk).to_meets is False
 
 
 def test_first_assessment_or_one_not_shown_to_meet_before(plant):
@@ -107,7 +134,11 @@ def test_first_assessment_or_one_not_shown_to_meet_before(plant):
 
 def test_query_count_does_not_grow_with_the_number_of_sifs(plant):
     unit = plant["sif"].unit
-    pairs = [(None, _assess(f.sif(unit), achieved=8e-3)) for _ in range(6)]
-    with CaptureQueriesContext(connection) as ctx:
-        assert notify_verdict_changes(pairs) == 12
-    assert len(ctx.captured_queries) <= 5
+
+    def queries(n):
+        pairs = [(None, _assess(f.sif(unit), achieved=8e-3)) for _ in range(n)]
+        with CaptureQueriesContext(connection) as ctx:
+            assert notify_verdict_changes(pairs) == 2 * n
+        return len(ctx.captured_queries)
+
+    assert queries(2) == queries(12)

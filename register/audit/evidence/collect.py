@@ -1,5 +1,5 @@
 """Collecting the facts of an evidence pack in bulk: a fixed number of queries for the
-whole scope, plus a few per month-end for the overdue history."""
+whole scope, plus a few for the overdue periods."""
 
 from __future__ import annotations
 
@@ -25,6 +25,7 @@ from register.models import (
     Deferral,
     Demand,
     EvidencePack,
+    Finding,
     HazardScenario,
     InitiatingCause,
     ProtectionLayer,
@@ -34,8 +35,9 @@ from register.models import (
     TestRecord,
     TestStep,
 )
+from register.operations import services as findings_rules
 from register.people import person_name
-from register.schedule.due import compute_statuses
+from register.schedule.due import plan_timelines
 
 CAUTION = ("Results support, and do not replace, a functional safety assessment by "
            "competent persons under IEC 61511 and local regulations.")
@@ -55,7 +57,7 @@ OVERDUE_STATES = {choices.PlanState.OVERDUE, choices.PlanState.ESCALATED,
                   choices.PlanState.ESCALATED_2}
 
 CSV_FILES = ("sifs", "criteria", "tests", "failures", "demands", "bypasses", "deferrals",
-             "overdue", "changes")
+             "overdue", "changes", "findings")
 
 
 def packs_dir() -> Path:
@@ -105,21 +107,6 @@ class Collected:
     loaded: dict[int, calculations().SifData] = field(default_factory=dict)
 
 
-def _month_ends(start: dt.date, end: dt.date) -> list[dt.date]:
-    out = []
-    y, m = start.year, start.month
-    while True:
-        nxt = dt.date(y + (m == 12), m % 12 + 1, 1)
-        last = nxt - dt.timedelta(days=1)
-        if last >= end:
-            break
-        if last >= start:
-            out.append(last)
-        y, m = nxt.year, nxt.month
-    out.append(end)
-    return out
-
-
 def collect(pack: EvidencePack, progress=None) -> Collected:
     start, end = pack.period_start, pack.period_end
     t0, t1 = _utc(start), _utc(end, end=True)
@@ -144,7 +131,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
             "lopa": [], "subsystems": [], "components": [], "plans": [],
             "assessment": None, "period_achieved_pfd_avg": None,
             "tests": [], "failures": [], "demands": [], "bypasses": [], "deferrals": [],
-            "overdue": [], "changes": [],
+            "overdue": [], "changes": [], "findings": [],
         }
         if d.scenarios:
             try:
@@ -279,18 +266,42 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
     now = timezone.now()
     for b in Bypass.objects.filter(sif_id__in=ids, started_at__lte=t1).filter(
             Q(ended_at__isnull=True) | Q(ended_at__gte=t0)).select_related(
-            "authorised_by").order_by("started_at"):
+            "authorised_by", "requested_by", "closed_by").order_by("started_at"):
         hours = b.duration_hours(min(now, t1) if b.ended_at is None else now)
         per_sif[b.sif_id]["bypasses"].append({
             "started_at": _iso(b.started_at), "ended_at": _iso(b.ended_at),
             "open": b.ended_at is None, "duration_hours": round(hours, 2),
             "authorised_hours": b.authorised_hours,
-            "over_authorised": hours > b.authorised_hours,
+            "over_authorised": b.ran_over(min(now, t1) if b.ended_at is None else now),
             "component": comp_by_id[b.component_id].tag if b.component_id in comp_by_id
             else ("whole SIF" if b.component_id is None else str(b.component_id)),
             "reason": b.reason, "authorised_by": person_name(b.authorised_by),
             "compensating_measures": b.compensating_measures,
-            "measures_effective": b.measures_effective})
+            "measures_effective": b.measures_effective,
+            "requested_by": person_name(b.requested_by),
+            "authorised_at": _iso(b.authorised_at),
+            "authorisation": str(choices.BypassAuthorisation(b.authorisation).label),
+            "closed_by": person_name(b.closed_by)})
+
+    # Findings found in the period or still open in it, with their follow-up.
+    for fd in Finding.objects.filter(sif_id__in=ids, found_at__lte=t1).filter(
+            Q(closed_at__isnull=True) | Q(closed_at__gte=t0)).select_related(
+            "component", "owner", "closed_by", "retest", "result__record", "demand",
+            "sif__unit__site").order_by("found_at", "id"):
+        source = (f"test #{fd.result.record_id} ({fd.result.record.get_kind_display()})"
+                  if fd.result_id else ("spurious trip" if fd.demand.spurious
+                                        else "real demand"))
+        per_sif[fd.sif_id]["findings"].append({
+            "id": fd.pk, "component": fd.component.tag, "found_at": _iso(fd.found_at),
+            "found_by": source, "failure_mode": findings_rules.failure_text(fd),
+            "description": fd.description, "owner": person_name(fd.owner),
+            "corrective_action": fd.corrective_action,
+            "retest_due_on": _iso(fd.retest_due_on), "status": fd.get_status_display(),
+            "retest": (f"#{fd.retest_id} {fd.retest.get_kind_display()} "
+                       f"{_iso(fd.retest.performed_at)}" if fd.retest_id else ""),
+            "closed_at": _iso(fd.closed_at), "closed_by": person_name(fd.closed_by),
+            "closure_note": fd.closure_note,
+            "age_days": findings_rules.age_days(fd, min(end, timezone.localdate()))})
 
     # Deferrals requested, decided or due in the period.
     plan_sif = {p.pk: d.sif.pk for d in loaded for p in d.plans}
@@ -305,7 +316,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
             "decided_by": person_name(df.decided_by), "decided_at": _iso(df.decided_at),
             "decision_note": df.decision_note, "projected_pfd_avg": df.projected_pfd_avg})
     if progress:
-        progress(18, "Tests, demands, bypasses and deferrals loaded")
+        progress(18, "Tests, demands, bypasses, findings and deferrals loaded")
 
     _overdue(out, per_sif, ids, plan_sif, start, end)
     _changes(per_sif, loaded, ids, sub_by_id, t0, t1)
@@ -314,38 +325,29 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
 
     for entry in out.sifs:
         for key in ("tests", "failures", "demands", "bypasses", "deferrals", "overdue",
-                    "changes"):
+                    "changes", "findings"):
             for row in entry[key]:
                 out.tables[key].append({"sif": entry["tag"], **row})
     return out
 
 
 def _overdue(out, per_sif, ids, plan_sif, start, end):
-    """Plans found overdue at month ends (and at the period end), merged into spans."""
-    plans = TestPlan.objects.filter(sif_id__in=ids)
+    """Every day of the period on which a plan was overdue, as exact periods, by the one
+    rule (``schedule.due.plan_timelines``): the due date, the first and last overdue day,
+    the days overdue at the end of the period and the worst state reached."""
+    plans = TestPlan.objects.filter(sif_id__in=ids).select_related("sif__unit__site")
     names = dict(plans.values_list("pk", "name"))
-    spans: dict[int, list[dict]] = defaultdict(list)
-    for day in _month_ends(start, end):
-        for plan_id, st in compute_statuses(plans, day).items():
-            if st.state not in OVERDUE_STATES:
-                continue
-            open_spans = spans[plan_id]
-            if open_spans and open_spans[-1]["due_on"] == _iso(st.due_on):
-                span = open_spans[-1]
-                span["last_seen_overdue"] = day.isoformat()
-                span["max_days_overdue"] = max(span["max_days_overdue"], st.days_overdue)
-                span["worst_state"] = _worse(span["worst_state"], st.state)
-            else:
-                open_spans.append({"plan": names[plan_id], "due_on": _iso(st.due_on),
-                                   "deferred": st.deferred,
-                                   "first_seen_overdue": day.isoformat(),
-                                   "last_seen_overdue": day.isoformat(),
-                                   "max_days_overdue": st.days_overdue,
-                                   "worst_state": st.state})
-    for plan_id, rows in spans.items():
-        for row in rows:
-            row["worst_state"] = str(choices.PlanState(row["worst_state"]).label)
-            per_sif[plan_sif[plan_id]]["overdue"].append(row)
+    for plan_id, timeline in plan_timelines(plans, start, end).items():
+        for first, last in timeline.overdue_periods():
+            seg = next(s for s in timeline.segments if s.start <= first <= s.end)
+            due, deferred = seg.due_on, seg.deferred
+            worst = max((timeline.state_on(day) for day in (first, last)),
+                        key=lambda s: choices.PLAN_STATE_RANK.get(s, 0))
+            per_sif[plan_sif[plan_id]]["overdue"].append({
+                "plan": names[plan_id], "due_on": _iso(due), "deferred": deferred,
+                "overdue_from": first.isoformat(), "overdue_to": last.isoformat(),
+                "days_overdue": (last - due).days,
+                "worst_state": str(choices.PlanState(worst).label)})
 
 
 def _worse(a: str, b: str) -> str:

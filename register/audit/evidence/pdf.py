@@ -316,16 +316,30 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
         story.append(KeepTogether(section))
         story.append(Paragraph("Bypasses", h2))
         story += table(["Started", "Ended", "Duration (h)", "Allowed (h)", "Bypassed",
-                        "Reason", "Authorised by", "Compensating measures"],
-                       [[b["started_at"], b["ended_at"] or "still open",
+                        "Reason", "Requested / authorised by", "Compensating measures"],
+                       [[b["started_at"], (b["ended_at"] or "still open")
+                         + (f" ({b['closed_by']})" if b.get("closed_by") else ""),
                          f"{b['duration_hours']:.1f}"
                          + (" - over authorised time" if b["over_authorised"] else ""),
                          _g(b["authorised_hours"], "g"), b["component"], b["reason"],
-                         b["authorised_by"],
+                         f"{b.get('requested_by') or '-'} / "
+                         + (f"{b['authorised_by']}, {b['authorised_at']}" if b["authorised_by"]
+                            else str(b.get("authorisation", "not authorised")).upper()),
                          (b["compensating_measures"] or "none")
                          + (" (equivalent)" if b["measures_effective"] else "")]
                         for b in e["bypasses"]],
                        [0.12, 0.12, 0.1, 0.08, 0.09, 0.17, 0.11, 0.21])
+        story.append(Paragraph("Findings and their follow-up", h2))
+        story += table(["Found", "Component", "Found by", "Owner", "Corrective work",
+                        "Retest due", "Status"],
+                       [[f["found_at"], f["component"], f["found_by"], f["owner"] or "-",
+                         f["corrective_action"] or "-", f["retest_due_on"] or "not planned",
+                         f["status"] + (f", {f['age_days']} d" if not f["closed_at"] else
+                                        f" {f['closed_at']} by {f['closed_by'] or '-'}")
+                         + (f": retest {f['retest']}" if f["retest"] else "")
+                         + (f": {f['closure_note']}" if f["closure_note"] else "")]
+                        for f in e.get("findings", [])],
+                       [0.13, 0.1, 0.14, 0.11, 0.2, 0.1, 0.22])
         story.append(Paragraph("Deferrals", h2))
         story += table(["Plan", "Due", "Proposed", "Reason", "Requested", "Decision"],
                        [[d["plan"], d["due_on"], d["proposed_on"], d["reason"],
@@ -339,14 +353,14 @@ def render_pdf(cover: dict, sifs: list[dict], charts: dict[int, bytes], progress
                         for d in e["deferrals"]],
                        [0.14, 0.1, 0.1, 0.24, 0.17, 0.25])
         story.append(Paragraph("Overdue periods", h2))
-        story += table(["Plan", "Due on", "First seen overdue (month end)", "Last seen overdue",
-                        "Max days overdue", "Worst state"],
+        story += table(["Plan", "Due on", "Overdue from", "Overdue until",
+                        "Days overdue by then", "Worst state"],
                        [[o["plan"], o["due_on"] + (" (deferred)" if o["deferred"] else ""),
-                         o["first_seen_overdue"], o["last_seen_overdue"],
-                         str(o["max_days_overdue"]), o["worst_state"]]
+                         o["overdue_from"], o["overdue_to"],
+                         str(o["days_overdue"]), o["worst_state"]]
                         for o in e["overdue"]],
                        [0.22, 0.16, 0.16, 0.16, 0.12, 0.18],
-                       empty="No test plan was overdue at any month end of the period.")
+                       empty="No test plan was overdue on any day of the period.")
         story.append(Paragraph("Design changes", h2))
         story += table(["When", "Record", "By", "Reason", "What changed"],
                        [[c["at"], f"{c['record']} ({c['action']})", c["by"] or "-",

@@ -53,7 +53,8 @@ def csv_files(col: Collected) -> dict[str, bytes]:
             "tests": len(e["tests"]), "failures": len(e["failures"]),
             "demands": len(e["demands"]), "bypasses": len(e["bypasses"]),
             "deferrals": len(e["deferrals"]), "overdue_spans": len(e["overdue"]),
-            "changes": len(e["changes"])})
+            "changes": len(e["changes"]), "findings": len(e["findings"]),
+            "open_findings": sum(1 for x in e["findings"] if not x["closed_at"])})
     criteria = [{"sif": e["tag"], "criterion": line.get("key"), "label": line.get("label"),
                  "status": line.get("status"), "reason": line.get("reason"),
                  "value": line.get("value"), "limit": line.get("limit")}
@@ -77,16 +78,22 @@ def csv_files(col: Collected) -> dict[str, bytes]:
                                              "duration_hours", "authorised_hours",
                                              "over_authorised", "component", "reason",
                                              "authorised_by", "compensating_measures",
-                                             "measures_effective"]),
+                                             "measures_effective", "requested_by",
+                                             "authorised_at", "authorisation", "closed_by"]),
         "deferrals.csv": _csv(t["deferrals"], ["sif", "plan", "due_on", "proposed_on", "reason",
                                                "requested_by", "requested_at", "status",
                                                "decided_by", "decided_at", "decision_note",
                                                "projected_pfd_avg"]),
         "overdue.csv": _csv(t["overdue"], ["sif", "plan", "due_on", "deferred",
-                                           "first_seen_overdue", "last_seen_overdue",
-                                           "max_days_overdue", "worst_state"]),
+                                           "overdue_from", "overdue_to", "days_overdue",
+                                           "worst_state"]),
         "changes.csv": _csv(t["changes"], ["sif", "at", "record", "action", "by", "reason",
                                            "what_changed", "history_id"]),
+        "findings.csv": _csv(t["findings"], ["sif", "id", "component", "found_at", "found_by",
+                                             "failure_mode", "description", "owner",
+                                             "corrective_action", "retest_due_on", "status",
+                                             "retest", "closed_at", "closed_by",
+                                             "closure_note", "age_days"]),
     }
 
 
