@@ -99,14 +99,16 @@ def retest_problem(finding: Finding, record: TestRecord) -> str | None:
     return None
 
 
-def retest_candidates(finding: Finding) -> list[TestRecord]:
-    """Signed records that would close ``finding`` as its retest, newest first."""
+def retest_candidates(finding: Finding, *, newest_first: bool = True,
+                      limit: int = 20) -> list[TestRecord]:
+    """Signed records that would close ``finding`` as its retest (at most ``limit``)."""
     records = (TestRecord.objects.filter(sif_id=finding.sif_id,
                                          performed_at__gt=finding.found_at,
                                          results__component_id=finding.component_id,
                                          results__as_found=PASS)
-               .exclude(status=choices.RecordStatus.DRAFT).order_by("-performed_at"))
-    return [r for r in records[:20] if retest_problem(finding, r) is None]
+               .exclude(status=choices.RecordStatus.DRAFT)
+               .order_by("-performed_at" if newest_first else "performed_at"))
+    return [r for r in records[:limit] if retest_problem(finding, r) is None]
 
 
 def age_days(finding: Finding, today: dt.date) -> int:
@@ -137,10 +139,17 @@ def _moment(at: dt.datetime | None) -> dt.datetime:
 
 
 def _open(finding: Finding, user, reason: str, at) -> Finding:
+    """Store a new finding. When a signed passing retest is already on record (a failure
+    entered after later tests were signed), it closes the finding at once."""
     finding.owner = default_owner(finding.sif)
     finding.opened_at = _moment(at)
     finding.full_clean()
     attribute(finding, user, reason, at=at).save()
+    earlier = retest_candidates(finding, newest_first=False, limit=5)
+    if earlier:
+        retest = earlier[0]
+        when = max(finding.opened_at, retest.signed_at or retest.performed_at)
+        _close(finding, user, retest=retest, note="", when=when, at=when)
     return finding
 
 

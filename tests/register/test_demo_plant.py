@@ -418,3 +418,20 @@ def test_demo_sif_pack_holds_every_element(plant, client, django_capture_on_comm
     assert "Spare solenoid on order" in text and "Refused: test on time" in text
     assert "[CR-2031] Closing time" in text and "tightened after pump change" in text
     assert "Inlet and bypass closed" in text
+
+
+def test_read_time_state_equals_the_rule_on_every_demo_plan_400_days_on(plant):
+    """No scan for 400 days: the states the lists and the API derive in SQL from the
+    stored due dates still equal the rule's states from the records, plan by plan."""
+    import datetime as _dt
+
+    from register.models import TestPlan as Plan
+    from register.schedule.due import compute_statuses, with_state
+
+    plans = Plan.objects.all()
+    assert plans.count() > 40
+    for later in (0, 5, 400):
+        day = timezone.localdate() + _dt.timedelta(days=later)
+        sql = dict(with_state(plans, as_of=day).values_list("pk", "state"))
+        rule = {pk: st.state for pk, st in compute_statuses(plans, day).items()}
+        assert sql == rule, later

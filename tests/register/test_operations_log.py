@@ -611,3 +611,23 @@ def test_legacy_bypasses_keep_their_person_as_requester_and_wait_for_authorisati
 
 def open_rows(client):
     return client.get("/operations/").context["bypass_rows"]
+
+
+def test_a_failure_entered_after_its_retest_was_signed_closes_at_once(world):
+    """A demand entered late: the valve that failed to act on it has since passed a signed
+    full proof test, so the finding is opened and closed by that retest together."""
+    w = world
+    sif = f.sif(w.unit, tag="U1-SIF-190", in_service=w.started)
+    lt, xv = _devices(sif)
+    retest = _record(w, choices.TestKind.FULL, _ago(days=2), sif=sif)
+    demand = services.record_demand(user=w.tech, sif=sif, occurred_at=_ago(days=10),
+                                    successful=False, description="Valve stayed open",
+                                    components_exercised=[lt], failed_components=[xv])
+    finding = demand.findings.get()
+    assert (finding.status, finding.retest, finding.closed_by) == ("closed", retest, w.tech)
+    assert finding.closed_at >= retest.signed_at
+    # ...but a retest older than the failure does not.
+    late = services.record_demand(user=w.tech, sif=sif, occurred_at=_ago(days=1),
+                                  successful=False, description="Stayed open again",
+                                  components_exercised=[lt], failed_components=[xv])
+    assert late.findings.get().is_open
