@@ -22,6 +22,7 @@ from register.models import (
     Demand,
     DeviceType,
     SafetyFunction,
+    in_force,
 )
 
 # ---------------------------------------------------------------------------------------
@@ -47,9 +48,8 @@ def _stats_fingerprint() -> tuple:
 
     from register.models import Site
 
-    du = (ComponentResult.objects.filter(failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED,
-                                         record__superseded_by__isnull=True)
-          .exclude(record__status=choices.RecordStatus.DRAFT)
+    du = (ComponentResult.objects.filter(in_force("record__"),
+                                         failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED)
           .aggregate(n=Count("id"), last=Max("id")))
     failed_on_demand = Demand.failed_components.through.objects.aggregate(
         n=Count("id"), last=Max("id"))
@@ -96,8 +96,8 @@ def compute_device_type_stats(site_id: int | None, as_of: dt.date,
         comps = comps.filter(device_type_id__in=type_ids)
     failures: dict[int, int] = defaultdict(int)
     for row in (ComponentResult.objects.filter(
-            component__in=comps, failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED,
-            record__superseded_by__isnull=True).exclude(record__status=choices.RecordStatus.DRAFT)
+            in_force("record__"), component__in=comps,
+            failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED)
             .values("component__device_type_id").annotate(n=Count("id"))):
         failures[row["component__device_type_id"]] += row["n"]
     for row in (Demand.failed_components.through.objects.filter(component__in=comps)

@@ -24,6 +24,7 @@ from register.models import (
     SafetyFunction,
     Subsystem,
     TestPlan,
+    in_force,
 )
 
 log = logging.getLogger(__name__)
@@ -117,9 +118,8 @@ def load(sif_queryset) -> list[SifData]:
                     comp_of[comp_id].events.append(TestRow(demand.occurred_at, "demand", False))
     # Test results: one streamed query, the largest table.
     rows = (
-        ComponentResult.objects.filter(record__sif__in=sif_queryset.values("pk"),
-                                       record__superseded_by__isnull=True)
-        .exclude(record__status=choices.RecordStatus.DRAFT)
+        ComponentResult.objects.filter(in_force("record__"),
+                                       record__sif__in=sif_queryset.values("pk"))
         .exclude(record__kind=choices.TestKind.SIGN_OFF)
         .values_list("component_id", "record__performed_at", "record__kind", "failure_mode",
                      "as_found", "record_id")

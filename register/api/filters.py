@@ -17,6 +17,7 @@ from register.models import (
     Subsystem,
     TestPlan,
     TestRecord,
+    in_force,
 )
 
 
@@ -63,13 +64,17 @@ class TestRecordFilter(df.FilterSet):
     site = df.NumberFilter(field_name="sif__unit__site")
     performed_after = df.IsoDateTimeFilter(field_name="performed_at", lookup_expr="gte")
     performed_before = df.IsoDateTimeFilter(field_name="performed_at", lookup_expr="lt")
-    current = df.BooleanFilter(field_name="superseded_by", lookup_expr="isnull",
-                               label="Not superseded by a correction")
+    current = df.BooleanFilter(method="filter_current",
+                               label="In force: signed and not replaced by a correction in "
+                                     "effect")
     client_key = df.CharFilter()
 
     class Meta:
         model = TestRecord
         fields = ["sif", "plan", "kind", "status", "performed_by"]
+
+    def filter_current(self, queryset, name, value):
+        return queryset.filter(in_force()) if value else queryset.exclude(in_force())
 
 
 class DemandFilter(df.FilterSet):

@@ -33,7 +33,8 @@ def design_result(sif_id: int, kind: str | None = None, pk: int | None = None,
                 "subsystem": d.subsystems, "plan": d.plans}[kind]
         target = next(o for o in pool if o.pk == pk)
         for name, value in (changes or {}).items():
-            setattr(target, name, value)
+            if name != "components":  # the scope moves due dates, not the design figure
+                setattr(target, name, value)
     try:
         return calculations().evaluate_design(d), calculations().target_pfd(d)
     except calculations().EngineError as exc:
@@ -49,7 +50,7 @@ def _plan_effect(plan, changes: dict) -> dict:
     effective = changes.get("effective_from") or today
     now = live_statuses(type(plan).objects.filter(pk=plan.pk))[plan.pk]
     then = status_with_change(plan, changes.get("interval_months", plan.interval_months),
-                              effective, today)
+                              effective, today, components=changes.get("components"))
     return {"effective_from": effective, "due_before": now.due_on, "due_after": then.due_on,
             "state_before": choices.plan_state_badge(now.state),
             "state_after": choices.plan_state_badge(then.state),
@@ -76,6 +77,8 @@ def edit_design(request, kind, pk):
         form = form_class(request.POST, instance=model.objects.get(pk=pk))
         if form.is_valid():
             changes = {f: form.cleaned_data[f] for f in form_class._meta.fields}
+            if "components" in changes:
+                changes["components"] = sorted(c.pk for c in changes["components"])
             after, _ = design_result(sif_id, kind, pk, changes)
             fingerprint = _fingerprint(changes)
             confirmed = request.POST.get("previewed") == fingerprint

@@ -41,14 +41,21 @@ class SubsystemChangeForm(ChangeControlMixin, forms.ModelForm):
 class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = TestPlan
-        fields = ("interval_months", "effective_from")
-        widgets = {"effective_from": forms.DateInput(attrs={"type": "date"})}
+        fields = ("interval_months", "components", "effective_from")
+        widgets = {"effective_from": forms.DateInput(attrs={"type": "date"}),
+                   "components": forms.CheckboxSelectMultiple}
+        labels = {"components": "Devices the plan tests"}
         help_texts = {"effective_from": "Empty: from today. Due dates that have already "
-                                        "fallen stay under the plan then in force."}
+                                        "fallen stay under the plan then in force.",
+                      "components": "None ticked: the whole SIF."}
 
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)
         self.initial["effective_from"] = None  # a new change: from today unless given
+        sif_id = self.instance.sif_id if self.instance and self.instance.pk else None
+        self.fields["components"].queryset = Component.objects.filter(
+            subsystem__sif_id=sif_id).order_by("subsystem__position", "tag")
+        self.fields["components"].required = False
 
 
 FORMS = {"component": (Component, ComponentChangeForm),

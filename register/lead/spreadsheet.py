@@ -36,6 +36,7 @@ from register.models import (
     Subsystem,
     TestPlan,
     TestRecord,
+    in_force,
 )
 from register.permissions import Action, require
 from register.rules import result_problems
@@ -80,8 +81,7 @@ def export_rows(sif_queryset) -> list[dict]:
     for c in Component.objects.filter(subsystem__sif_id__in=ids).select_related(
             "subsystem", "device_type").order_by("subsystem__position", "subsystem_id", "tag"):
         comps[c.subsystem.sif_id].append(c)
-    current = (TestRecord.objects.filter(sif_id__in=ids, superseded_by__isnull=True)
-               .exclude(status=choices.RecordStatus.DRAFT))
+    current = TestRecord.objects.filter(in_force(), sif_id__in=ids)
     results = defaultdict(list)
     for r in ComponentResult.objects.filter(record__in=current).select_related(
             "component").order_by("component__tag"):
@@ -583,8 +583,7 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
     existing_tests = set()
     if tests:
         for sif_id, at, kind in TestRecord.objects.filter(
-                sif__unit__site=site, superseded_by__isnull=True).exclude(
-                status=choices.RecordStatus.DRAFT).values_list("sif_id", "performed_at",
+                in_force(), sif__unit__site=site).values_list("sif_id", "performed_at",
                                                                "kind"):
             existing_tests.add((sif_id, at, kind))
     for (unit_code, tag, at, kind), group in tests.items():

@@ -9,7 +9,7 @@ from urllib.parse import urlencode
 
 from django.contrib.auth.decorators import login_required
 from django.core.paginator import Paginator
-from django.db.models import Exists, OuterRef
+from django.db.models import BooleanField, Exists, ExpressionWrapper, OuterRef
 from django.http import Http404, HttpResponse
 from django.shortcuts import get_object_or_404, render
 from django.urls import reverse
@@ -31,6 +31,7 @@ from register.models import (
     Subsystem,
     TestPlan,
     TestRecord,
+    in_force,
     not_decommissioned,
 )
 from register.operations.page import sif_operations
@@ -302,8 +303,9 @@ def sif_detail(request, pk):
     band = calculations().sil_band(sif.target_sil) if sif.target_sil else None
 
     records = (TestRecord.objects.filter(sif=sif).exclude(status=choices.RecordStatus.DRAFT)
-               .annotate(is_superseded=Exists(TestRecord.objects.filter(
-                   supersedes_id=OuterRef("pk"))))
+               .annotate(counts=ExpressionWrapper(in_force(), output_field=BooleanField()),
+                         is_superseded=Exists(TestRecord.objects.filter(
+                             supersedes_id=OuterRef("pk"))))
                .select_related("plan").order_by("-performed_at"))
     may_decide = can(request.user, Action.DECIDE_DEFERRAL, site_id)
     deferrals = []

@@ -53,6 +53,7 @@ from register.models.records import (
     PartOfRecord,
     SignedRecordError,
     TestRecord,
+    in_force,
 )
 from register.models.site import (
     Membership,
@@ -94,6 +95,7 @@ __all__ = [
     "TestStep",
     "_AppendOnlyQuerySet",
     "_plausible_rate",
+    "in_force",
     "non_negative",
     "not_decommissioned",
     "plausible_rate",

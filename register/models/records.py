@@ -10,7 +10,7 @@ import datetime as dt
 from django.conf import settings
 from django.core.exceptions import ValidationError
 from django.db import models
-from django.db.models import Q
+from django.db.models import Exists, OuterRef, Q
 from django.urls import reverse
 from django.utils.translation import gettext_lazy as _
 from simple_history.models import HistoricalRecords
@@ -30,6 +30,25 @@ from register.models.design import (
 # ---------------------------------------------------------------------------------------
 # What happened in operation
 # ---------------------------------------------------------------------------------------
+
+
+def in_force(prefix: str = "") -> Q:
+    """The one rule for which test records count (due dates, achieved PFDavg, on-time
+    rates, device-type statistics, exports): signed, and not replaced by a correction that
+    has taken effect. A correction takes effect once it is signed, and once countersigned
+    where the original was; until then the original stands everywhere and the correction
+    counts for nothing. ``prefix`` is the lookup path to the record ("record__" from a
+    result)."""
+    p = prefix
+    signed = ~Q(**{f"{p}status": choices.RecordStatus.DRAFT})
+    replacing = TestRecord.objects.filter(supersedes_id=OuterRef(f"{p}pk")).exclude(
+        status=choices.RecordStatus.DRAFT).filter(
+        Q(status=choices.RecordStatus.VERIFIED)
+        | ~Q(supersedes__status=choices.RecordStatus.VERIFIED))
+    own_effect = (Q(**{f"{p}supersedes__isnull": True})
+                  | Q(**{f"{p}status": choices.RecordStatus.VERIFIED})
+                  | ~Q(**{f"{p}supersedes__status": choices.RecordStatus.VERIFIED}))
+    return signed & ~Exists(replacing) & own_effect
 
 
 class SignedRecordError(ValidationError):

@@ -4,8 +4,9 @@ computed from the records for any date or date range.
 Rules, in one place:
 
 1. A plan's components are the ones it names, or every component of the SIF.
-2. Each component's credit events are its *counting* events: a signed, current (not
-   superseded) test record of a kind that counts for the plan and that has a result for
+2. Each component's credit events are its *counting* events: a test record in force
+   (``register.models.in_force``: signed, and not replaced by a correction that has taken
+   effect) of a kind that counts for the plan and that has a result for
    the component; or, where the plan allows it, a successful real demand that exercised
    the component. Full-plan credit: full proof tests and validation tests. Partial-plan
    credit: partial tests and full proof tests (a full test reveals what a partial one
@@ -54,6 +55,7 @@ from register.models import (
     Demand,
     Site,
     TestPlan,
+    in_force,
 )
 
 PlanState = choices.PlanState
@@ -150,17 +152,19 @@ def state_for(due_on: dt.date | None, as_of: dt.date, interval_months: int,
 
 @dataclass(frozen=True)
 class Version:
-    """One version of a plan: what it asks, and from when (None: from the start)."""
+    """One version of a plan: what it asks, and from when (None: from the start).
+    ``components``: the components it names (empty: every component of the SIF)."""
 
     effective_from: dt.date | None
     interval_months: int
+    components: frozenset[int] = frozenset()
 
 
 @dataclass
 class _Facts:
     plan: TestPlan
     kinds: tuple
-    comps: list[int]
+    sif_comps: list[int]
     in_service: dict[int, dt.date]
     # component -> sorted credit dates (site calendar)
     credits: dict[int, list[dt.date]] = field(default_factory=dict)
@@ -176,11 +180,15 @@ class _Facts:
         applicable = self.versions_on(day)
         return applicable[-1].interval_months if applicable else self.plan.interval_months
 
-    def last_credit(self, day: dt.date) -> dt.date | None:
-        """Rule 2-3: the earliest, over the plan's components, of each one's last credit
-        on or before ``day`` (its in-service date when it has none)."""
+    def comps(self, version: Version) -> list[int]:
+        """Rule 1 for one version: the components it names, or every component."""
+        return sorted(version.components) if version.components else self.sif_comps
+
+    def last_credit(self, day: dt.date, comps: list[int]) -> dt.date | None:
+        """Rule 2-3: the earliest, over ``comps``, of each one's last credit on or before
+        ``day`` (its in-service date when it has none)."""
         lasts = []
-        for comp in self.comps:
+        for comp in comps:
             dates = self.credits.get(comp, [])
             i = bisect.bisect_right(dates, day)
             if i:
@@ -192,26 +200,32 @@ class _Facts:
         return min(lasts) if lasts else None
 
     def due(self, day: dt.date) -> tuple[dt.date | None, bool, dt.date | None]:
-        """(due date, deferred, last credit) as known on ``day``."""
-        last = self.last_credit(day)
-        if last is None:
-            return None, False, None
-        applicable = self.versions_on(day)
-        if not applicable:
-            applicable = [Version(None, self.plan.interval_months)]
-        k = 0
+        """(due date, deferred, last credit) as known on ``day``.
+
+        Versions apply in turn: each one recomputes the due date from the last credit of
+        the components it names, unless the due date under the versions before it had
+        already fallen when it took effect and no credit under it has come since (then
+        the fallen due date stays)."""
+        applicable = self.versions_on(day) or [Version(None, self.plan.interval_months)]
+        due = last = None
         for i, v in enumerate(applicable):
-            if v.effective_from is None or v.effective_from <= last:
-                k = i
-        due = add_months(last, applicable[k].interval_months)
-        for v in applicable[k + 1:]:
-            if due < v.effective_from:
-                break  # it had fallen due before this version took effect: it stays
-            due = add_months(last, v.interval_months)
+            last_v = self.last_credit(day, self.comps(v))
+            if last_v is None:
+                continue
+            if i and due is not None and due < v.effective_from and last_v < v.effective_from:
+                continue  # it had fallen due before this version took effect: it stays
+            last, due = last_v, add_months(last_v, v.interval_months)
+        if due is None:
+            return None, False, None
         for decided_on, proposed_on in self.deferrals.get(due, []):
             if decided_on <= day:
                 return proposed_on, True, last
         return due, False, last
+
+    def is_credit_day(self, day: dt.date) -> bool:
+        """A credit event on ``day`` for a component the version in force then names."""
+        version = (self.versions_on(day) or [Version(None, self.plan.interval_months)])[-1]
+        return any(day in self.credits.get(c, ()) for c in self.comps(version))
 
     def change_points(self, start: dt.date, end: dt.date) -> list[dt.date]:
         """Days in (start, end] on which the due date may change."""
@@ -225,26 +239,53 @@ class _Facts:
         return sorted(points)
 
 
+#: History rows of a plan recorded this soon after its creation set it up (``_versions``).
+SETUP_SECONDS = 60
+
+
+def _plan_scope_rows():
+    """The rows of simple-history's table of each plan version's components."""
+    field = TestPlan.history.model._meta.get_field("historicaltestplan_components")
+    return field.related_model.objects
+
+
 def _versions(plan_ids) -> dict[int, list[Version]]:
-    """Each plan's versions from its history, in the order they were recorded. A change
-    recorded without ``effective_from`` (before plans had one) took effect the day it was
-    recorded; the first version applies from the start."""
+    """Each plan's versions (interval and scope) from its history, in the order they were
+    recorded. A change recorded without ``effective_from`` (before plans had one) took
+    effect the day it was recorded; the first version applies from the start. Rows
+    recorded within ``SETUP_SECONDS`` of a plan's creation are part of setting it up (a
+    plan is saved, then its components named); a version taking effect on the same day as
+    the one before it replaces it (a change revised the same day)."""
     out: dict[int, list[Version]] = defaultdict(list)
+    created: dict[int, dt.datetime] = {}
+    scope: dict[int, set[int]] = defaultdict(set)
+    for history_id, comp_id in _plan_scope_rows().filter(
+            history__id__in=plan_ids).values_list("history_id", "component_id"):
+        scope[history_id].add(comp_id)
     rows = (TestPlan.history.filter(id__in=plan_ids)
             .order_by("id", "history_date", "history_id")
-            .values_list("id", "history_date", "effective_from", "interval_months"))
-    for plan_id, recorded, effective, interval in rows:
+            .values_list("id", "history_id", "history_date", "effective_from",
+                         "interval_months"))
+    for plan_id, history_id, recorded, effective, interval in rows:
         versions = out[plan_id]
+        comps = frozenset(scope.get(history_id, ()))
         if not versions:
-            versions.append(Version(None, interval))
+            versions.append(Version(None, interval, comps))
+            created[plan_id] = recorded
+            continue
+        prev = versions[-1]
+        if (prev.interval_months, prev.components) == (interval, comps):
             continue
         when = effective or recorded.date()
-        if versions[-1].interval_months == interval:
-            continue
         # a version never takes effect before one recorded earlier
-        if versions[-1].effective_from and when < versions[-1].effective_from:
-            when = versions[-1].effective_from
-        versions.append(Version(when, interval))
+        if prev.effective_from and when < prev.effective_from:
+            when = prev.effective_from
+        setting_up = len(versions) == 1 and (
+            recorded - created[plan_id]).total_seconds() <= SETUP_SECONDS
+        if setting_up or when == prev.effective_from:
+            versions[-1] = Version(prev.effective_from, interval, comps)
+        else:
+            versions.append(Version(when, interval, comps))
     return out
 
 
@@ -279,9 +320,8 @@ def _load(plans: list[TestPlan], until: dt.date, since: dt.date | None = None
         zone_sifs = {p.sif_id for p in zone_plans}
         cutoff = end_of_day(until, zone)
         lower = end_of_day(since, zone) if since else cutoff
-        base = (ComponentResult.objects.filter(
-            component__subsystem__sif_id__in=zone_sifs, record__superseded_by__isnull=True)
-            .exclude(record__status=choices.RecordStatus.DRAFT))
+        base = ComponentResult.objects.filter(
+            in_force("record__"), component__subsystem__sif_id__in=zone_sifs)
         for comp, kind, last in (base.filter(record__performed_at__lte=lower)
                                  .values("component_id", "record__kind")
                                  .annotate(last=Max("record__performed_at"))
@@ -315,12 +355,18 @@ def _load(plans: list[TestPlan], until: dt.date, since: dt.date | None = None
         kinds = PARTIAL_CREDIT if plan.kind == choices.TestKind.PARTIAL else FULL_CREDIT
         if plan.demand_counts_as_test:
             kinds = (*kinds, choices.TestKind.DEMAND, REAL_DEMAND)
-        comps = named.get(plan.pk) or comps_of_sif.get(plan.sif_id, [])
-        f = _Facts(plan=plan, kinds=kinds, comps=comps, in_service=in_service,
+        sif_comps = comps_of_sif.get(plan.sif_id, [])
+        live_scope = frozenset(named.get(plan.pk, ()))
+        plan_versions = versions.get(plan.pk) or [Version(None, plan.interval_months,
+                                                          live_scope)]
+        if plan_versions[-1].components != live_scope:
+            # rows linked without history (bulk-loaded data): the live scope is today's
+            plan_versions[-1] = Version(plan_versions[-1].effective_from,
+                                        plan_versions[-1].interval_months, live_scope)
+        f = _Facts(plan=plan, kinds=kinds, sif_comps=sif_comps, in_service=in_service,
                    deferrals={d: sorted(v) for d, v in approved.get(plan.pk, {}).items()},
-                   versions=versions.get(plan.pk) or [Version(None, plan.interval_months)],
-                   thresholds=Thresholds.of(plan.sif.unit.site))
-        for comp in comps:
+                   versions=plan_versions, thresholds=Thresholds.of(plan.sif.unit.site))
+        for comp in sif_comps:
             dates = set()
             for kind in kinds:
                 dates |= events.get(comp, {}).get(kind, set())
@@ -352,12 +398,14 @@ def compute_statuses(plans, as_of: dt.date) -> dict[int, PlanStatus]:
 
 
 def status_with_change(plan: TestPlan, interval_months: int, effective_from: dt.date,
-                       as_of: dt.date) -> PlanStatus:
-    """The plan's status on ``as_of`` if a new version with ``interval_months`` took effect
-    on ``effective_from`` (nothing is saved): the change preview."""
+                       as_of: dt.date, components=None) -> PlanStatus:
+    """The plan's status on ``as_of`` if a new version with ``interval_months`` (and the
+    components it names, ``None``: unchanged) took effect on ``effective_from`` (nothing
+    is saved): the change preview."""
     plans = _plans(TestPlan.objects.filter(pk=plan.pk))
     f = _load(plans, as_of)[plan.pk]
-    f.versions = [*f.versions, Version(effective_from, interval_months)]
+    scope = f.versions[-1].components if components is None else frozenset(components)
+    f.versions = [*f.versions, Version(effective_from, interval_months, scope)]
     return _status(f, max(as_of, effective_from))
 
 
@@ -449,12 +497,11 @@ def plan_timelines(plans, start: dt.date, end: dt.date) -> dict[int, PlanTimelin
     out = {}
     for pk, f in _load(plans, end, since=start).items():
         points = [start, *f.change_points(start, end)]
-        credit_days = {d for dates in f.credits.values() for d in dates}
         segments = []
         for i, p in enumerate(points):
             seg_end = points[i + 1] - dt.timedelta(days=1) if i + 1 < len(points) else end
             due, deferred, _ = f.due(p)
-            next_is_credit = i + 1 < len(points) and points[i + 1] in credit_days
+            next_is_credit = i + 1 < len(points) and f.is_credit_day(points[i + 1])
             segments.append(Segment(p, seg_end, due, f.interval_on(p), next_is_credit,
                                     deferred))
         out[pk] = PlanTimeline(pk, segments, f.thresholds)

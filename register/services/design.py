@@ -7,13 +7,14 @@ from django.db import transaction
 
 from register.changes import attribute
 from register.days import today as site_today
-from register.models import TestPlan
+from register.models import Component, TestPlan
 from register.permissions import Action, require, site_id_of
 from register.schedule import followup
 from register.services.base import _sif_id_of
 
 #: Fields of a plan whose change is a new version of the plan (``TestPlan.effective_from``).
-PLAN_VERSION_FIELDS = ("interval_months", "coverage", "kind", "demand_counts_as_test")
+PLAN_VERSION_FIELDS = ("interval_months", "coverage", "kind", "demand_counts_as_test",
+                       "components")
 
 
 def _date_plan_change(plan: TestPlan, changes: dict) -> None:
@@ -30,6 +31,18 @@ def _date_plan_change(plan: TestPlan, changes: dict) -> None:
             "have already fallen stay under the plan then in force.")})
 
 
+def _plan_scope(plan: TestPlan, components) -> set[int]:
+    """The component ids a plan change names, all of the plan's own SIF (empty: every
+    component of the SIF)."""
+    ids = {getattr(c, "pk", c) for c in components or ()}
+    own = set(Component.objects.filter(subsystem__sif_id=plan.sif_id, pk__in=ids)
+              .values_list("pk", flat=True))
+    if ids - own:
+        raise ValidationError({"components": "A plan can only name components of its own "
+                                             "SIF."})
+    return ids
+
+
 @transaction.atomic
 def update_design(instance, user, *, reason: str, reference: str, changes: dict):
     """Change design data of a register record under change control.
@@ -42,12 +55,22 @@ def update_design(instance, user, *, reason: str, reference: str, changes: dict)
     if not reason.strip() or not reference.strip():
         raise ValidationError({"reason": "A design change needs a reason and a change "
                                          "request reference."})
+    scope = None
     for name, value in changes.items():
+        if name == "components" and isinstance(instance, TestPlan):
+            scope = _plan_scope(instance, value)
+            continue
         setattr(instance, name, value)
     if isinstance(instance, TestPlan):
+        if scope is not None and scope == set(instance.components.values_list("pk", flat=True)):
+            changes = {k: v for k, v in changes.items() if k != "components"}
+            scope = None
         _date_plan_change(instance, changes)
     instance.full_clean()
     attribute(instance, user, f"[{reference}] {reason}").save()
+    if scope is not None:
+        # a second history row, same reason and in-force date, holding the new scope
+        instance.components.set(sorted(scope))
     sif_id = _sif_id_of(instance)
     if sif_id:
         followup.after_test_change(sif_id)
