@@ -201,9 +201,25 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
                   ) -> eng_hist.SifHistory:
     """The SIF's recorded life as the history model sees it.
 
-    With ``assume_closed_after`` (for projections), a bypass still open is assumed to end
-    at its authorised end, or at that moment if it is already past it.
+    A bypass of the whole SIF makes it unavailable; a bypass of one device makes that
+    channel unavailable, so its group runs on the others (a 1oo1 group: the SIF is
+    unavailable). A bypass whose compensating measures are recorded as effective adds
+    nothing. With ``assume_closed_after`` (for projections), a bypass still open is assumed
+    to end at its authorised end, or at that moment if it is already past it.
     """
+
+    def periods(component_id):
+        out = []
+        for b in d.bypasses:
+            if b.measures_effective or b.component_id != component_id:
+                continue
+            end = b.ended_at
+            if end is None and assume_closed_after is not None:
+                end = max(b.started_at + dt.timedelta(hours=b.authorised_hours),
+                          assume_closed_after)
+            out.append((b.started_at, end))
+        return tuple(out)
+
     groups = []
     for sub in d.subsystems:
         channels = []
@@ -214,6 +230,7 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
                 mttr_hours=sub.mttr_hours,
                 mrt_hours=sub.mrt_hours, proof_test_coverage=c.proof_test_coverage,
                 partial_test_coverage=c.partial_test_coverage, in_service=_aware(c.in_service_on),
+                bypasses=periods(c.pk),
                 tests=tuple(eng_hist.TestEvent(
                     at=e.at, kind=e.kind, failed=e.failed,
                     # A credited demand exercises the device like a full test; otherwise
@@ -224,16 +241,7 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
             ))
         groups.append(eng_hist.Group(name=sub.name, voting=sub.voting, beta=sub.beta,
                                      beta_d=sub.beta_d, channels=tuple(channels)))
-    bypasses = []
-    for b in d.bypasses:
-        if b.measures_effective or b.component_id is not None:
-            continue
-        end = b.ended_at
-        if end is None and assume_closed_after is not None:
-            end = max(b.started_at + dt.timedelta(hours=b.authorised_hours), assume_closed_after)
-        bypasses.append((b.started_at, end))
-    bypasses = tuple(bypasses)
-    return eng_hist.SifHistory(groups=tuple(groups), bypasses=bypasses, name=d.sif.tag)
+    return eng_hist.SifHistory(groups=tuple(groups), bypasses=periods(None), name=d.sif.tag)
 
 
 def planned_groups(design: eng_design.SifDesign) -> list[eng_hist.PlannedGroup]:

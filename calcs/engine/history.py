@@ -203,6 +203,9 @@ class Channel:
     partial_test_coverage: float = 0.0
     overhaul_at: datetime | None = None
     tests: tuple[TestEvent, ...] = ()
+    #: (start, end) periods in which this device alone was bypassed (end None: still
+    #: bypassed): the channel counts as failed then, so its group loses one channel
+    bypasses: tuple[tuple[datetime, datetime | None], ...] = ()
 
     def __post_init__(self) -> None:
         check_rate(self.lambda_du, "lambda_du")
@@ -226,6 +229,7 @@ class Channel:
             if not isinstance(t, TestEvent):
                 raise InputError(f"tests[{i}]", f"must be a TestEvent, got {type(t).__name__}")
         object.__setattr__(self, "tests", tests)
+        object.__setattr__(self, "bypasses", _bypass_pairs(self.bypasses))
 
     @property
     def mrt(self) -> float:
@@ -283,15 +287,19 @@ class SifHistory:
             if g.name in names:
                 raise InputError(f"groups[{i}].name", f"'{g.name}' is used twice")
             names.add(g.name)
-        byp = tuple(tuple(b) for b in self.bypasses)
-        for i, b in enumerate(byp):
-            if len(b) != 2:
-                raise InputError(f"bypasses[{i}]", "must be a (start, end) pair")
-            _as_utc_naive(b[0], f"bypasses[{i}].start")
-            if b[1] is not None:
-                _as_utc_naive(b[1], f"bypasses[{i}].end")
         object.__setattr__(self, "groups", groups)
-        object.__setattr__(self, "bypasses", byp)
+        object.__setattr__(self, "bypasses", _bypass_pairs(self.bypasses))
+
+
+def _bypass_pairs(bypasses) -> tuple:
+    byp = tuple(tuple(b) for b in bypasses)
+    for i, b in enumerate(byp):
+        if len(b) != 2:
+            raise InputError(f"bypasses[{i}]", "must be a (start, end) pair")
+        _as_utc_naive(b[0], f"bypasses[{i}].start")
+        if b[1] is not None:
+            _as_utc_naive(b[1], f"bypasses[{i}].end")
+    return byp
 
 
 # --------------------------------------------------------------------------
@@ -460,6 +468,9 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
                         kept.append((ev.restored_h, cov))
                 else:
                     kept.append((th, cov))
+            for bs_h, be_h in _bypass_periods(ch.bypasses, end_h, flags, f"{label}: "):
+                out_s.append(bs_h)
+                out_e.append(be_h)
             if extra and gi in extra:
                 for th, cov in extra[gi]:
                     cov = float(ch.proof_test_coverage if cov is None else cov)
@@ -511,26 +522,10 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
         flags.append(f"{after} test record(s) dated after the evaluation date "
                      f"({_fmt(cutoff_h)}) are not used")
 
-    # bypasses
-    bs, be = [], []
-    for i, (s, e) in enumerate(sif.bypasses):
-        sh = _hours(s, f"bypasses[{i}].start")
-        if e is None:
-            if end_h is None:
-                flags.append(f"bypass from {_fmt(sh)} has no end; ignored")
-                continue
-            flags.append(f"bypass from {_fmt(sh)} has no end; counted as still active")
-            eh = max(end_h, sh)
-        else:
-            eh = _hours(e, f"bypasses[{i}].end")
-        if eh < sh:
-            flags.append(f"bypass from {_fmt(sh)} ends before it starts ({_fmt(eh)}); ignored")
-            continue
-        if eh == sh:
-            continue
-        bs.append(sh)
-        be.append(eh)
-    ms, me, overlaps = _merge(np.array(bs, dtype=float), np.array(be, dtype=float))
+    # bypasses of the whole SIF
+    pairs = _bypass_periods(sif.bypasses, end_h, flags)
+    ms, me, overlaps = _merge(np.array([p[0] for p in pairs], dtype=float),
+                              np.array([p[1] for p in pairs], dtype=float))
     if overlaps:
         flags.append(f"{overlaps} overlapping bypass record(s) merged; "
                      "the overlapping time is counted once")
@@ -538,6 +533,30 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
     events.extend(me.tolist())
     return _Compiled(cgroups, ms, me, np.unique(np.array(events, dtype=float)), start_h,
                      list(dict.fromkeys(flags)))
+
+
+def _bypass_periods(bypasses, end_h: float | None, flags: list[str], label: str = ""
+                    ) -> list[tuple[float, float]]:
+    """Bypass periods in hours: one open at the end runs to ``end_h`` (ignored without
+    it); one ending before it starts is ignored; each with a flag."""
+    out = []
+    for i, (s, e) in enumerate(bypasses):
+        sh = _hours(s, f"bypasses[{i}].start")
+        if e is None:
+            if end_h is None:
+                flags.append(f"{label}bypass from {_fmt(sh)} has no end; ignored")
+                continue
+            flags.append(f"{label}bypass from {_fmt(sh)} has no end; counted as still active")
+            eh = max(end_h, sh)
+        else:
+            eh = _hours(e, f"bypasses[{i}].end")
+        if eh < sh:
+            flags.append(f"{label}bypass from {_fmt(sh)} ends before it starts "
+                         f"({_fmt(eh)}); ignored")
+            continue
+        if eh > sh:
+            out.append((sh, eh))
+    return out
 
 
 @dataclass
