@@ -42,6 +42,7 @@ from register.schedule.due import (
     on_time_rate,
     with_state,
 )
+from register.schedule.services import projected_effect
 
 PlanState = choices.PlanState
 PAGE_SIZE = 50
@@ -313,12 +314,7 @@ def sif_detail(request, pk):
             "plan", "requested_by", "decided_by"):
         item = {"obj": df_}
         if df_.status == choices.DeferralStatus.PENDING and may_decide:
-            try:
-                cmp, tgt = calculations().deferral_projection(df_.plan, df_.proposed_on, now)
-                item.update(on_due=cmp.on_due_date.pfd_avg, deferred=cmp.deferred.pfd_avg,
-                            target=tgt, meets=(tgt is None or cmp.deferred.pfd_avg <= tgt))
-            except calculations().EngineError as exc:
-                item["projection_error"] = str(exc)
+            item["projection"] = projected_effect(df_.plan, df_.proposed_on, as_of=now)
         deferrals.append(item)
     plans = []
     from register.schedule.due import compute_statuses
