@@ -53,3 +53,30 @@ def is_future(value: dt.date | dt.datetime | None, site=None) -> bool:
     if isinstance(value, dt.datetime):
         return value > timezone.now() + CLOCK_SKEW
     return value > today(site)
+
+
+def check_plausible(value: dt.date | dt.datetime | None, site=None, *,
+                    earliest: dt.date | None = None, field: str | None = None) -> None:
+    """The one rule for a plausible date: not before ``earliest`` (default: the earliest
+    plausible date, ``calcs.engine.units.EARLIEST_PLAUSIBLE_DATE``), not more than
+    ``HORIZON_YEARS`` after today on the site's calendar. Raises ``ValidationError``
+    (keyed by ``field`` when given)."""
+    from django.core.exceptions import ValidationError
+
+    from register.calculations import calculations
+
+    if value is None:
+        return
+    day = value
+    if isinstance(value, dt.datetime):
+        try:
+            day = local_date(value, site) if value.tzinfo else value.date()
+        except OverflowError:  # year 1 or 9999 moved across the date line
+            day = value.date()
+    try:
+        calculations().check_date_window(day, field or "date", today=today(site),
+                                         earliest=earliest)
+    except calculations().InputError as exc:
+        if field:
+            raise ValidationError({field: exc.message}) from None
+        raise ValidationError(exc.message, code="implausible_date") from None

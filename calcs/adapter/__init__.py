@@ -51,6 +51,8 @@ from calcs.engine.units import (
     HOURS_PER_MONTH,
     HOURS_PER_YEAR,
     MAX_PLAUSIBLE_RATE_PER_HOUR,
+    check_date_window,
+    check_number,
     check_rate,
 )
 from calcs.engine.voting import parse_voting
@@ -72,6 +74,8 @@ __all__ = [
     "TypeStats",
     "assess",
     "assumed_demand_rate",
+    "check_date_window",
+    "check_number",
     "check_rate",
     "compute_device_type_stats",
     "deferral_projection",

@@ -5,6 +5,10 @@ the rules of the register (signing, bypass overlap, deferral dates...) live in t
 
 from __future__ import annotations
 
+import difflib
+from collections.abc import Mapping
+
+from django.db import models as db_models
 from rest_framework import serializers
 
 from register import choices
@@ -31,6 +35,39 @@ from register.models import (
     TestRecord,
     TestStep,
 )
+from register.models.base import plausible, plausible_date
+
+#: Longest free text (reasons, remarks, descriptions) a request may carry, in characters.
+MAX_TEXT = 20_000
+
+
+def unknown_key_message(key: str, known) -> str:
+    """"Unknown field", with the nearest known name when one is close."""
+    near = difflib.get_close_matches(str(key), list(known), n=1)
+    hint = f" Did you mean “{near[0]}”?" if near else ""
+    return f"Unknown field.{hint}"
+
+
+class RefuseUnknown:
+    """A request naming a field the serializer does not have is refused (400, keyed by the
+    field, with the nearest known name) instead of being silently ignored."""
+
+    def to_internal_value(self, data):
+        if isinstance(data, Mapping):
+            unknown = [k for k in data if k not in self.fields]
+            if unknown:
+                raise serializers.ValidationError(
+                    {str(k): [unknown_key_message(k, self.fields)] for k in unknown})
+        return super().to_internal_value(data)
+
+
+class Strict(RefuseUnknown, serializers.Serializer):
+    """A plain request serializer that refuses unknown fields."""
+
+
+def text(**kwargs) -> serializers.CharField:
+    """A free-text request field, at most MAX_TEXT characters."""
+    return serializers.CharField(max_length=kwargs.pop("max_length", MAX_TEXT), **kwargs)
 
 
 class VisiblePK(serializers.PrimaryKeyRelatedField):
@@ -44,8 +81,15 @@ class VisiblePK(serializers.PrimaryKeyRelatedField):
         return qs
 
 
-class LedgerModelSerializer(serializers.ModelSerializer):
+class LedgerModelSerializer(RefuseUnknown, serializers.ModelSerializer):
     serializer_related_field = VisiblePK
+
+    def build_standard_field(self, field_name, model_field):
+        cls, kwargs = super().build_standard_field(field_name, model_field)
+        if isinstance(model_field, db_models.TextField) and "max_length" not in kwargs \
+                and not kwargs.get("read_only"):
+            kwargs["max_length"] = MAX_TEXT
+        return cls, kwargs
 
 
 # --- Sites, units, library -------------------------------------------------------------
@@ -123,6 +167,14 @@ class DesignSerializer(LedgerModelSerializer):
         if self.instance is not None and self.parent_field in fields:
             fields[self.parent_field].read_only = True
         return fields
+
+    def validate(self, attrs):
+        # A partial update skips required fields; change control never is.
+        missing = {name: ["This field is required."]
+                   for name in ("change_reason", "change_reference") if name not in attrs}
+        if missing:
+            raise serializers.ValidationError(missing)
+        return super().validate(attrs)
 
 
 class SifSerializer(DesignSerializer):
@@ -226,27 +278,27 @@ class TestRecordSerializer(serializers.ModelSerializer):
         return later.pk if later else None
 
 
-class MeasurementInputSerializer(serializers.Serializer):
+class MeasurementInputSerializer(Strict):
     quantity = serializers.CharField(max_length=100)
-    value = serializers.FloatField()
+    value = serializers.FloatField(validators=plausible("process_value"))
     phase = serializers.ChoiceField(choices=["found", "left"], default="found")
     unit = serializers.CharField(max_length=20, required=False, allow_blank=True, default="")
     step = VisiblePK(queryset=TestStep.objects.all(), required=False, allow_null=True,
                      default=None)
 
 
-class ResultInputSerializer(serializers.Serializer):
+class ResultInputSerializer(Strict):
     component = VisiblePK(queryset=Component.objects.all())
     as_found = serializers.ChoiceField(choices=choices.Verdict.choices)
     as_left = serializers.ChoiceField(choices=choices.Verdict.choices)
-    work_done = serializers.CharField(required=False, allow_blank=True, default="")
+    work_done = text(required=False, allow_blank=True, default="")
     failure_mode = serializers.ChoiceField(choices=choices.FailureMode.choices, required=False,
                                            allow_blank=True, default="")
-    failure_description = serializers.CharField(required=False, allow_blank=True, default="")
+    failure_description = text(required=False, allow_blank=True, default="")
     measurements = MeasurementInputSerializer(many=True, required=False, default=list)
 
 
-class TestRecordWriteSerializer(serializers.Serializer):
+class TestRecordWriteSerializer(Strict):
     """A draft test record: header and component results (replaced as a whole on update)."""
 
     __test__ = False
@@ -254,8 +306,8 @@ class TestRecordWriteSerializer(serializers.Serializer):
     plan = VisiblePK(queryset=TestPlan.objects.all(), required=False, allow_null=True,
                      default=None)
     kind = serializers.ChoiceField(choices=choices.TestKind.choices)
-    performed_at = serializers.DateTimeField()
-    remarks = serializers.CharField(required=False, allow_blank=True, default="")
+    performed_at = serializers.DateTimeField(validators=plausible_date)
+    remarks = text(required=False, allow_blank=True, default="")
     client_key = serializers.CharField(max_length=100, required=False, allow_null=True,
                                        default=None)
     results = ResultInputSerializer(many=True)
@@ -263,26 +315,26 @@ class TestRecordWriteSerializer(serializers.Serializer):
                                                 min_value=1, max_value=2**31 - 1)
 
 
-class PasswordSerializer(serializers.Serializer):
+class PasswordSerializer(Strict):
     password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256)
 
 
-class CorrectionSerializer(serializers.Serializer):
+class CorrectionSerializer(Strict):
     reason = serializers.CharField(max_length=5000)
 
 
 # --- Bulk results from a maintenance system ----------------------------------------------
 
 
-class BulkResultSerializer(serializers.Serializer):
+class BulkResultSerializer(Strict):
     component = serializers.IntegerField(required=False, min_value=1, max_value=2**62)
     component_tag = serializers.CharField(required=False, max_length=40)
     as_found = serializers.ChoiceField(choices=choices.Verdict.choices)
     as_left = serializers.ChoiceField(choices=choices.Verdict.choices)
-    work_done = serializers.CharField(required=False, allow_blank=True, default="")
+    work_done = text(required=False, allow_blank=True, default="")
     failure_mode = serializers.ChoiceField(choices=choices.FailureMode.choices, required=False,
                                            allow_blank=True, default="")
-    failure_description = serializers.CharField(required=False, allow_blank=True, default="")
+    failure_description = text(required=False, allow_blank=True, default="")
 
     def validate(self, attrs):
         if not attrs.get("component") and not attrs.get("component_tag"):
@@ -290,7 +342,7 @@ class BulkResultSerializer(serializers.Serializer):
         return attrs
 
 
-class BulkItemSerializer(serializers.Serializer):
+class BulkItemSerializer(Strict):
     client_key = serializers.CharField(max_length=100)
     sif = serializers.IntegerField(required=False, min_value=1, max_value=2**62)
     sif_tag = serializers.CharField(required=False, max_length=40)
@@ -299,8 +351,8 @@ class BulkItemSerializer(serializers.Serializer):
     plan = serializers.IntegerField(required=False, allow_null=True, min_value=1,
                                     max_value=2**62)
     kind = serializers.ChoiceField(choices=choices.TestKind.choices)
-    performed_at = serializers.DateTimeField()
-    remarks = serializers.CharField(required=False, allow_blank=True, default="")
+    performed_at = serializers.DateTimeField(validators=plausible_date)
+    remarks = text(required=False, allow_blank=True, default="")
     results = BulkResultSerializer(many=True, allow_empty=False)
 
     def validate(self, attrs):
@@ -352,8 +404,9 @@ class BypassSerializer(LedgerModelSerializer):
                             "closed_by", "state"]
 
 
-class CloseBypassSerializer(serializers.Serializer):
-    ended_at = serializers.DateTimeField(required=False, allow_null=True, default=None)
+class CloseBypassSerializer(Strict):
+    ended_at = serializers.DateTimeField(required=False, allow_null=True, default=None,
+                                         validators=plausible_date)
 
 
 class DeferralSerializer(LedgerModelSerializer):
@@ -370,9 +423,9 @@ class DeferralSerializer(LedgerModelSerializer):
         validators = []
 
 
-class DecideSerializer(serializers.Serializer):
+class DecideSerializer(Strict):
     approve = serializers.BooleanField()
-    note = serializers.CharField(required=False, allow_blank=True, default="")
+    note = text(required=False, allow_blank=True, default="")
 
 
 # --- Read only ----------------------------------------------------------------------------

@@ -8,13 +8,51 @@ back up the most important rules for writes that skip ``full_clean()``.
 from __future__ import annotations
 
 from django.core.exceptions import ValidationError
-from django.core.validators import MaxValueValidator, MinValueValidator
+from django.core.validators import MinValueValidator
 from django.db import models
 from django.db.models import Q
+from django.utils.deconstruct import deconstructible
 
 from register.calculations import calculations
 
-probability = [MinValueValidator(0.0), MaxValueValidator(1.0)]
+
+@deconstructible
+class Plausible:
+    """A finite number inside the plausible range of ``quantity``, one of the table in
+    ``calcs.engine.units.BOUNDS`` (the same ranges as the import and the command)."""
+
+    def __init__(self, quantity: str):
+        self.quantity = quantity
+
+    def __call__(self, value):
+        if value is None:
+            return
+        try:
+            calculations().check_number(value, self.quantity, "value")
+        except calculations().InputError as exc:
+            raise ValidationError(exc.message, code="implausible") from None
+
+    def __eq__(self, other):
+        return isinstance(other, Plausible) and other.quantity == self.quantity
+
+    def __hash__(self):
+        return hash(self.quantity)
+
+
+def plausible(quantity: str) -> list:
+    """Field validators for a number of ``quantity`` (see :class:`Plausible`)."""
+    return [Plausible(quantity)]
+
+
+def plausible_day(value):
+    """Field validator: a date or time inside the plausible window (register.days)."""
+    from register.days import check_plausible
+
+    check_plausible(value)
+
+
+plausible_date = [plausible_day]
+probability = plausible("fraction")
 non_negative = [MinValueValidator(0.0)]
 
 

@@ -18,7 +18,8 @@ from register.models.base import (
     SiteScopedQuerySet,
     _nonneg_check,
     _prob_check,
-    non_negative,
+    plausible,
+    plausible_date,
     plausible_rate,
     probability,
 )
@@ -46,7 +47,7 @@ class DeviceType(models.Model):
     lambda_dd_per_hour = models.FloatField(_("λDD (per hour)"), default=0.0,
                                            validators=plausible_rate)
     lambda_s_per_hour = models.FloatField(_("λS (per hour)"), default=0.0,
-                                          validators=non_negative)
+                                          validators=plausible("safe_rate_per_hour"))
     device_class = models.CharField(_("type A/B"), max_length=1,
                                     choices=choices.DeviceClass.choices,
                                     default=choices.DeviceClass.B)
@@ -91,12 +92,12 @@ class SafetyFunction(models.Model):
     scenarios = models.ManyToManyField(HazardScenario, related_name="sifs", blank=True)
     target_pfd_avg = models.FloatField(
         _("required PFDavg"), null=True, blank=True,
-        validators=[MinValueValidator(1e-9), MaxValueValidator(1.0)],
+        validators=plausible("target_pfd"),
         help_text=_("Low demand. Leave empty to take it from the strictest LOPA scenario."),
     )
     target_pfh_per_hour = models.FloatField(
         _("required PFH (per hour)"), null=True, blank=True,
-        validators=[MinValueValidator(1e-12), MaxValueValidator(1e-3)],
+        validators=plausible("target_pfh_per_hour"),
         help_text=_("High demand / continuous mode."),
     )
     target_sil = models.PositiveSmallIntegerField(
@@ -104,15 +105,17 @@ class SafetyFunction(models.Model):
         help_text=_("The SIL the target falls in (checked against the target on save)."),
     )
     process_safety_time_s = models.FloatField(_("process safety time (s)"), null=True,
-                                              blank=True, validators=non_negative)
+                                              blank=True, validators=plausible("seconds"))
     required_response_time_s = models.FloatField(_("required response time (s)"), null=True,
-                                                  blank=True, validators=non_negative)
-    trip_setpoint = models.FloatField(_("trip setpoint"), null=True, blank=True)
+                                                  blank=True, validators=plausible("seconds"))
+    trip_setpoint = models.FloatField(_("trip setpoint"), null=True, blank=True,
+                                      validators=plausible("process_value"))
     setpoint_unit = models.CharField(_("setpoint unit"), max_length=20, blank=True)
     life_stage = models.CharField(_("life stage"), max_length=15,
                                   choices=choices.LifeStage.choices,
                                   default=choices.LifeStage.IN_SERVICE)
-    in_service_on = models.DateField(_("in service since"), null=True, blank=True)
+    in_service_on = models.DateField(_("in service since"), null=True, blank=True,
+                                     validators=plausible_date)
     owner = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.SET_NULL, null=True,
                               blank=True, related_name="owned_sifs")
 
@@ -184,9 +187,11 @@ class Subsystem(models.Model):
                              validators=probability)
     beta_d = models.FloatField(_("βD (detected common cause)"), default=0.0,
                                validators=probability)
-    mttr_hours = models.FloatField(_("MTTR (h)"), default=8.0, validators=non_negative,
+    mttr_hours = models.FloatField(_("MTTR (h)"), default=8.0,
+                                   validators=plausible("repair_hours"),
                                    help_text=_("Mean time to restore after a detected failure."))
-    mrt_hours = models.FloatField(_("MRT (h)"), default=8.0, validators=non_negative,
+    mrt_hours = models.FloatField(_("MRT (h)"), default=8.0,
+                                  validators=plausible("repair_hours"),
                                   help_text=_("Mean repair time after a failure found by a test."))
     position = models.PositiveSmallIntegerField(_("order"), default=0)
 
@@ -222,13 +227,13 @@ class Component(models.Model):
     tag = models.CharField(_("device tag"), max_length=40, db_index=True)
     device_type = models.ForeignKey(DeviceType, on_delete=models.PROTECT,
                                     related_name="components")
-    in_service_on = models.DateField(_("in service since"))
+    in_service_on = models.DateField(_("in service since"), validators=plausible_date)
     lambda_du_per_hour = models.FloatField(_("λDU (per hour)"), null=True, blank=True,
                                            validators=plausible_rate)
     lambda_dd_per_hour = models.FloatField(_("λDD (per hour)"), null=True, blank=True,
                                            validators=plausible_rate)
     lambda_s_per_hour = models.FloatField(_("λS (per hour)"), null=True, blank=True,
-                                          validators=non_negative)
+                                          validators=plausible("safe_rate_per_hour"))
     proof_test_coverage = models.FloatField(
         _("proof-test coverage"), default=1.0, validators=probability,
         help_text=_("Share of dangerous undetected failures a full proof test reveals."),
@@ -238,7 +243,7 @@ class Component(models.Model):
         help_text=_("Share of dangerous undetected failures a partial test reveals."),
     )
     mission_time_years = models.FloatField(
-        _("mission time (years)"), default=20.0, validators=[MinValueValidator(0.1)],
+        _("mission time (years)"), default=20.0, validators=plausible("mission_time_years"),
         help_text=_("Until overhaul or replacement, when untested failures are removed."),
     )
     device_class = models.CharField(_("type A/B"), max_length=1, blank=True,
@@ -347,7 +352,7 @@ class TestPlan(models.Model):
     assignee = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.SET_NULL,
                                  null=True, blank=True, related_name="assigned_plans")
     effective_from = models.DateField(
-        _("in force from"), null=True, blank=True,
+        _("in force from"), null=True, blank=True, validators=plausible_date,
         help_text=_("The day this interval, coverage and scope take effect (default: the day "
                     "the change is approved). Due dates that fell before it stay as they were."),
     )
@@ -405,10 +410,12 @@ class TestStep(models.Model):
     criterion = models.CharField(_("acceptance criterion"), max_length=16,
                                  choices=choices.CriterionKind.choices,
                                  default=choices.CriterionKind.NONE)
-    target_value = models.FloatField(_("target value"), null=True, blank=True)
+    target_value = models.FloatField(_("target value"), null=True, blank=True,
+                                     validators=plausible("process_value"))
     tolerance = models.FloatField(_("tolerance (±)"), null=True, blank=True,
-                                  validators=non_negative)
-    limit = models.FloatField(_("limit"), null=True, blank=True)
+                                  validators=plausible("tolerance"))
+    limit = models.FloatField(_("limit"), null=True, blank=True,
+                              validators=plausible("process_value"))
     # Which devices of the test are asked this step (register.rules.steps_for).
     applies_to_role = models.CharField(
         _("asked of (role)"), max_length=10, choices=choices.SubsystemRole.choices,

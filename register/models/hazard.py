@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 from django.core.exceptions import ValidationError
-from django.core.validators import MaxValueValidator, MinValueValidator
 from django.db import models
 from django.db.models import Q
 from django.utils.translation import gettext_lazy as _
@@ -14,7 +13,7 @@ from register.models.base import (
     SiteScopedQuerySet,
     _nonneg_check,
     _prob_check,
-    positive_frequency,
+    plausible,
     probability,
 )
 from register.models.site import (
@@ -40,7 +39,7 @@ class HazardScenario(models.Model):
                                 choices=choices.ConsequenceCategory.choices)
     tolerable_frequency_per_year = models.FloatField(
         _("tolerable frequency (per year)"),
-        validators=[MinValueValidator(1e-12), MaxValueValidator(10.0)],
+        validators=plausible("tolerable_frequency_per_year"),
         help_text=_("The site's risk criterion for this consequence."),
     )
 
@@ -72,7 +71,7 @@ class InitiatingCause(models.Model):
                                  related_name="causes")
     description = models.CharField(_("description"), max_length=300)
     frequency_per_year = models.FloatField(_("frequency (per year)"),
-                                           validators=positive_frequency)
+                                           validators=plausible("frequency_per_year"))
     basis = models.CharField(_("basis"), max_length=300, blank=True)
 
     site_path = "scenario__site"

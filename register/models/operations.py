@@ -17,6 +17,8 @@ from register import choices
 from register.days import is_future
 from register.models.base import (
     SiteScopedQuerySet,
+    plausible,
+    plausible_date,
 )
 from register.models.design import (
     Component,
@@ -30,7 +32,7 @@ class Demand(models.Model):
     """A real demand on the SIF (a real trip), successful or not."""
 
     sif = models.ForeignKey(SafetyFunction, on_delete=models.PROTECT, related_name="demands")
-    occurred_at = models.DateTimeField(_("occurred at"))
+    occurred_at = models.DateTimeField(_("occurred at"), validators=plausible_date)
     successful = models.BooleanField(_("the SIF acted as required"))
     spurious = models.BooleanField(
         _("spurious trip (no real process demand)"), default=False,
@@ -89,8 +91,9 @@ class Bypass(models.Model):
     component = models.ForeignKey(Component, on_delete=models.PROTECT, null=True, blank=True,
                                   related_name="bypasses",
                                   help_text=_("Leave empty when the whole SIF is bypassed."))
-    started_at = models.DateTimeField(_("started at"))
-    ended_at = models.DateTimeField(_("ended at"), null=True, blank=True)
+    started_at = models.DateTimeField(_("started at"), validators=plausible_date)
+    ended_at = models.DateTimeField(_("ended at"), null=True, blank=True,
+                                    validators=plausible_date)
     authorised_hours = models.FloatField(
         _("authorised duration (h)"),
         help_text=_("Asked for by the requester, authorised as asked; more than 0 and at "
@@ -210,7 +213,7 @@ class Deferral(models.Model):
 
     plan = models.ForeignKey(TestPlan, on_delete=models.PROTECT, related_name="deferrals")
     due_on = models.DateField(_("due date being deferred"))
-    proposed_on = models.DateField(_("proposed new date"))
+    proposed_on = models.DateField(_("proposed new date"), validators=plausible_date)
     reason = models.TextField(_("reason"))
     requested_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT,
                                      related_name="requested_deferrals")
@@ -223,6 +226,7 @@ class Deferral(models.Model):
     decision_note = models.TextField(_("decision note"), blank=True)
     projected_pfd_avg = models.FloatField(
         _("projected PFDavg to the proposed date"), null=True, blank=True,
+        validators=plausible("pfd"),
         help_text=_("As shown to the decider when the decision was made."),
     )
 
@@ -283,7 +287,8 @@ class Finding(models.Model):
                               blank=True, related_name="owned_findings",
                               help_text=_("Who sees the follow-up through."))
     corrective_action = models.TextField(_("corrective work"), blank=True)
-    retest_due_on = models.DateField(_("retest due by"), null=True, blank=True)
+    retest_due_on = models.DateField(_("retest due by"), null=True, blank=True,
+                                     validators=plausible_date)
     status = models.CharField(_("status"), max_length=10,
                               choices=choices.FindingStatus.choices,
                               default=choices.FindingStatus.OPEN)

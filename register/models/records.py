@@ -19,6 +19,8 @@ from register import choices
 from register.days import is_future
 from register.models.base import (
     SiteScopedQuerySet,
+    plausible,
+    plausible_date,
 )
 from register.models.design import (
     Component,
@@ -69,7 +71,7 @@ class TestRecord(models.Model):
     plan = models.ForeignKey(TestPlan, on_delete=models.PROTECT, related_name="records",
                              null=True, blank=True)
     kind = models.CharField(_("kind"), max_length=12, choices=choices.TestKind.choices)
-    performed_at = models.DateTimeField(_("performed at"))
+    performed_at = models.DateTimeField(_("performed at"), validators=plausible_date)
     performed_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT,
                                      related_name="performed_tests")
     performed_by_name = models.CharField(_("performer (as signed)"), max_length=200,
@@ -294,7 +296,7 @@ class MeasuredValue(PartOfRecord):
     phase = models.CharField(_("phase"), max_length=10,
                              choices=[("found", _("As found")), ("left", _("As left"))])
     quantity = models.CharField(_("quantity"), max_length=100)
-    value = models.FloatField(_("value"))
+    value = models.FloatField(_("value"), validators=plausible("process_value"))
     unit = models.CharField(_("unit"), max_length=20, blank=True)
     within_criterion = models.BooleanField(_("meets criterion"), null=True)
 
