@@ -190,3 +190,14 @@ def demo_plant(request, _demo_database, django_db_blocker):
           transaction.atomic()):
         yield world
         transaction.set_rollback(True)
+
+
+def pytest_collection_modifyitems(config, items):
+    """In a parallel run (``-n``), keep the tests that read the demo plant in one process
+    (it is loaded once per process) and the tests that start real workers and servers in
+    one process (they would otherwise compete for the two cores they time)."""
+    for item in items:
+        if "demo_plant" in getattr(item, "fixturenames", ()):
+            item.add_marker(pytest.mark.xdist_group("demo"))
+        elif "/integration/" in str(item.path):
+            item.add_marker(pytest.mark.xdist_group("services"))

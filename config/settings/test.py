@@ -1,7 +1,28 @@
-"""Settings for the test suite: fast hashing, in-memory mail, eager tasks unless told otherwise."""
+"""Settings for the test suite: fast hashing, in-memory mail, eager tasks unless told otherwise.
 
-from config.settings.base import *  # noqa: F403
-from config.settings.env import env_bool
+The suite runs in parallel processes (pytest-xdist, ``-n``). Each process gets its own
+test database (pytest-django adds ``_gw0``, ``_gw1``), its own Redis database for the
+broker and its own var folder, set here before the base settings read the environment,
+so that the real workers the integration tests start talk only to their own process.
+"""
+
+import os
+import re
+
+_worker = os.environ.get("PYTEST_XDIST_WORKER", "")
+if _worker and os.environ.get("SIF_LEDGER_TEST_WORKER") != _worker:
+    _n = int(re.sub(r"\D", "", _worker) or 0)
+    _broker = os.environ.get("CELERY_BROKER_URL", "")
+    _m = re.fullmatch(r"(redis://[^/]+)(?:/(\d+))?", _broker)
+    if _m:
+        os.environ["CELERY_BROKER_URL"] = f"{_m[1]}/{(int(_m[2] or 0) + 1 + _n) % 16}"
+    _var = os.environ.get("SIF_LEDGER_VAR_DIR") or os.path.join(
+        os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "var")
+    os.environ["SIF_LEDGER_VAR_DIR"] = f"{_var}-{_worker}"
+    os.environ["SIF_LEDGER_TEST_WORKER"] = _worker  # applied once, inherited by workers
+
+from config.settings.base import *  # noqa: E402, F403
+from config.settings.env import env_bool  # noqa: E402
 
 PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]
 EMAIL_BACKEND = "django.core.mail.backends.locmem.EmailBackend"

@@ -44,6 +44,7 @@ import math
 from collections import defaultdict
 from dataclasses import dataclass, field
 
+from django.db import connection
 from django.db.models import Case, CharField, Max, Q, Value, When
 
 from register import choices
@@ -594,9 +595,31 @@ def refresh_plans(plan_queryset, as_of: dt.date | None = None) -> dict[int, Plan
             for k, v in values.items():
                 setattr(plan, k, v)
             changed.append(plan)
-    if changed:
-        TestPlan.objects.bulk_update(changed, STATE_COLUMNS, batch_size=1000)
+    write_columns(changed)
     return statuses
+
+
+def write_columns(plans: list[TestPlan], batch: int = 2000) -> None:
+    """Write ``STATE_COLUMNS`` of ``plans`` (values set on the objects). On PostgreSQL one
+    ``UPDATE ... FROM (VALUES ...)`` per batch: Django's ``bulk_update`` builds a CASE per
+    column and row, which PostgreSQL plans slowly at thousands of plans."""
+    if not plans:
+        return
+    if connection.vendor != "postgresql":
+        TestPlan.objects.bulk_update(plans, STATE_COLUMNS, batch_size=1000)
+        return
+    table = connection.ops.quote_name(TestPlan._meta.db_table)
+    names = [connection.ops.quote_name(TestPlan._meta.get_field(c).column)
+             for c in STATE_COLUMNS]
+    sets = ", ".join(f"{n} = v.{n}" for n in names)
+    row = "(%s::bigint" + ", %s::date" * len(names) + ")"
+    with connection.cursor() as cursor:
+        for i in range(0, len(plans), batch):
+            chunk = plans[i:i + batch]
+            params = [v for p in chunk for v in (p.pk, *(getattr(p, c) for c in STATE_COLUMNS))]
+            cursor.execute(
+                f"UPDATE {table} AS t SET {sets} FROM (VALUES {', '.join([row] * len(chunk))}) "
+                f"AS v(id, {', '.join(names)}) WHERE t.id = v.id", params)
 
 
 def _state_case(day: dt.date) -> list[When]:
