@@ -54,6 +54,15 @@ def _plan_status(plan: TestPlan | None):
     return {"due_on": st.due_on, "days_overdue": st.days_overdue, **_state_badge(st.state)}
 
 
+def _stored_plan_status(plan: TestPlan | None):
+    """The plan's due date as last written by the rule (one query): what the plan said
+    before the record being signed, which has not changed anything yet."""
+    if plan is None:
+        return None
+    return {"due_on": TestPlan.objects.filter(pk=plan.pk).values_list(
+        "next_due_on", flat=True).first()}
+
+
 def _components(plan: TestPlan | None, sif) -> list[Component]:
     qs = None
     if plan is not None:
@@ -234,7 +243,7 @@ def _entry(request, *, sif, plan, record=None):
                     if action != "sign":
                         messages.success(request, "Draft saved.")
                         return redirect("field:record_edit", pk=saved.pk)
-                    before = _plan_status(plan)
+                    before = _stored_plan_status(plan)
                     try:
                         services.sign_record(saved, request.user, request.POST["password"])
                     except ValidationError as exc:
