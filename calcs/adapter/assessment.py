@@ -4,10 +4,12 @@ figures pages ask for (PFD(t) series, deferral projections)."""
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import hashlib
 import json
 from collections import defaultdict
 
+from django.db import transaction
 from django.utils import timezone
 
 from calcs.adapter.field_stats import (
@@ -54,8 +56,55 @@ def _digest(payload) -> str:
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()
 
 
+#: A recompute with unchanged inputs and verdict refreshes the newest snapshot in place
+#: until it is this old; then a new snapshot is stored (a point of the trend).
+HEARTBEAT = dt.timedelta(days=7)
+
+
+def _row(obj, skip=()) -> tuple:
+    return tuple(getattr(obj, f.attname) for f in obj._meta.concrete_fields
+                 if f.attname not in skip)
+
+
+@functools.lru_cache(maxsize=4096)
+def _schedule_check(groups: tuple, design_pfd_avg: float):
+    """The self-check depends on the design inputs only: SIFs built alike share it."""
+    return eng_hist.planned_schedule_check(list(groups), design_pfd_avg,
+                                           tolerance=SCHEDULE_TOLERANCE)
+
+
+def inputs_digest(d: SifData, rates: RateTable, type_stats, due_on: dt.date | None) -> str:
+    """SHA-256 of everything an assessment is computed from except the evaluation date:
+    the SIF's rows (design, plans, scenarios, bypasses, demands, site settings), its test
+    events, the failure counts behind the field statistics of its device types, and the
+    next full test. Hours in service (and so field rates) follow from these and the date,
+    so the digest stays the same from one day to the next while nothing is recorded."""
+    plan_skip = set(TestPlan.DERIVED_FIELDS)
+    comps = d.all_components()
+    payload = {
+        "sif": _row(d.sif), "site": _row(d.sif.unit.site),
+        "subsystems": [_row(s) for s in d.subsystems],
+        "components": [(_row(c.obj), _row(c.obj.device_type) if c.obj.device_type_id else None,
+                        [(e.at, e.kind, e.failed, e.record_id, e.credited) for e in c.events])
+                       for c in comps],
+        "plans": [(_row(p, plan_skip), sorted(d.plan_components.get(p.pk, ())))
+                  for p in d.plans],
+        "scenarios": [(_row(sc), [_row(x) for x in sc.loaded_causes],
+                       [_row(x) for x in sc.loaded_layers],
+                       [_row(x) for x in sc.loaded_modifiers]) for sc in d.scenarios],
+        "bypasses": [_row(b) for b in d.bypasses], "demands": [_row(x) for x in d.demands],
+        "stats": sorted((k, v.stats.components, v.stats.failures, v.stats.assumed_rate,
+                         v.stats.confidence, v.stats.exceeds_assumed)
+                        for k, v in type_stats.items()
+                        if k in {c.obj.device_type_id for c in comps}),
+        "rates": rates.basis, "due_on": due_on,
+    }
+    return _digest(payload)
+
+
 def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
-           due_on: dt.date | None = None, trigger: str = "") -> Assessment:
+           due_on: dt.date | None = None, trigger: str = "",
+           digest: str | None = None) -> Assessment:
     """Run design, achieved and projected calculations for one SIF. Never raises for bad
     records: problems become flags, and an engine error is kept on the assessment."""
     sif = d.sif
@@ -102,8 +151,7 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         if design.target_pfd_avg and result.pfd_avg > design.target_pfd_avg:
             flags.append(f"The design PFDavg {result.pfd_avg:.2e} does not meet the required "
                          f"{design.target_pfd_avg:.2e}.")
-        check = eng_hist.planned_schedule_check(planned_groups(design), result.pfd_avg,
-                                                tolerance=SCHEDULE_TOLERANCE)
+        check = _schedule_check(tuple(planned_groups(design)), result.pfd_avg)
         detail["schedule_check"] = {"model_pfd_avg": check.model_pfd_avg,
                                     "relative_difference": check.relative_difference,
                                     "tolerance": check.tolerance,
@@ -119,8 +167,7 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         windows = [(start_12, end)]
         if in_service and _aware(in_service) < end:
             windows.append((_aware(in_service), end))
-        results = eng_hist.achieved_pfd_windows(hist, windows, as_of=end)
-        observed = eng_obs.observed_windows(hist, windows, as_of=end)
+        results, observed = eng_obs.achieved_and_observed_windows(hist, windows, as_of=end)
         last12, obs12 = results[0], observed[0]
         a.achieved_pfd_avg = last12.pfd_avg
         a.observed_unavailability = obs12.unavailability
@@ -140,8 +187,9 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         if due_on:
             due_at = max(_aware(due_on), end)
             full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
-            proj = eng_hist.projection(history_input(d, rates, assume_closed_after=end), end,
-                                       due_at, interval_hours=full_t1)
+            if any(b.ended_at is None for b in d.bypasses):
+                hist = history_input(d, rates, assume_closed_after=end)
+            proj = eng_hist.projection(hist, end, due_at, interval_hours=full_t1)
             a.projected_pfd_avg = proj.pfd_avg
             detail["projection"] = {"next_test_on": due_on.isoformat(),
                                     "horizon_end": proj.window_end.isoformat()}
@@ -174,12 +222,7 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
             systematic_capability=result.systematic_capability)
         a.verdict = verdict.as_dict()
         a.meets_target = verdict.meets
-        payload = {"design": [vars(s) | {"voting": str(s.voting)} for s in design.subsystems],
-                   "events": [(c.obj.pk, [(e.at.isoformat(), e.kind, e.failed)
-                                          for e in c.events]) for c in d.all_components()],
-                   "bypasses": [(b.started_at, b.ended_at) for b in d.bypasses],
-                   "rates": rates.basis, "as_of": as_of}
-        a.inputs_digest = _digest(payload)
+        a.inputs_digest = digest or inputs_digest(d, rates, type_stats, due_on)
     except EngineError as exc:
         a.error = str(exc)
         a.verdict = eng_verdict.judge(target_sil=sif.target_sil, error=str(exc)).as_dict()
@@ -326,9 +369,14 @@ def observed_demand_flag(d: SifData, as_of: dt.datetime) -> str | None:
 
 def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = None
                    ) -> list[Assessment]:
-    """Recompute and store an assessment for every SIF in the queryset.
+    """Recompute every SIF in the queryset and store what changed; return the newest
+    assessment of each.
 
-    One bad SIF never stops the others: its assessment carries the error instead.
+    A SIF whose inputs digest and evaluation day equal its newest assessment's is not
+    recomputed (that assessment is returned). Otherwise a new snapshot is stored when the
+    inputs or the verdict changed or the newest is older than ``HEARTBEAT``; else the
+    newest is refreshed in place. One bad SIF never stops the others: its assessment
+    carries the error instead.
     """
     as_of = as_of or timezone.now()
     loaded = load(sif_queryset)
@@ -340,24 +388,79 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     sites = {d.sif.unit.site_id: d.sif.unit.site for d in loaded}
     rates = {sid: rate_table(sites[sid], stats_by_site[sid], as_of.date()) for sid in site_ids}
     dues = _full_due_dates(sif_queryset, as_of.date())
-    out = []
+    previous = latest_assessments([d.sif.pk for d in loaded])
+    out, fresh = [], []
     for d in loaded:
-        sid = d.sif.unit.site_id
+        sid, prev = d.sif.unit.site_id, previous.get(d.sif.pk)
         try:
-            out.append(assess(d, as_of, rates[sid], stats_by_site[sid],
-                              due_on=dues.get(d.sif.pk), trigger=trigger))
+            digest = inputs_digest(d, rates[sid], stats_by_site[sid], dues.get(d.sif.pk))
+        except Exception:
+            digest = None
+        if prev is not None and digest and prev.inputs_digest == digest and (
+                prev.as_of.date() == as_of.date()):
+            out.append(prev)
+            continue
+        try:
+            a = assess(d, as_of, rates[sid], stats_by_site[sid],
+                       due_on=dues.get(d.sif.pk), trigger=trigger, digest=digest)
         except Exception as exc:
             log.exception("assessment of %s failed", d.sif.tag)
-            out.append(Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
-                                  trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
-                                  flags=[f"Could not be calculated: {exc}"],
-                                  inputs_digest=_digest({"error": str(exc)})))
-    previous = latest_assessments([a.sif_id for a in out])
-    Assessment.objects.bulk_create(out, batch_size=500)
+            a = Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
+                           trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
+                           flags=[f"Could not be calculated: {exc}"],
+                           inputs_digest=_digest({"error": str(exc)}))
+        out.append(a)
+        fresh.append(a)
+    _store(fresh, previous)
     from register.inbox.notices import notify_verdict_changes
 
-    notify_verdict_changes([(previous.get(a.sif_id), a) for a in out])
+    notify_verdict_changes([(previous.get(a.sif_id), a) for a in fresh])
     return out
+
+
+#: computed_at stays: it is when the snapshot was first stored (the heartbeat's clock).
+_REFRESHED = ("as_of", "trigger", "target_pfd_avg", "target_sil",
+              "design_pfd_avg", "design_pfh_per_hour", "achieved_pfd_avg",
+              "achieved_since_service_pfd_avg", "projected_pfd_avg",
+              "observed_unavailability", "observed_since_service", "verdict", "achieved_sil",
+              "architectural_sil", "systematic_sil", "meets_target", "rate_basis", "flags",
+              "detail", "error")
+
+
+def _outcome(a: Assessment) -> tuple:
+    lines = (a.verdict or {}).get("lines", [])
+    return (a.meets_target, bool(a.error),
+            tuple((x.get("key"), x.get("status")) for x in lines if isinstance(x, dict)))
+
+
+def _store(fresh: list[Assessment], previous: dict[int, Assessment]) -> None:
+    """One transaction: refresh in place where nothing but the date moved, otherwise a new
+    newest snapshot (the SIF rows are locked so two recomputes of one SIF queue up)."""
+    if not fresh:
+        return
+    new, refresh = [], []
+    for a in fresh:
+        prev = previous.get(a.sif_id)
+        if (prev is not None and prev.inputs_digest == a.inputs_digest
+                and _outcome(prev) == _outcome(a) and a.as_of - prev.computed_at < HEARTBEAT
+                and a.as_of >= prev.as_of):
+            a.pk, a.id, a.latest, a.computed_at = prev.pk, prev.pk, True, prev.computed_at
+            refresh.append(a)
+        else:
+            a.latest = True
+            new.append(a)
+    with transaction.atomic():
+        ids = sorted({a.sif_id for a in fresh})
+        list(SafetyFunction.objects.filter(pk__in=ids).order_by("pk")
+             .select_for_update(of=("self",)).values_list("pk", flat=True))
+        if new:
+            Assessment.objects.filter(sif_id__in=[a.sif_id for a in new], latest=True
+                                      ).update(latest=False)
+            Assessment.objects.bulk_create(new, batch_size=500)
+        if refresh:
+            for a in refresh:
+                a._state.adding, a._state.db = False, "default"
+            Assessment.objects.bulk_update(refresh, _REFRESHED, batch_size=500)
 
 
 def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:
@@ -376,13 +479,8 @@ def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:
 
 
 def latest_assessments(sif_ids) -> dict[int, Assessment]:
-    """Newest assessment per SIF, in one query."""
-    from django.db.models import OuterRef, Subquery
-
-    newest = Assessment.objects.filter(sif_id=OuterRef("sif_id")).order_by(
-        "-computed_at", "-id").values("id")[:1]
-    rows = Assessment.objects.filter(sif_id__in=sif_ids, id=Subquery(newest))
-    return {a.sif_id: a for a in rows}
+    """Newest assessment per SIF, in one query (the partial unique index on ``latest``)."""
+    return {a.sif_id: a for a in Assessment.objects.latest_of(sif_ids)}
 
 
 def pfd_series_for(sif: SafetyFunction, start: dt.datetime, end: dt.datetime, points=600):

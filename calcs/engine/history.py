@@ -782,11 +782,12 @@ def achieved_pfd(sif: SifHistory, window_start: Any = None, window_end: Any = No
 
 
 def achieved_pfd_windows(sif: SifHistory, windows: Sequence[tuple[Any, Any]], *,
-                         as_of: Any, order: int = 8,
-                         max_piece_hours: float = 2190.0) -> list[HistoryResult]:
-    """Several windows of one SIF sharing one evaluation date (prepared once)."""
+                         as_of: Any, order: int = 8, max_piece_hours: float = 2190.0,
+                         compiled: _Compiled | None = None) -> list[HistoryResult]:
+    """Several windows of one SIF sharing one evaluation date (prepared once;
+    ``compiled``: the same SIF and evaluation date already prepared)."""
     cut_h = _hours(as_of, "as_of")
-    c = _compile(sif, cut_h, cut_h)
+    c = compiled if compiled is not None else _compile(sif, cut_h, cut_h)
     out = []
     for start, end in windows:
         end_h = _hours(end, "window_end")

@@ -275,3 +275,14 @@ def observed_windows(sif: _h.SifHistory, windows, *, as_of) -> list[ObservedResu
     cut_h = _h._hours(as_of, "as_of")
     prepared = _h._compile(sif, cut_h, cut_h), _episodes(sif, cut_h, [])
     return [_evaluate(sif, prepared, s, e) for s, e in windows]
+
+
+def achieved_and_observed_windows(sif: _h.SifHistory, windows, *, as_of
+                                  ) -> tuple[list[_h.HistoryResult], list[ObservedResult]]:
+    """:func:`calcs.engine.history.achieved_pfd_windows` and :func:`observed_windows` of
+    the same SIF, windows and evaluation date, with the history model compiled once."""
+    cut_h = _h._hours(as_of, "as_of")
+    c = _h._compile(sif, cut_h, cut_h)
+    achieved = _h.achieved_pfd_windows(sif, windows, as_of=as_of, compiled=c)
+    prepared = c, _episodes(sif, cut_h, [])
+    return achieved, [_evaluate(sif, prepared, s, e) for s, e in windows]

@@ -187,7 +187,7 @@ REST_FRAMEWORK = {
     "DEFAULT_SCHEMA_CLASS": "drf_spectacular.openapi.AutoSchema",
     "EXCEPTION_HANDLER": "register.api.views.exception_handler",
     "DEFAULT_THROTTLE_CLASSES": ["rest_framework.throttling.AnonRateThrottle"],
-    # Per process (local-memory cache); "login" guards POST /api/token/ per address.
+    # Counted in the default cache (CACHES); "login" guards POST /api/token/ per address.
     "DEFAULT_THROTTLE_RATES": {
         "anon": env_str("API_ANON_RATE", "120/min"),
         "login": env_str("API_LOGIN_RATE", "10/min"),
@@ -225,3 +225,10 @@ LOGGING = {
 # (nulls not distinct); SQLite (the demo) cannot express that, PostgreSQL enforces it, and
 # the scan compares with each plan's last row before writing on every database.
 SILENCED_SYSTEM_CHECKS = ["models.W047"]
+
+# The cache (field statistics, API throttles): shared by every process on Redis when
+# CACHE_URL is set (production sets it); the demo keeps a per-process memory cache.
+CACHES = {"default": (
+    {"BACKEND": "django.core.cache.backends.redis.RedisCache",
+     "LOCATION": env_str("CACHE_URL"), "KEY_PREFIX": "sif-ledger"} if env_str("CACHE_URL")
+    else {"BACKEND": "django.core.cache.backends.locmem.LocMemCache"})}

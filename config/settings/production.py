@@ -4,7 +4,7 @@ from django.core.exceptions import ImproperlyConfigured
 
 from config.settings.base import *  # noqa: F403
 from config.settings.base import SECRET_KEY
-from config.settings.env import env_bool, env_int, env_list
+from config.settings.env import env_bool, env_int, env_list, env_str
 
 DEBUG = False
 if not SECRET_KEY or SECRET_KEY.startswith("dev-only") or len(SECRET_KEY) < 50:
@@ -30,3 +30,8 @@ STORAGES = {
     "default": {"BACKEND": "django.core.files.storage.FileSystemStorage"},
     "staticfiles": {"BACKEND": "whitenoise.storage.CompressedManifestStaticFilesStorage"},
 }
+
+# One cache for every web and worker process (field statistics, API throttles).
+CACHE_URL = env_str("CACHE_URL", "redis://127.0.0.1:6379/1")
+CACHES = {"default": {"BACKEND": "django.core.cache.backends.redis.RedisCache",
+                      "LOCATION": CACHE_URL, "KEY_PREFIX": "sif-ledger"}}

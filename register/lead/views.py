@@ -356,8 +356,7 @@ def sif_chart(request, pk, which):
         episodes = presenters.observed_episodes(latest.detail if latest else None)
         svg = charts.pfd_chart(times, values, target, sif.tag, episodes=episodes)
     else:
-        points = list(calculations().Assessment.objects.filter(sif=sif).order_by("computed_at").values_list(
-            "computed_at", "achieved_pfd_avg", "design_pfd_avg")[:500])
+        points = calculations().Assessment.objects.trend_points(sif.pk, 500)
         svg = charts.trend_chart(points, target, sif.tag)
     resp = HttpResponse(svg, content_type="image/svg+xml")
     resp["Cache-Control"] = "private, max-age=60"

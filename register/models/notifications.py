@@ -47,6 +47,8 @@ class Notification(models.Model):
 
     class Meta:
         ordering = ["-created_at"]
+        # /api/notifications/ and the inbox in their default order
+        indexes = [models.Index(fields=["created_at"], name="register_notice_list")]
         constraints = [
             models.UniqueConstraint(fields=["recipient", "subject_key"],
                                     name="register_notification_once"),

@@ -55,6 +55,8 @@ class Demand(models.Model):
 
     class Meta:
         ordering = ["-occurred_at"]
+        # /api/demands/ and the operations log in their default order
+        indexes = [models.Index(fields=["occurred_at"], name="register_demand_list")]
 
     def __str__(self):
         return f"{self.sif.tag} demand {self.occurred_at:%Y-%m-%d}"
@@ -133,6 +135,8 @@ class Bypass(models.Model):
 
     class Meta:
         ordering = ["-started_at"]
+        # /api/bypasses/ and the bypass lists in their default order
+        indexes = [models.Index(fields=["started_at"], name="register_bypass_list")]
         verbose_name_plural = _("bypasses")
         constraints = [
             models.CheckConstraint(
@@ -236,6 +240,8 @@ class Deferral(models.Model):
 
     class Meta:
         ordering = ["-requested_at"]
+        # /api/deferrals/ and the deferral queue in their default order
+        indexes = [models.Index(fields=["requested_at"], name="register_deferral_list")]
         constraints = [
             models.CheckConstraint(condition=Q(proposed_on__gt=models.F("due_on")),
                                    name="register_deferral_later_than_due"),

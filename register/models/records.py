@@ -104,7 +104,9 @@ class TestRecord(models.Model):
 
     class Meta:
         ordering = ["-performed_at", "-id"]
-        indexes = [models.Index(fields=["sif", "performed_at"])]
+        indexes = [models.Index(fields=["sif", "performed_at"]),
+                   # /api/test-records/ and the record lists in their default order
+                   models.Index(fields=["performed_at", "id"], name="register_record_list")]
         constraints = [
             models.UniqueConstraint(fields=["client_key"], condition=Q(client_key__isnull=False),
                                     name="register_test_client_key_unique"),
