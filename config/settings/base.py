@@ -159,6 +159,10 @@ for _folder in ("queue", "control", "processed"):
 # overridable from the environment.
 SCAN_PERIOD_SECONDS = env_int("SCAN_PERIOD_SECONDS", 15 * 60)
 RECOMPUTE_HOUR_UTC = env_int("RECOMPUTE_HOUR_UTC", 2)
+# The nightly recompute is spread over the workers in chunks of this many SIFs on the
+# queue "calcs" (start workers with -Q celery,calcs).
+CALCS_QUEUE = env_str("CALCS_QUEUE", "calcs")
+RECOMPUTE_CHUNK_SIFS = env_int("RECOMPUTE_CHUNK_SIFS", 500)
 CELERY_BEAT_SCHEDULE = {
     "due-date-scan": {
         "task": "register.scan",

@@ -122,3 +122,24 @@ def test_the_trend_spreads_its_points_over_the_whole_life_with_the_newest(world)
     assert times[-1] == start + dt.timedelta(days=20 * 49)  # the newest
     assert times[0] <= start + dt.timedelta(days=20 * 5)  # reaching back to the start
     assert Assessment.objects.filter(sif=sif, latest=True).get().computed_at == times[-1]
+
+
+def test_the_nightly_chunks_give_the_same_result_whatever_their_size(world, settings):
+    from calcs.tasks import nightly_chunks
+
+    settings.CELERY_TASK_ALWAYS_EAGER = True
+    as_of = timezone.now()
+    results = []
+    for size in (2, 5):
+        Assessment.objects.all().delete()
+        chunks = nightly_chunks(as_of, size)
+        assert len(chunks.tasks) == math.ceil(len(world[3]) / size)
+        assert all(t.options["queue"] == "calcs" for t in chunks.tasks)
+        chunks.apply()
+        results.append({a.sif_id: a for a in Assessment.objects.filter(latest=True)})
+    small, large = results
+    assert set(small) == set(large) == {s.pk for s in world[3]}
+    for sif_id, a in small.items():
+        for name in FIGURES:
+            assert _same(getattr(a, name), getattr(large[sif_id], name)), name
+        assert a.verdict == large[sif_id].verdict and a.as_of == as_of
