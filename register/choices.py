@@ -172,6 +172,7 @@ class NotificationKind(models.TextChoices):
     ESCALATED = "escalated", _("Overdue proof test escalated")
     ESCALATED_2 = "escalated_2", _("Overdue proof test escalated, second level")
     BYPASS_STATE = "bypass_state", _("Bypass over its authorised time")
+    BYPASS_REQUESTED = "bypass_requested", _("Bypass awaiting authorisation")
     TARGET = "target", _("SIF no longer meets its target")
     FAILURE_FOUND = "failure_found", _("Dangerous failure found")
     COUNTERSIGN = "countersign", _("Waiting for countersignature")

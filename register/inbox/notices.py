@@ -268,6 +268,24 @@ def waiting_for_countersignature(record) -> int:
     return len(publish(notes))
 
 
+def bypass_requested(bypass) -> int:
+    """A bypass was put in place and awaits authorisation: tell the site's leads (not the
+    requester, who may not authorise it), once (subject key ``bypass:<bypass>:requested``)."""
+    site = bypass.sif.unit.site
+    what = f"{bypass.component.tag} of {bypass.sif.tag}" if bypass.component_id \
+        else bypass.sif.tag
+    message = (f"{what} bypassed since {bypass.started_at:%d %b %Y %H:%M} for an expected "
+               f"{bypass.authorised_hours:g} h ({bypass.reason}), awaiting your "
+               "authorisation.")
+    link = reverse("operations:bypass", args=[bypass.pk])
+    subject = f"{bypass.sif.tag}: bypass awaiting authorisation"
+    notes = [_note(u, site, Kind.BYPASS_REQUESTED, f"bypass:{bypass.pk}:requested", subject,
+                   message, link)
+             for u in members([site.pk], choices.Role.LEAD).get(site.pk, [])
+             if u.pk != bypass.requested_by_id]
+    return len(publish(notes))
+
+
 def _deferral_link(deferral) -> str:
     return reverse("deferrals:list") + f"#deferral-{deferral.pk}"
 

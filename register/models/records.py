@@ -89,14 +89,19 @@ class TestRecord(models.Model):
     remarks = models.TextField(_("remarks"), blank=True)
     client_key = models.CharField(
         _("client key"), max_length=100, null=True, blank=True,
-        help_text=_("Idempotency key supplied by an external system."),
+        help_text=_("Idempotency key supplied by an external system; unique within a site."),
     )
+    key_site = models.ForeignKey(
+        "register.Site", on_delete=models.PROTECT, null=True, blank=True, editable=False,
+        related_name="+", help_text=_("The site within which the client key is unique (set "
+                                      "with the key: one site can neither see nor claim "
+                                      "another's keys)."))
     draft_version = models.PositiveIntegerField(default=1, editable=False)
     created_at = models.DateTimeField(auto_now_add=True)
 
     site_path = "sif__unit__site"
     objects = SiteScopedQuerySet.as_manager()
-    history = HistoricalRecords()
+    history = HistoricalRecords(excluded_fields=["key_site"])
 
     SIGNED_FIELDS = ("sif_id", "plan_id", "kind", "performed_at", "performed_by_id",
                      "performed_by_name", "signed_at", "supersedes_id", "correction_reason",
@@ -108,8 +113,9 @@ class TestRecord(models.Model):
                    # /api/test-records/ and the record lists in their default order
                    models.Index(fields=["performed_at", "id"], name="register_record_list")]
         constraints = [
-            models.UniqueConstraint(fields=["client_key"], condition=Q(client_key__isnull=False),
-                                    name="register_test_client_key_unique"),
+            models.UniqueConstraint(fields=["key_site", "client_key"],
+                                    condition=Q(client_key__isnull=False),
+                                    name="register_test_client_key_per_site"),
             models.CheckConstraint(
                 condition=~Q(verified_by=models.F("performed_by")) | Q(verified_by__isnull=True),
                 name="register_test_verifier_not_performer",

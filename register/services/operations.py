@@ -98,7 +98,20 @@ def open_bypass(*, user, sif: SafetyFunction, started_at: dt.datetime, authorise
     _overlap_check(bypass)
     attribute(bypass, user, "bypass opened", at=at).save()
     followup.after_test_change(sif.pk)
+    transaction.on_commit(lambda: _ask_for_authorisation(bypass.pk))
     return bypass
+
+
+def _ask_for_authorisation(bypass_id: int) -> None:
+    """Once committed, a bypass still in place and not yet authorised asks the site's
+    leads (a bypass recorded already authorised or removed, as the demo's past, does not)."""
+    from register.inbox import notices
+
+    bypass = Bypass.objects.filter(pk=bypass_id, authorised_by__isnull=True,
+                                   ended_at__isnull=True).select_related(
+        "sif__unit__site", "component").first()
+    if bypass is not None:
+        notices.bypass_requested(bypass)
 
 
 def _overlap_check(bypass: Bypass):

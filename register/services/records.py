@@ -95,7 +95,8 @@ def save_draft_once(*, client_key: str, user, sif: SafetyFunction, kind: str,
                        remarks=remarks, results=results)
 
     def stored():
-        found = TestRecord.objects.filter(client_key=client_key).first()
+        found = TestRecord.objects.filter(client_key=client_key,
+                                          key_site_id=sif.unit.site_id).first()
         if found is not None and _stored_submission(found) != sent:
             raise KeyReusedError({"client_key": [
                 "This key was already used for a different test result."]})
@@ -171,6 +172,7 @@ def save_draft(
     record.supersedes = supersedes
     record.correction_reason = correction_reason
     record.client_key = client_key
+    record.key_site_id = sif.unit.site_id if client_key else None
     record.full_clean()
     attribute(record, user, "draft saved", at=at).save()
 

@@ -47,3 +47,21 @@ def test_a_device_bypass_worsens_the_achieved_figure_like_a_sif_bypass():
     assert figures["device"] > figures["none"]
     assert figures["device"] == pytest.approx(figures["sif"], rel=1e-9)
     assert figures["compensated"] == pytest.approx(figures["none"], rel=1e-12)
+
+
+def test_a_bypass_awaiting_authorisation_asks_the_sites_other_leads(
+        django_capture_on_commit_callbacks):
+    from register.models import Notification
+
+    s = f.site()
+    u = f.unit(s)
+    lead = f.user("lead", site=s, role=choices.Role.LEAD)
+    other_lead = f.user("lead2", site=s, role=choices.Role.LEAD)
+    f.user("tech", site=s, role=choices.Role.TECHNICIAN)
+    sif = f.sif(u)
+    with django_capture_on_commit_callbacks(execute=True):
+        b = services.open_bypass(user=lead, sif=sif, started_at=timezone.now(),
+                                 authorised_hours=4, reason="transmitter swap")
+    notes = Notification.objects.filter(kind=choices.NotificationKind.BYPASS_REQUESTED)
+    assert [n.recipient for n in notes] == [other_lead]  # never the requester, never a tech
+    assert f"/operations/bypasses/{b.pk}/" in notes[0].link
