@@ -128,6 +128,7 @@ def main():
 
     from register import demo
     from register.audit.chain import verify_chain
+    from register.management.commands.rundemo import no_query_log
     from register.models import ChainEntry
 
     t = time.perf_counter()
@@ -171,10 +172,11 @@ def main():
             t = time.perf_counter()
             if profiler:
                 profiler.enable()
-            try:
-                site = demo.load(timezone.localdate(), progress=stage)
-            except TypeError:  # an older loader, for before/after comparisons
-                site = demo.load(timezone.localdate())
+            with no_query_log():  # as load_demo loads it (no SQL log even with DEBUG on)
+                try:
+                    site = demo.load(timezone.localdate(), progress=stage)
+                except TypeError:  # an older loader, for before/after comparisons
+                    site = demo.load(timezone.localdate())
             if profiler:
                 profiler.disable()
             took = time.perf_counter() - t

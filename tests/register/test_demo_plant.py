@@ -96,6 +96,7 @@ def test_load_demo_shows_each_sif_as_it_is_built_and_sums_up(demo_plant):
     assert f"SIF 42/42 {shown[-1]}" in out
     assert "site, people and device library: done" in out
     assert "demands, bypasses, deferral: done" in out
+    assert "Subject:" not in out and "Content-Type:" not in out  # no e-mail text
     meeting = sum(1 for a in demo_plant.latest.values() if a.meets_target)
     assert (f"42 SIFs ({meeting} meet their target, {42 - meeting} do not), "
             f"{TestRecord.objects.count()} test records") in out
@@ -223,6 +224,13 @@ def test_rundemo_help_documents_the_address():
 
     text = " ".join(Command().create_parser("manage.py", "rundemo").format_help().split())
     assert "addrport" in text and "0.0.0.0:8000" in text and "127.0.0.1:8000" in text
+
+
+def test_the_readme_documents_the_demo_address():
+    from django.conf import settings
+
+    readme = " ".join((settings.BASE_DIR / "README.md").read_text(encoding="utf-8").split())
+    assert "manage.py rundemo 0.0.0.0:8000" in readme and "--no-serve" in readme
 
 
 def test_every_stored_verdict_is_the_meets_target_flag(plant):

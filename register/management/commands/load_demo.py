@@ -1,11 +1,14 @@
 import datetime as dt
 import time
+from pathlib import Path
 
+from django.conf import settings
 from django.core.management.base import BaseCommand
 from django.utils import timezone
 
 from register import demo
 from register.calculations import calculations
+from register.management.commands.rundemo import mail_to_files, no_query_log, quiet_task_log
 from register.models import SafetyFunction, TestRecord
 
 
@@ -46,7 +49,10 @@ class Command(BaseCommand):
                 self.stdout.write(f"  SIF {done:2d}/{total} {what}")
 
         try:
-            site = demo.load(today, progress=progress)
+            # e-mails of the notifications the history raises go to files, not the console
+            with (no_query_log(), quiet_task_log(),
+                  mail_to_files(Path(settings.VAR_DIR) / "demo-mail") as mail_folder):
+                site = demo.load(today, progress=progress)
         except demo.DemoAlreadyLoaded as exc:
             self.stdout.write(f"The demo site '{exc}' is already loaded; nothing changed.")
             return
@@ -59,3 +65,6 @@ class Command(BaseCommand):
             f"{site.units.count()} units, {len(sifs)} SIFs ({meeting} meet their target, "
             f"{len(sifs) - meeting} do not), {records} test records. Sign in as lead, tech, "
             f"tech2, verifier or auditor with password '{demo.DEMO_PASSWORD}'."))
+        if mail_folder is not None and any(mail_folder.iterdir()):
+            self.stdout.write(f"E-mails of the notifications are in {mail_folder}/ (the demo "
+                              "has no mail server); each person sees them in /inbox/.")

@@ -16,9 +16,9 @@ FILE_MAIL = "django.core.mail.backends.filebased.EmailBackend"
 
 
 @contextlib.contextmanager
-def _no_query_log():
+def no_query_log():
     """With DEBUG on (the demo's default) every SQL query is also logged, which makes the
-    load about a tenth slower; preparing needs no log."""
+    load about a tenth slower; preparing (``rundemo``, ``load_demo``) needs no log."""
     saved = settings.DEBUG
     settings.DEBUG = False
     try:
@@ -28,19 +28,23 @@ def _no_query_log():
 
 
 @contextlib.contextmanager
-def _quiet_task_log():
-    """Background tasks run in-process on the demo; their one line per task is noise here."""
-    log = logging.getLogger("celery.app.trace")
-    level = log.level
-    log.setLevel(logging.WARNING)
+def quiet_task_log():
+    """Background tasks run in-process on the demo; their one line per task is noise here,
+    and so is the broker's warning that the demo's filesystem broker names no host."""
+    logs = {logging.getLogger("celery.app.trace"): logging.WARNING,
+            logging.getLogger("kombu.connection"): logging.ERROR}
+    levels = {log: log.level for log in logs}
+    for log, level in logs.items():
+        log.setLevel(level)
     try:
         yield
     finally:
-        log.setLevel(level)
+        for log, level in levels.items():
+            log.setLevel(level)
 
 
 @contextlib.contextmanager
-def _mail_to_files(folder: Path):
+def mail_to_files(folder: Path):
     """While preparing the demo, e-mails that would be printed on the console are written
     to files in ``folder`` instead (one per message); any other mail backend is kept."""
     if settings.EMAIL_BACKEND != CONSOLE_MAIL:
@@ -80,7 +84,7 @@ class Command(BaseCommand):
         if pending:
             self.stdout.write("    done.")
         mail = Path(settings.VAR_DIR) / "demo-mail"
-        with _mail_to_files(mail) as mail_folder, _quiet_task_log(), _no_query_log():
+        with mail_to_files(mail) as mail_folder, quiet_task_log(), no_query_log():
             self.stdout.write("2/3 Loading the demo plant:")
             call_command("load_demo", stdout=out)
             self.stdout.write("3/3 Running the due-date scan:")
