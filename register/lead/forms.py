@@ -54,8 +54,11 @@ class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
         self.initial["effective_from"] = None  # a new change: from today unless given
         sif_id = self.instance.sif_id if self.instance and self.instance.pk else None
         self.fields["components"].queryset = Component.objects.filter(
-            subsystem__sif_id=sif_id).order_by("subsystem__position", "tag")
+            subsystem__sif_id=sif_id).select_related("subsystem").order_by(
+            "subsystem__position", "tag")
         self.fields["components"].required = False
+        self.fields["components"].label_from_instance = lambda c: (
+            f"{c.tag} · {c.subsystem.get_role_display().lower()}")
 
 
 FORMS = {"component": (Component, ComponentChangeForm),
