@@ -122,13 +122,18 @@ def main():
     import django
 
     django.setup()
+    from django.conf import settings
     from django.core.management import call_command
     from django.db import connection, transaction
     from django.utils import timezone
 
     from register import demo
     from register.audit.chain import verify_chain
-    from register.management.commands.rundemo import no_query_log
+    from register.management.commands.rundemo import (
+        mail_to_files,
+        no_query_log,
+        quiet_task_log,
+    )
     from register.models import ChainEntry
 
     t = time.perf_counter()
@@ -172,7 +177,9 @@ def main():
             t = time.perf_counter()
             if profiler:
                 profiler.enable()
-            with no_query_log():  # as load_demo loads it (no SQL log even with DEBUG on)
+            # as load_demo loads it: no SQL log even with DEBUG on, e-mails to files
+            with (no_query_log(), quiet_task_log(),
+                  mail_to_files(Path(settings.VAR_DIR) / "demo-mail")):
                 try:
                     site = demo.load(timezone.localdate(), progress=stage)
                 except TypeError:  # an older loader, for before/after comparisons
