@@ -4,8 +4,8 @@ An assessment is a snapshot: what the engine said about one SIF at one moment, f
 which inputs. Snapshots are kept so the trend of achieved PFDavg can be shown.
 
 A new snapshot is stored when the inputs change, when the verdict changes, or as a
-heartbeat once the newest one is a week old; in between, a recompute refreshes the newest
-snapshot in place (same inputs, a later evaluation date). The newest snapshot of each SIF
+heartbeat once the newest one is a week old; in between, a recompute replaces the newest
+snapshot (same inputs, a later evaluation date). The newest snapshot of each SIF
 carries ``latest`` (at most one per SIF, a partial unique index), so every "latest
 assessment" read is an index lookup whatever the length of the history.
 """

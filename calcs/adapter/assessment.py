@@ -56,14 +56,18 @@ def _digest(payload) -> str:
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()
 
 
-#: A recompute with unchanged inputs and verdict refreshes the newest snapshot in place
-#: until it is this old; then a new snapshot is stored (a point of the trend).
+#: A recompute with unchanged inputs and verdict replaces the newest snapshot until that
+#: snapshot is this old; then a new one is stored (a point of the trend).
 HEARTBEAT = dt.timedelta(days=7)
 
 
-def _row(obj, skip=()) -> tuple:
-    return tuple(getattr(obj, f.attname) for f in obj._meta.concrete_fields
-                 if f.attname not in skip)
+@functools.cache
+def _attnames(model, skip: frozenset) -> tuple[str, ...]:
+    return tuple(f.attname for f in model._meta.concrete_fields if f.attname not in skip)
+
+
+def _row(obj, skip: frozenset = frozenset()) -> tuple:
+    return tuple(map(obj.__dict__.get, _attnames(type(obj), skip)))
 
 
 @functools.lru_cache(maxsize=4096)
@@ -79,7 +83,7 @@ def inputs_digest(d: SifData, rates: RateTable, type_stats, due_on: dt.date | No
     events, the failure counts behind the field statistics of its device types, and the
     next full test. Hours in service (and so field rates) follow from these and the date,
     so the digest stays the same from one day to the next while nothing is recorded."""
-    plan_skip = set(TestPlan.DERIVED_FIELDS)
+    plan_skip = frozenset(TestPlan.DERIVED_FIELDS)
     comps = d.all_components()
     payload = {
         "sif": _row(d.sif), "site": _row(d.sif.unit.site),
@@ -228,7 +232,7 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         a.verdict = eng_verdict.judge(target_sil=sif.target_sil, error=str(exc)).as_dict()
         a.meets_target = None
         flags.append(f"Could not be calculated: {exc}")
-        a.inputs_digest = _digest({"error": str(exc), "sif": sif.pk})
+        a.inputs_digest = digest or _digest({"error": str(exc), "sif": sif.pk})
     a.flags = flags
     a.detail = detail
     return a
@@ -375,7 +379,7 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     A SIF whose inputs digest and evaluation day equal its newest assessment's is not
     recomputed (that assessment is returned). Otherwise a new snapshot is stored when the
     inputs or the verdict changed or the newest is older than ``HEARTBEAT``; else the
-    newest is refreshed in place. One bad SIF never stops the others: its assessment
+    newest is replaced (see ``_store``). One bad SIF never stops the others: its assessment
     carries the error instead.
     """
     as_of = as_of or timezone.now()
@@ -418,15 +422,6 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     return out
 
 
-#: computed_at stays: it is when the snapshot was first stored (the heartbeat's clock).
-_REFRESHED = ("as_of", "trigger", "target_pfd_avg", "target_sil",
-              "design_pfd_avg", "design_pfh_per_hour", "achieved_pfd_avg",
-              "achieved_since_service_pfd_avg", "projected_pfd_avg",
-              "observed_unavailability", "observed_since_service", "verdict", "achieved_sil",
-              "architectural_sil", "systematic_sil", "meets_target", "rate_basis", "flags",
-              "detail", "error")
-
-
 def _outcome(a: Assessment) -> tuple:
     lines = (a.verdict or {}).get("lines", [])
     return (a.meets_target, bool(a.error),
@@ -434,33 +429,30 @@ def _outcome(a: Assessment) -> tuple:
 
 
 def _store(fresh: list[Assessment], previous: dict[int, Assessment]) -> None:
-    """One transaction: refresh in place where nothing but the date moved, otherwise a new
-    newest snapshot (the SIF rows are locked so two recomputes of one SIF queue up)."""
+    """One transaction: each fresh result becomes its SIF's newest snapshot. Where only
+    the date moved (same inputs, same verdict, newest younger than ``HEARTBEAT``) it
+    replaces the newest and keeps its ``computed_at`` (when that snapshot was first
+    stored, the heartbeat's clock); otherwise the newest steps back into the history. The
+    SIF rows are locked so two recomputes of one SIF queue up."""
     if not fresh:
         return
-    new, refresh = [], []
+    replaced = []
     for a in fresh:
         prev = previous.get(a.sif_id)
         if (prev is not None and prev.inputs_digest == a.inputs_digest
                 and _outcome(prev) == _outcome(a) and a.as_of - prev.computed_at < HEARTBEAT
                 and a.as_of >= prev.as_of):
-            a.pk, a.id, a.latest, a.computed_at = prev.pk, prev.pk, True, prev.computed_at
-            refresh.append(a)
-        else:
-            a.latest = True
-            new.append(a)
+            a.computed_at = prev.computed_at
+            replaced.append(prev.pk)
+        a.latest = True
     with transaction.atomic():
         ids = sorted({a.sif_id for a in fresh})
         list(SafetyFunction.objects.filter(pk__in=ids).order_by("pk")
              .select_for_update(of=("self",)).values_list("pk", flat=True))
-        if new:
-            Assessment.objects.filter(sif_id__in=[a.sif_id for a in new], latest=True
-                                      ).update(latest=False)
-            Assessment.objects.bulk_create(new, batch_size=500)
-        if refresh:
-            for a in refresh:
-                a._state.adding, a._state.db = False, "default"
-            Assessment.objects.bulk_update(refresh, _REFRESHED, batch_size=500)
+        if replaced:
+            Assessment.objects.filter(pk__in=replaced).delete()
+        Assessment.objects.filter(sif_id__in=ids, latest=True).update(latest=False)
+        Assessment.objects.bulk_create(fresh, batch_size=500)
 
 
 def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:
