@@ -15,17 +15,20 @@ import csv
 import datetime as dt
 import io
 import re
-from collections import OrderedDict, defaultdict
+from collections import OrderedDict
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 
 from django.core.exceptions import ValidationError
 from django.db import transaction
+from django.db.models import OuterRef, Subquery
 from django.utils import timezone
-from openpyxl import Workbook, load_workbook
+from openpyxl import load_workbook
 from openpyxl.utils import get_column_letter
 
 from register import choices, services
 from register.calculations import calculations
+from register.lead import export as writers
 from register.models import (
     Component,
     ComponentResult,
@@ -69,82 +72,108 @@ def _num(value):
     return "" if value is None else value
 
 
-def export_rows(sif_queryset) -> list[dict]:
-    """The rows for these SIFs: each SIF, its components, its current signed tests."""
-    sifs = list(sif_queryset.select_related("unit").order_by("unit__code", "tag"))
+def _iso(day):
+    return day.isoformat() if day else ""
+
+
+def _sif_key(prefix: str = "") -> list[str]:
+    """The order of every stream of the export: unit code, SIF tag, SIF id."""
+    return [f"{prefix}unit__code", f"{prefix}tag", f"{prefix}id"]
+
+
+def _same_sif(stream, sif_id):
+    """The rows at the head of ``stream`` (a peekable iterator of (sif id, row)) that
+    belong to ``sif_id``; every stream is in the order of :func:`_sif_key`."""
+    while stream[0] is not None and stream[0][0] == sif_id:
+        yield stream[0][1]
+        stream[0] = next(stream[1], None)
+
+
+def _peekable(rows):
+    it = iter(rows)
+    return [next(it, None), it]
+
+
+def iter_export_rows(sif_queryset) -> Iterator[dict]:
+    """The rows for these SIFs: each SIF, its components, its current signed tests.
+
+    Three queries whatever the number of SIFs, read as plain values in chunks (a
+    server-side cursor on PostgreSQL) and merged by SIF: no model object is built."""
     ids = SafetyFunction.objects.filter(pk__in=sif_queryset.values("pk")).values("pk")
-    plans = defaultdict(list)
-    for plan in TestPlan.objects.filter(sif_id__in=ids, kind=choices.TestKind.FULL).order_by(
-            "name", "id"):
-        plans[plan.sif_id].append(plan)
-    comps = defaultdict(list)
-    for c in Component.objects.filter(subsystem__sif_id__in=ids).select_related(
-            "subsystem", "device_type").order_by("subsystem__position", "subsystem_id", "tag"):
-        comps[c.subsystem.sif_id].append(c)
-    current = TestRecord.objects.filter(in_force(), sif_id__in=ids)
-    results = defaultdict(list)
-    for r in ComponentResult.objects.filter(record__in=current).select_related(
-            "component").order_by("component__tag"):
-        results[r.record_id].append(r)
-    tests = defaultdict(list)
-    for rec in current.order_by("performed_at", "id"):
-        rec.loaded_results = results[rec.pk]
-        tests[rec.sif_id].append(rec)
-    rows = []
-    for s in sifs:
-        base = {"unit": s.unit.code, "sif_tag": s.tag}
-        plan = plans[s.pk][0] if plans[s.pk] else None
-        rows.append({**base, "record": "sif", "sif_name": s.name, "safe_state": s.safe_state,
-                     "demand_mode": s.demand_mode, "target_sil": s.target_sil,
-                     "target_pfd_avg": _num(s.target_pfd_avg), "life_stage": s.life_stage,
-                     "in_service_on": s.in_service_on.isoformat() if s.in_service_on else "",
-                     "proof_test_interval_months": plan.interval_months if plan else ""})
-        for c in comps[s.pk]:
-            sub = c.subsystem
-            rows.append({**base, "record": "component", "subsystem": sub.name,
-                         "role": sub.role, "voting": sub.voting, "beta": sub.beta,
-                         "beta_d": sub.beta_d, "component_tag": c.tag,
-                         "device_type": c.device_type.name,
-                         "in_service_on": c.in_service_on.isoformat(),
-                         "lambda_du": _num(c.lambda_du_per_hour),
-                         "lambda_dd": _num(c.lambda_dd_per_hour),
-                         "lambda_s": _num(c.lambda_s_per_hour), "rate_unit": "per hour",
-                         "proof_test_coverage": c.proof_test_coverage,
-                         "partial_test_coverage": c.partial_test_coverage})
-        for rec in tests[s.pk]:
-            at = rec.performed_at.astimezone(dt.UTC).isoformat()
-            for r in rec.loaded_results:
-                rows.append({**base, "record": "test", "component_tag": r.component.tag,
-                             "test_performed_at": at, "test_kind": rec.kind,
-                             "as_found": r.as_found, "as_left": r.as_left,
-                             "failure_mode": r.failure_mode,
-                             "failure_description": r.failure_description,
-                             "work_done": r.work_done, "remarks": rec.remarks})
-    return [{col: row.get(col, "") for col in COLUMNS} for row in rows]
+    interval = TestPlan.objects.filter(sif_id=OuterRef("pk"), kind=choices.TestKind.FULL
+                                       ).order_by("name", "id").values("interval_months")[:1]
+    sifs = (SafetyFunction.objects.filter(pk__in=ids).annotate(interval=Subquery(interval))
+            .order_by(*_sif_key()).values_list(
+                "pk", "unit__code", "tag", "name", "safe_state", "demand_mode", "target_sil",
+                "target_pfd_avg", "life_stage", "in_service_on", "interval"))
+    comps = (Component.objects.filter(subsystem__sif_id__in=ids)
+             .order_by(*_sif_key("subsystem__sif__"), "subsystem__position", "subsystem_id",
+                       "tag")
+             .values_list("subsystem__sif_id", "subsystem__name", "subsystem__role",
+                          "subsystem__voting", "subsystem__beta", "subsystem__beta_d", "tag",
+                          "device_type__name", "in_service_on", "lambda_du_per_hour",
+                          "lambda_dd_per_hour", "lambda_s_per_hour", "proof_test_coverage",
+                          "partial_test_coverage"))
+    results = (ComponentResult.objects.filter(in_force("record__"), record__sif_id__in=ids)
+               .order_by(*_sif_key("record__sif__"), "record__performed_at", "record_id",
+                         "component__tag")
+               .values_list("record__sif_id", "component__tag", "record__performed_at",
+                            "record__kind", "as_found", "as_left", "failure_mode",
+                            "failure_description", "work_done", "record__remarks"))
+    comp_stream = _peekable((r[0], r) for r in comps.iterator(chunk_size=writers.CHUNK))
+    test_stream = _peekable((r[0], r) for r in results.iterator(chunk_size=writers.CHUNK))
+    blank = dict.fromkeys(COLUMNS, "")
+    for (pk, unit, tag, name, safe_state, mode, sil, target, stage, in_service,
+         months) in sifs.iterator(chunk_size=writers.CHUNK):
+        base = {"unit": unit, "sif_tag": tag}
+        yield {**blank, **base, "record": "sif", "sif_name": name, "safe_state": safe_state,
+               "demand_mode": mode, "target_sil": sil, "target_pfd_avg": _num(target),
+               "life_stage": stage, "in_service_on": _iso(in_service),
+               "proof_test_interval_months": _num(months)}
+        for (_, sub, role, voting, beta, beta_d, comp_tag, dtype, since, du, dd, ls, ptc,
+             partial) in _same_sif(comp_stream, pk):
+            yield {**blank, **base, "record": "component", "subsystem": sub, "role": role,
+                   "voting": voting, "beta": beta, "beta_d": beta_d,
+                   "component_tag": comp_tag, "device_type": dtype,
+                   "in_service_on": _iso(since), "lambda_du": _num(du),
+                   "lambda_dd": _num(dd), "lambda_s": _num(ls), "rate_unit": "per hour",
+                   "proof_test_coverage": ptc, "partial_test_coverage": partial}
+        for (_, comp_tag, at, kind, found, left, mode_, description, work,
+             remarks) in _same_sif(test_stream, pk):
+            yield {**blank, **base, "record": "test", "component_tag": comp_tag,
+                   "test_performed_at": at.astimezone(dt.UTC).isoformat(), "test_kind": kind,
+                   "as_found": found, "as_left": left, "failure_mode": mode_,
+                   "failure_description": description, "work_done": work,
+                   "remarks": remarks}
 
 
-def to_csv(rows: list[dict]) -> bytes:
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=COLUMNS, lineterminator="\n")
-    writer.writeheader()
+def export_rows(sif_queryset) -> list[dict]:
+    """:func:`iter_export_rows` as a list."""
+    return list(iter_export_rows(sif_queryset))
+
+
+def _cells(rows: Iterable[dict], empty=""):
     for row in rows:
-        writer.writerow({k: (repr(v) if isinstance(v, float) else v) for k, v in row.items()})
-    return buf.getvalue().encode("utf-8-sig")
+        yield [empty if row[c] == "" else row[c] for c in COLUMNS]
 
 
-def to_xlsx(rows: list[dict]) -> bytes:
-    wb = Workbook()
-    ws = wb.active
-    ws.title = SHEET_NAME
-    ws.append(COLUMNS)
-    for row in rows:
-        ws.append([None if row[c] == "" else row[c] for c in COLUMNS])
-    ws.freeze_panes = "A2"
-    for i, col in enumerate(COLUMNS, start=1):
-        ws.column_dimensions[get_column_letter(i)].width = max(12, len(col) + 2)
-    buf = io.BytesIO()
-    wb.save(buf)
-    return buf.getvalue()
+def csv_chunks(rows: Iterable[dict]) -> Iterator[bytes]:
+    """The table as CSV (UTF-8 with a byte-order mark), in chunks for streaming."""
+    return writers.csv_stream(COLUMNS, _cells(rows))
+
+
+def xlsx_file(rows: Iterable[dict]):
+    """The table as a workbook (sheet ``Register``) in an open temporary file."""
+    return writers.xlsx_file(SHEET_NAME, COLUMNS, _cells(rows, None))
+
+
+def to_csv(rows: Iterable[dict]) -> bytes:
+    return b"".join(csv_chunks(rows))
+
+
+def to_xlsx(rows: Iterable[dict]) -> bytes:
+    with xlsx_file(rows) as out:
+        return out.read()
 
 
 # ---------------------------------------------------------------------------------------

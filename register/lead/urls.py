@@ -9,6 +9,7 @@ urlpatterns = [
     path("", views.home, name="home"),
     path("sifs/", views.sif_list, name="sif_list"),
     path("sifs/export.<str:fmt>", views.sif_export, name="sif_export"),
+    path("sifs/list.<str:fmt>", views.sif_list_export, name="sif_list_export"),
     path("sifs/<int:pk>/", views.sif_detail, name="sif_detail"),
     path("sifs/<int:pk>/chart/<str:which>.svg", views.sif_chart, name="sif_chart"),
     path("tests/<int:pk>/", views.test_detail, name="test_detail"),

@@ -10,7 +10,13 @@ from urllib.parse import urlencode
 from django.contrib.auth.decorators import login_required
 from django.core.paginator import Paginator
 from django.db.models import BooleanField, Exists, ExpressionWrapper, OuterRef
-from django.http import Http404, HttpResponse
+from django.http import (
+    FileResponse,
+    Http404,
+    HttpResponse,
+    HttpResponseBadRequest,
+    StreamingHttpResponse,
+)
 from django.shortcuts import get_object_or_404, render
 from django.urls import reverse
 from django.utils import timezone
@@ -19,6 +25,7 @@ from register import changes as changes_mod
 from register import charts, choices, presenters
 from register.calculations import calculations
 from register.days import today as site_today
+from register.lead import export
 from register.lead.filters import DEMAND_FLAG_TEXT, ESCALATED_STATES, SifFilter, describe
 from register.models import (
     Bypass,
@@ -36,7 +43,7 @@ from register.models import (
 )
 from register.operations.page import sif_operations
 from register.people import person_name
-from register.permissions import Action, can, require
+from register.permissions import Action, can, can_somewhere, require
 from register.schedule.due import (
     LATE_STATES,
     on_time_rate,
@@ -217,27 +224,55 @@ def sif_list(request):
     })
 
 
-@login_required
-def sif_export(request, fmt):
-    from register.lead import spreadsheet
-
+def _export_filter(request, fmt):
+    """The list's filter (``SifFilter``, the one filter rule) over the SIFs the user may
+    export (the gate's ``EXPORT`` right); 403 without that right anywhere, 404 for an
+    unknown format, 400 for filter values the form refuses (nothing is exported)."""
     if fmt not in ("csv", "xlsx"):
         raise Http404
-    f = SifFilter(request.GET, request=request)
-    allowed = [s.pk for s in Site.objects.restrict(request.user)
-               if can(request.user, Action.EXPORT, s.pk)]
-    if not allowed:
+    if not can_somewhere(request.user, Action.EXPORT):
         require(request.user, Action.EXPORT, -1)
-    qs = f.qs.filter(unit__site_id__in=allowed)
-    rows = spreadsheet.export_rows(qs)
+    f = SifFilter(request.GET, request=request, queryset=SafetyFunction.objects.restrict(
+        request.user, Action.EXPORT))
+    if not f.form.is_valid():
+        return f, HttpResponseBadRequest(
+            "The list's filters are not valid: " + f.form.errors.as_text(),
+            content_type="text/plain; charset=utf-8")
+    return f, None
+
+
+def _file_response(fmt, name, csv_chunks=None, xlsx=None):
     stamp = timezone.localdate().isoformat()
+    filename = f"{name}-{stamp}.{fmt}"
     if fmt == "csv":
-        resp = HttpResponse(spreadsheet.to_csv(rows), content_type="text/csv; charset=utf-8")
-    else:
-        resp = HttpResponse(spreadsheet.to_xlsx(rows), content_type=(
-            "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"))
-    resp["Content-Disposition"] = f'attachment; filename="sif-register-{stamp}.{fmt}"'
-    return resp
+        resp = StreamingHttpResponse(csv_chunks(), content_type=export.CSV_TYPE)
+        resp["Content-Disposition"] = f'attachment; filename="{filename}"'
+        return resp
+    return FileResponse(xlsx(), as_attachment=True, filename=filename,
+                        content_type=export.XLSX_TYPE)
+
+
+@login_required
+def sif_export(request, fmt):
+    """The register table of the listed SIFs in the import's format (round trip)."""
+    from register.lead import spreadsheet
+
+    f, refused = _export_filter(request, fmt)
+    if refused:
+        return refused
+    rows = spreadsheet.iter_export_rows(f.qs)
+    return _file_response(fmt, "sif-register", lambda: spreadsheet.csv_chunks(rows),
+                          lambda: spreadsheet.xlsx_file(rows))
+
+
+@login_required
+def sif_list_export(request, fmt):
+    """The register list as the page shows it, for people to read (same filter, order)."""
+    f, refused = _export_filter(request, fmt)
+    if refused:
+        return refused
+    return _file_response(fmt, "sif-list", lambda: export.people_csv(f),
+                          lambda: export.people_xlsx(f))
 
 
 # ---------------------------------------------------------------------------------------
@@ -343,21 +378,28 @@ def sif_chart(request, pk, which):
                             .select_related("unit__site"), pk=pk)
     if which not in ("pfd", "trend"):
         raise Http404
-    d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
-    target = calculations().target_pfd(d)
-    if which == "pfd":
-        end = timezone.now()
-        start = end - dt.timedelta(days=5 * 365)
-        try:
-            times, values = calculations().pfd_series_for(sif, start, end, points=400)
-        except calculations().EngineError:
-            times, values = [], []
-        latest = calculations().latest_assessments([sif.pk]).get(sif.pk)
-        episodes = presenters.observed_episodes(latest.detail if latest else None)
-        svg = charts.pfd_chart(times, values, target, sif.tag, episodes=episodes)
-    else:
+    latest = calculations().latest_assessments([sif.pk]).get(sif.pk)
+
+    def draw():
+        d = calculations().load(SafetyFunction.objects.filter(pk=sif.pk))[0]
+        target = calculations().target_pfd(d)
+        if which == "pfd":
+            end = timezone.now()
+            start = end - dt.timedelta(days=5 * 365)
+            try:
+                times, values = calculations().pfd_series_for(sif, start, end, points=400)
+            except calculations().EngineError:
+                times, values = [], []
+            episodes = presenters.observed_episodes(latest.detail if latest else None)
+            return charts.pfd_chart(times, values, target, sif.tag, episodes=episodes)
         points = calculations().Assessment.objects.trend_points(sif.pk, 500)
-        svg = charts.trend_chart(points, target, sif.tag)
+        return charts.trend_chart(points, target, sif.tag)
+
+    # The PFD(t) window ends today; the trend grows with every stored assessment.
+    svg = charts.cached_chart(which, latest.inputs_digest if latest else None, draw,
+                              charts.CHART_SIZE, sif.tag,
+                              timezone.now().date() if which == "pfd" else getattr(
+                                  latest, "pk", None))
     resp = HttpResponse(svg, content_type="image/svg+xml")
     resp["Cache-Control"] = "private, max-age=60"
     return resp
@@ -379,5 +421,6 @@ __all__ = [
     "sif_detail",
     "sif_export",
     "sif_list",
+    "sif_list_export",
     "test_detail",
 ]

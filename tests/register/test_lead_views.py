@@ -151,11 +151,12 @@ def test_list_filters_and_search(client, plant):
 
 def test_list_export_follows_the_filter(client, plant):
     client.force_login(plant["auditor"])
-    body = client.get("/sifs/export.csv?target_sil=2").content.decode("utf-8-sig")
+    body = b"".join(client.get("/sifs/export.csv?target_sil=2").streaming_content
+                    ).decode("utf-8-sig")
     sif_rows = [line for line in body.splitlines() if line.startswith("sif,")]
     assert {line.split(",")[2] for line in sif_rows} == {"S-OVER", "S-SOON"}
     resp = client.get("/sifs/export.xlsx?target_sil=2")
-    assert resp.status_code == 200 and resp.content[:2] == b"PK"
+    assert resp.status_code == 200 and b"".join(resp.streaming_content)[:2] == b"PK"
 
 
 def test_technicians_do_not_export(client, plant):

@@ -61,6 +61,7 @@ PAGES = [
     ("home", lambda p, w: "/", ALL),
     ("sif list", lambda p, w: "/sifs/", ALL),
     ("sif export csv", lambda p, w: "/sifs/export.csv", EXPORT_LIST),
+    ("sif list export xlsx", lambda p, w: "/sifs/list.xlsx", EXPORT_LIST),
     ("sif detail", lambda p, w: f"/sifs/{p.sif.pk}/", SITE_READ),
     ("sif chart", lambda p, w: f"/sifs/{p.sif.pk}/chart/pfd.svg", SITE_READ),
     ("test detail", lambda p, w: f"/tests/{p.signed.pk}/", SITE_READ),

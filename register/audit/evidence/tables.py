@@ -16,6 +16,7 @@ from register.audit.evidence.collect import (
     Collected,
     _iso,
 )
+from register.lead.export import neutralise
 from register.models import (
     EvidencePack,
 )
@@ -31,8 +32,9 @@ def _csv(rows: list[dict], columns: list[str]) -> bytes:
     w = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
     w.writeheader()
     for row in rows:
-        w.writerow({k: (json.dumps(v, ensure_ascii=False) if isinstance(v, (list, dict))
-                        else ("" if v is None else v)) for k, v in row.items()})
+        w.writerow({k: neutralise(json.dumps(v, ensure_ascii=False)
+                                  if isinstance(v, (list, dict)) else ("" if v is None else v))
+                    for k, v in row.items()})
     return buf.getvalue().encode("utf-8")
 
 
