@@ -1,12 +1,17 @@
 from django.contrib import admin
+from django.templatetags.static import static
 from django.urls import include, path
+from django.views.generic import RedirectView
 
+from register.accounts.landing import landing
 from register.accounts.views import ThrottledAdminLoginView, ThrottledLoginView
 
 urlpatterns = [
     path("admin/login/", ThrottledAdminLoginView.as_view(), name="admin_login"),
     path("admin/", admin.site.urls),
     path("accounts/login/", ThrottledLoginView.as_view(), name="login"),
+    path("start/", landing, name="landing"),
+    path("favicon.ico", RedirectView.as_view(url=static("favicon.svg"), permanent=True)),
     path("accounts/", include("django.contrib.auth.urls")),
     path("field/", include("register.field.urls")),
     path("deferrals/", include("register.schedule.urls")),

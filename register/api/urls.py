@@ -3,12 +3,23 @@
 from pathlib import Path
 
 import drf_spectacular_sidecar
+from django.contrib.auth.views import redirect_to_login
 from django.urls import include, path
 from django.views.static import serve
 from drf_spectacular.views import SpectacularAPIView, SpectacularSwaggerView
 from rest_framework.routers import DefaultRouter
 
 from register.api import views
+
+_swagger = SpectacularSwaggerView.as_view(url_name="api:schema")
+
+
+def docs(request, *args, **kwargs):
+    """The documentation page; signed out, the sign-in page (then back here), not a bare
+    401."""
+    if not request.user.is_authenticated:
+        return redirect_to_login(request.get_full_path())
+    return _swagger(request, *args, **kwargs)
 
 router = DefaultRouter()
 router.register("sites", views.SiteViewSet, basename="site")
@@ -36,7 +47,7 @@ urlpatterns = [
     path("token/", views.ObtainToken.as_view(), name="token"),
     path("test-results/bulk/", views.BulkTestResults.as_view(), name="bulk-results"),
     path("schema/", SpectacularAPIView.as_view(), name="schema"),
-    path("docs/", SpectacularSwaggerView.as_view(url_name="api:schema"), name="docs"),
+    path("docs/", docs, name="docs"),
     path("docs/assets/<path:path>", serve, {"document_root": SWAGGER_ASSETS},
          name="docs-assets"),
     path("", include(router.urls)),

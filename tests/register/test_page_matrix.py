@@ -40,6 +40,8 @@ DRAFT_PAGE = ((403, 200, 403, 403, 404, LOGIN), (404, 404, 404, 404, 200, LOGIN)
 RECORDERS = ((200, 200, 302, 403, 200, LOGIN),) * 2
 VERIFIERS = ((200, 403, 200, 403, 200, LOGIN),) * 2
 RECORD_PAGE = ((200, 200, 403, 403, 404, LOGIN), (404, 404, 404, 404, 200, LOGIN))
+# after signing in: on to each person's start page (tests/register/test_role_pages.py)
+ONWARD = ((302,) * 6,) * 2
 
 # Forms that only accept POST, posted empty (password missing): refused or shown again
 # with errors (200/400), never carried out: the chain does not move.
@@ -59,6 +61,7 @@ DISCARD = {"lead": 403, "technician": None, "verifier": 403, "auditor": 403,
 # (name, url(place, world), expected)
 PAGES = [
     ("home", lambda p, w: "/", ALL),
+    ("landing", lambda p, w: "/start/", ONWARD),
     ("sif list", lambda p, w: "/sifs/", ALL),
     ("sif export csv", lambda p, w: "/sifs/export.csv", EXPORT_LIST),
     ("sif list export xlsx", lambda p, w: "/sifs/list.xlsx", EXPORT_LIST),
