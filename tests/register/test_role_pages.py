@@ -98,3 +98,22 @@ def test_the_favicon_is_there():
     resp = Client().get("/favicon.ico")
     assert resp.status_code == 301 and resp["Location"].endswith("/favicon.svg")
     assert finders.find("favicon.svg")
+
+
+def test_the_sif_page_links_to_its_past(people):
+    from register.models import PlantUnit
+
+    sif = f.sif(PlantUnit.objects.first())
+    client = Client()
+    client.force_login(people["auditor"])
+    body = client.get(f"/sifs/{sif.pk}/").content.decode()
+    assert f'href="/audit/sifs/{sif.pk}/as-of/"' in body
+
+
+def test_the_field_pages_show_the_same_menu(people):
+    client = Client()
+    client.force_login(people["technician"])
+    nav = client.get("/field/").content.decode().split('<nav aria-label="Main">')[1]
+    nav = nav.split("</nav>")[0]
+    assert "My tests" in nav and "Operations" in nav
+    assert "To countersign" not in nav and "Evidence" not in nav and "Import" not in nav
