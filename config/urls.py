@@ -1,7 +1,7 @@
 from django.contrib import admin
+from django.shortcuts import redirect
 from django.templatetags.static import static
 from django.urls import include, path
-from django.views.generic import RedirectView
 
 from register.accounts.landing import landing
 from register.accounts.views import ThrottledAdminLoginView, ThrottledLoginView
@@ -11,7 +11,7 @@ urlpatterns = [
     path("admin/", admin.site.urls),
     path("accounts/login/", ThrottledLoginView.as_view(), name="login"),
     path("start/", landing, name="landing"),
-    path("favicon.ico", RedirectView.as_view(url=static("favicon.svg"), permanent=True)),
+    path("favicon.ico", lambda request: redirect(static("favicon.svg"), permanent=True)),
     path("accounts/", include("django.contrib.auth.urls")),
     path("field/", include("register.field.urls")),
     path("deferrals/", include("register.schedule.urls")),

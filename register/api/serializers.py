@@ -412,6 +412,9 @@ class CloseBypassSerializer(Strict):
 class DeferralSerializer(LedgerModelSerializer):
     due_on = serializers.DateField(read_only=True, help_text=(
         "The due date being deferred: the plan's current due date, set by the server."))
+    # the service's rule (after today, at most one plan interval ahead) is stricter than
+    # the general date window and explains itself; the model still checks the window
+    proposed_on = serializers.DateField()
 
     class Meta:
         model = Deferral
@@ -425,6 +428,8 @@ class DeferralSerializer(LedgerModelSerializer):
 
 class DecideSerializer(Strict):
     approve = serializers.BooleanField()
+    projected_pfd_avg = serializers.FloatField(read_only=True, help_text=(
+        "Computed by the server when the decision is recorded; a value sent is ignored."))
     note = text(required=False, allow_blank=True, default="")
 
 
