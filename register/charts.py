@@ -17,6 +17,7 @@ import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.dates as mdates
+from django.core.cache import cache
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
@@ -27,6 +28,7 @@ from register.calculations import calculations
 BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
 BAND_GREY = {1: "#f2f2f2", 2: "#e4e4e4", 3: "#d6d6d6", 4: "#c8c8c8"}
 WIDTH_IN, HEIGHT_IN = 9.0, 3.6
+CHART_SIZE = (WIDTH_IN, HEIGHT_IN)
 #: The pack's charts: sized for an A4 page, rasterised at print resolution.
 PACK_WIDTH_IN, PACK_HEIGHT_IN, PACK_DPI = 7.2, 2.8, 200
 #: Observed episodes: vertical bands, hatched unlike any SIL band.
@@ -199,3 +201,29 @@ def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],
     if points:
         ax.legend(loc="lower right", fontsize=8, framealpha=1)
     return _svg(fig)
+
+
+#: How long a drawn chart stays cached. The key names everything the drawing depends on,
+#: so a change of inputs misses the cache at once; the time limit only frees space.
+CHART_CACHE_SECONDS = 7 * 24 * 3600
+
+
+def chart_cache_key(kind: str, digest: str, size=CHART_SIZE, *extra) -> str:
+    """The cache key of one chart: its kind, size, the assessment's inputs digest and
+    anything else the drawing depends on (the window's end day, the newest snapshot)."""
+    parts = [kind, f"{size[0]}x{size[1]}", digest, *(str(x) for x in extra)]
+    return "chart:" + ":".join(parts)
+
+
+def cached_chart(kind: str, digest: str | None, draw, size=(WIDTH_IN, HEIGHT_IN),
+                 *extra) -> bytes:
+    """``draw()`` once per key (see ``chart_cache_key``); without a digest (no assessment
+    stored yet) the chart is drawn every time."""
+    if not digest:
+        return draw()
+    key = chart_cache_key(kind, digest, size, *extra)
+    chart = cache.get(key)
+    if chart is None:
+        chart = draw()
+        cache.set(key, chart, CHART_CACHE_SECONDS)
+    return chart

@@ -28,6 +28,7 @@ import decimal
 import functools
 import hashlib
 import json
+import logging
 import uuid
 from dataclasses import dataclass, field
 
@@ -39,6 +40,8 @@ from register.models import GENESIS_HASH, ChainEntry, ChainHead
 from register.people import person_name
 
 HEAD_PK = 1
+
+log = logging.getLogger(__name__)
 
 
 # ---------------------------------------------------------------------------------------
@@ -327,6 +330,39 @@ def verify_chain() -> VerifyResult:
                 break
     return VerifyResult(ok=first is None, entries=count, head_seq=head_seq,
                         head_hash=head_hash, history_rows=total_rows, first_break=first)
+
+
+# ---------------------------------------------------------------------------------------
+# Attachments: the file on disk against the SHA-256 recorded at upload
+# ---------------------------------------------------------------------------------------
+
+
+def file_sha256(fieldfile) -> str | None:
+    """SHA-256 of a stored file, streamed; None when the file is missing."""
+    digest = hashlib.sha256()
+    try:
+        with fieldfile.storage.open(fieldfile.name, "rb") as handle:
+            for chunk in iter(lambda: handle.read(1 << 20), b""):
+                digest.update(chunk)
+    except FileNotFoundError:
+        return None
+    return digest.hexdigest()
+
+
+def attachment_altered(att) -> str:
+    """Why an attachment's stored file no longer is the one uploaded ("" when it is):
+    missing, or its SHA-256 differs from the recorded one. Logged when not intact."""
+    actual = file_sha256(att.file)
+    if actual is None:
+        why = "The file is missing from storage."
+    elif actual != att.sha256:
+        why = (f"The stored file hashes to {actual} but {att.sha256} was recorded at "
+               "upload: it was changed after it was attached.")
+    else:
+        return ""
+    log.error("attachment %s (%s) of record %s: %s", att.pk, att.file.name, att.record_id,
+              why)
+    return why
 
 
 # ---------------------------------------------------------------------------------------

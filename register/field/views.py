@@ -20,6 +20,7 @@ from django.utils import timezone
 from django.views.decorators.http import require_GET, require_POST
 
 from register import choices, services
+from register.audit.chain import attachment_altered
 from register.calculations import calculations
 from register.field.forms import (
     ComponentForm,
@@ -534,6 +535,11 @@ def attachment_download(request, pk):
         handle = att.file.open("rb")
     except FileNotFoundError as exc:
         raise Http404("The file is missing from storage.") from exc
+    altered = attachment_altered(att)
+    if altered:
+        handle.close()
+        return render(request, "register/audit/attachment_altered.html",
+                      {"att": att, "why": altered}, status=410)
     response = FileResponse(handle, as_attachment=True, filename=att.original_name,
                             content_type=att.content_type or "application/octet-stream")
     response["X-Content-Type-Options"] = "nosniff"
