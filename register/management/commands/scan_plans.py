@@ -44,7 +44,7 @@ class Command(BaseCommand):
         c = result.counts
         self.stdout.write(
             f"As of {shown}: {sum(c.values())} test plans: "
-            + ", ".join(f"{c.get(s, 0)} {PlanState(s).label.lower()}" for s in (
+            + "; ".join(f"{c.get(s, 0)} {PlanState(s).label.lower()}" for s in (
                 PlanState.ON_TRACK, PlanState.DUE_SOON, PlanState.OVERDUE,
                 PlanState.ESCALATED, PlanState.ESCALATED_2)))
         states = result.bypass_states.values()
