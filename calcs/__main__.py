@@ -45,17 +45,22 @@ def main(argv: list[str] | None = None) -> int:
     except OSError as exc:
         return _fail(f"{label}: cannot be read ({exc.strerror or exc})")
     try:
-        data = json.loads(text)
+        data = json.loads(text)  # NaN / Infinity are refused with their field by check_case
     except json.JSONDecodeError as exc:
         return _fail(f"{label}: not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})")
+    except RecursionError:
+        return _fail(f"{label}: the case is nested too deeply")
 
     try:
         from datetime import date
 
         from calcs.engine.case import evaluate_case
         from calcs.engine.errors import InputError
+        from calcs.engine.history_case import check_case
 
-        result = evaluate_case(data, today=date.today())
+        today = date.today()
+        check_case(data, today=today)
+        result = evaluate_case(data, today=today)
     except InputError as exc:
         return _fail(f"{exc.field}: {exc.message}")
     except RecursionError:

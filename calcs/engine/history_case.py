@@ -3,6 +3,7 @@ evaluate the achieved PFDavg (``history``) and the observed unavailability (``ob
 
 from __future__ import annotations
 
+import difflib
 from datetime import date, datetime, timedelta
 from typing import Any
 
@@ -21,8 +22,99 @@ from calcs.engine.history import (
     achieved_pfd,
     one_year_before,
 )
-from calcs.engine.units import check_not_after, check_rate
+from calcs.engine.units import (
+    check_date_window,
+    check_not_after,
+    check_number,
+    check_rate,
+)
 from calcs.engine.voting import parse_voting
+
+# --------------------------------------------------------------------------
+# The keys a case may hold, each with what it is: a quantity of
+# calcs.engine.units.BOUNDS (checked there), "date", "text", "bool", "list" of
+# objects of the schema given, or "object" of the schema given.
+
+_TEXT, _DATE, _BOOL, _ANY = "text", "date", "bool", "any"
+_TEST_KEYS: dict[str, Any] = {
+    "date": _DATE, "kind": _TEXT, "coverage": "fraction", "failed": _BOOL,
+    "failed_channels": _ANY, "replaced": _BOOL, "restore_hours": "repair_hours",
+    "notes": _TEXT, "description": _TEXT,
+}
+_SUBSYSTEM_KEYS: dict[str, Any] = {
+    "name": _TEXT, "voting": _TEXT, "tag": _TEXT, "description": _TEXT, "notes": _TEXT,
+    "lambda_du_per_hour": "rate_per_hour", "lambda_dd_per_hour": "rate_per_hour",
+    "lambda_sd_per_hour": "safe_rate_per_hour", "lambda_s_per_hour": "safe_rate_per_hour",
+    "beta": "fraction", "beta_d": "fraction", "mttr_hours": "repair_hours",
+    "mrt_hours": "repair_hours", "proof_test_interval_hours": "interval_hours",
+    "proof_test_coverage": "fraction", "mission_time_hours": "interval_hours",
+    "partial_test_interval_hours": "interval_hours", "partial_test_coverage": "fraction",
+    "sff": "fraction", "hft_type": _TEXT, "systematic_capability": _ANY,
+    "overhaul_date": _DATE, "tests": ("list", _TEST_KEYS),
+}
+_PERIOD_KEYS: dict[str, Any] = {"start": _DATE, "end": _DATE}
+CASE_KEYS: dict[str, Any] = {
+    "demand_mode": _TEXT, "method": _TEXT, "architecture_route": _TEXT,
+    "target_pfd_avg": "target_pfd", "target_pfh_per_hour": "target_pfh_per_hour",
+    "subsystems": ("list", _SUBSYSTEM_KEYS), "in_service": _DATE, "as_of": _DATE,
+    "bypasses": ("list", {**_PERIOD_KEYS, "reason": _TEXT, "notes": _TEXT}),
+    "window": ("object", _PERIOD_KEYS), "name": _TEXT, "tag": _TEXT,
+    "description": _TEXT, "notes": _TEXT,
+}
+
+
+def check_case(data: Any, *, today: date | None = None) -> None:
+    """Refuse what a case must not hold, before it is evaluated: a key the format does
+    not know (naming the nearest known one), a number that is not finite or outside its
+    plausible range (``calcs.engine.units.BOUNDS``), a date outside the plausible window,
+    a bypass or window that ends before it starts. Raises :class:`InputError`."""
+    if not isinstance(data, dict):
+        raise InputError("case", f"must be a JSON object, got {type(data).__name__}")
+    _check_keys(data, CASE_KEYS, "", today)
+    periods = [(f"bypasses[{i}]", b) for i, b in enumerate(data.get("bypasses") or [])]
+    periods.append(("window", data.get("window")))
+    for where, period in periods:
+        if not isinstance(period, dict) or not period.get("start") or not period.get("end"):
+            continue
+        start = _parse_when(period["start"], f"{where}.start")
+        end = _parse_when(period["end"], f"{where}.end")
+        if end < start:
+            raise InputError(f"{where}.end", f"{end.isoformat()} is before the start "
+                                             f"({start.isoformat()})")
+
+
+def _check_keys(d: dict, schema: dict, path: str, today: date | None) -> None:
+    for key, value in d.items():
+        where = f"{path}.{key}" if path else str(key)
+        if key not in schema:
+            near = difflib.get_close_matches(str(key), list(schema), n=1)
+            hint = f"; did you mean \"{near[0]}\"?" if near else ""
+            raise InputError(where, f"unknown key{hint}")
+        kind = schema[key]
+        if value is None or kind == _ANY:
+            continue
+        if isinstance(kind, tuple):
+            shape, inner = kind
+            items = value if shape == "list" else [value]
+            if shape == "list" and not isinstance(value, list):
+                raise InputError(where, "must be a list")
+            for i, item in enumerate(items):
+                at = f"{where}[{i}]" if shape == "list" else where
+                if not isinstance(item, dict):
+                    raise InputError(at, "must be an object")
+                _check_keys(item, inner, at, today)
+        elif kind == _DATE:
+            if value != "":
+                check_date_window(_parse_when(value, where), where, today=today)
+        elif kind == _TEXT:
+            if not isinstance(value, str):
+                raise InputError(where, f"must be a text, got {value!r}")
+        elif kind == _BOOL:
+            if not isinstance(value, bool):
+                raise InputError(where, "must be true or false")
+        else:
+            check_number(value, kind, where)
+
 
 # --------------------------------------------------------------------------
 # JSON case
@@ -172,6 +264,9 @@ def evaluate_case_history(data: dict, *, today: date | None = None) -> dict:
             raise InputError(f"{bp}.start", "is required")
         bs = _parse_when(b["start"], f"{bp}.start")
         be = None if b.get("end") in (None, "") else _parse_when(b["end"], f"{bp}.end")
+        if be is not None and be < bs:
+            raise InputError(f"{bp}.end", f"{be.isoformat()} is before the start "
+                                          f"({bs.isoformat()})")
         bypasses.append((bs, be))
         dated.append((f"{bp}.start", bs))
         if be is not None:

@@ -84,8 +84,9 @@ class Bound:
 
     def text(self) -> str:
         unit = f" {self.unit}" if self.unit else ""
-        first = "more than" if self.lo_open else "from"
-        return f"{first} {self.lo:g} to {self.hi:g}{unit}"
+        if self.lo_open:
+            return f"more than {self.lo:g} and at most {self.hi:g}{unit}"
+        return f"between {self.lo:g} and {self.hi:g}{unit}"
 
 
 #: Longest interval a plan, a mission time or a test interval can state: 100 years.
@@ -145,8 +146,7 @@ def check_number(value: object, quantity: str, field: str) -> float:
         raise InputError(field, f"must be a finite number, got {value!r}")
     below = x <= bound.lo if bound.lo_open else x < bound.lo
     if below or x > bound.hi:
-        raise InputError(field, f"{x:g} is outside the plausible range "
-                                f"({bound.text()})")
+        raise InputError(field, f"must be {bound.text()}, got {x:g}")
     return x
 
 

@@ -161,3 +161,84 @@ def test_history_mode_adds_the_achieved_pfd(tmp_path):
     out = json.loads(proc.stdout)
     assert 0 < out["achieved_pfd_avg"] < 1
     assert "achieved_pfd_avg" in out["subsystems"][0]
+
+
+# --- Hostile and careless cases: refused with exit 2 and one line naming the key --------
+
+HISTORY = {**GOOD, "in_service": "2020-01-01", "as_of": "2024-01-01"}
+
+
+def _hist(**top):
+    data = json.loads(json.dumps(HISTORY))
+    data.update(top)
+    return data
+
+
+def _main(tmp_path, capsys, data):
+    """The command's entry point in this process (fast); returns (status, stdout, stderr)."""
+    from calcs.__main__ import main
+
+    status = main([write(tmp_path, data)])
+    out, err = capsys.readouterr()
+    return status, out, err
+
+
+@pytest.mark.parametrize(
+    "data, needle",
+    [
+        # a misspelt key is named with the nearest known one, not replaced by a default
+        (_bad(sub0_proof_test_covrage=0.6),
+         'subsystems[0].proof_test_covrage: unknown key; did you mean "proof_test_coverage"'),
+        (_bad(target_pdf_avg=1e-3), 'target_pdf_avg: unknown key; did you mean "target_pfd_avg"'),
+        (_bad(zzz=1), "zzz: unknown key"),
+        (_hist(bypasses=[{"start": "2022-01-01", "ende": "2022-01-02"}]),
+         'bypasses[0].ende: unknown key; did you mean "end"'),
+        (_hist(window={"start": "2023-01-01", "edn": "2024-01-01"}), "window.edn: unknown key"),
+        # a bypass or a window that ends before it starts
+        (_hist(bypasses=[{"start": "2022-01-02", "end": "2022-01-01"}]),
+         "bypasses[0].end: 2022-01-01T00:00:00 is before the start"),
+        (_hist(window={"start": "2023-06-01", "end": "2023-01-01"}), "window.end"),
+        # numbers: finite and inside their range (calcs.engine.units.BOUNDS)
+        (_bad(sub0_mttr_hours=1e308), "subsystems[0].mttr_hours: must be between 0 and 8760 h"),
+        (_bad(sub0_proof_test_interval_hours=0), "subsystems[0].proof_test_interval_hours"),
+        (_bad(sub0_mrt_hours=-1), "subsystems[0].mrt_hours"),
+        (_bad(target_pfd_avg=float("inf")), "target_pfd_avg: must be a finite number"),
+        (_bad(target_pfd_avg="0.01"), "target_pfd_avg: must be a number"),
+        # dates inside the plausible window
+        (_hist(in_service="0001-01-01"), "in_service: 0001-01-01 is before 1960-01-01"),
+        (_hist(as_of="9999-12-31"), "as_of: 9999-12-31 is more than 10 years ahead"),
+        (_hist(in_service="the spring"), "in_service"),
+        # text where text is meant
+        (_bad(sub0_name=7), "subsystems[0].name: must be a text"),
+    ],
+)
+def test_careless_case_is_refused(tmp_path, capsys, data, needle):
+    status, out, err = _main(tmp_path, capsys, data)
+    assert status == 2
+    assert out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert needle in lines[0], lines[0]
+
+
+def test_the_same_case_spelt_right_runs(tmp_path, capsys):
+    """The refusals above are of the fault, not of the case: spelt right, it runs."""
+    data = _bad(sub0_proof_test_coverage=0.6, sub0_mission_time_hours=175200)
+    status, out, _ = _main(tmp_path, capsys, data)
+    assert status == 0
+    assert json.loads(out)["pfd_avg"] > 0
+    hist = _hist(bypasses=[{"start": "2022-01-01", "end": "2022-01-02"}])
+    status, out, _ = _main(tmp_path, capsys, hist)
+    assert status == 0
+    assert json.loads(out)["achieved_pfd_avg"] > 0
+
+
+@pytest.mark.parametrize("text", [
+    "[" * 100_000 + "]" * 100_000,
+    '{"a": ' * 100_000 + "1" + "}" * 100_000,
+])
+def test_deeply_nested_json_exits_2(tmp_path, text):
+    proc = run([write(tmp_path, text)])
+    assert proc.returncode == 2
+    assert proc.stderr.strip().splitlines() == [
+        f"error: {tmp_path / 'case.json'}: the case is nested too deeply"]
