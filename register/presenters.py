@@ -16,6 +16,10 @@ from dataclasses import dataclass
 
 from register import choices
 
+#: The caution every report, export and e-mail carries (pages: ``templates/_caution.html``).
+CAUTION = ("Results support, and do not replace, a functional safety assessment by "
+           "competent persons under IEC 61511 and local regulations.")
+
 
 @dataclass(frozen=True)
 class Badge:

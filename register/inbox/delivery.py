@@ -28,6 +28,7 @@ from django.db.models import F, Q
 from django.utils import timezone
 
 from register.models import Notification
+from register.presenters import CAUTION as PRESENTED_CAUTION
 
 log = logging.getLogger(__name__)
 
@@ -42,8 +43,7 @@ EMAIL_BACKOFF_MAX_SECONDS = 3600
 SWEEP_AFTER = dt.timedelta(minutes=30)
 SUBJECT_LENGTH = 78
 
-CAUTION = ("SIF Ledger results support, and do not replace, a functional safety assessment "
-           "by competent persons under IEC 61511 and local regulations.")
+CAUTION = f"SIF Ledger: {PRESENTED_CAUTION}"
 
 
 class EmailNotSent(Exception):

@@ -5,7 +5,6 @@ figure; a bypass is closed by a person and its duration shows on the SIF page.""
 import datetime as dt
 import re
 import shutil
-from pathlib import Path
 
 import pytest
 from django.utils import timezone
@@ -14,11 +13,8 @@ from playwright.sync_api import expect
 from register import choices, services
 from register.models import Bypass, Component, TestPlan, TestStep
 from tests import factories as f
+from tests.browser.pages import ARTIFACTS, DESK, PHONE, sign_in
 from tests.conftest import need
-
-ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
-PHONE = {"width": 390, "height": 844}
-DESK = {"width": 1280, "height": 900}
 
 
 @pytest.fixture
@@ -43,14 +39,6 @@ def plant(transactional_db):
     lead = f.user("lead", site=site, role=choices.Role.LEAD)
     f.full_test(sif, tech, timezone.now() - dt.timedelta(days=60))
     return {"sif": sif, "plan": plan, "tech": tech, "lead": lead}
-
-
-def sign_in(page, base, username, next_url):
-    page.goto(f"{base}/accounts/login/?next={next_url}")
-    page.get_by_label("User name").fill(username)
-    page.get_by_label("Password").fill(f.PASSWORD)
-    page.get_by_role("button", name="Sign in").click()
-    page.wait_for_url(f"**{next_url}*")
 
 
 def shot(page, name):

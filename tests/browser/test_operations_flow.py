@@ -3,7 +3,6 @@ lost) and a demand on which a valve failed to act; at the desk the lead authoris
 bypass and finds the failure on the SIF page and in the findings list."""
 
 import shutil
-from pathlib import Path
 
 import pytest
 from playwright.sync_api import expect
@@ -11,11 +10,8 @@ from playwright.sync_api import expect
 from register import choices
 from register.models import Bypass, Component, Demand, Finding
 from tests import factories as f
+from tests.browser.pages import ARTIFACTS, DESK, PHONE, no_sideways_scroll, sign_in
 from tests.conftest import need
-
-ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
-PHONE = {"width": 390, "height": 844}
-DESK = {"width": 1280, "height": 900}
 
 
 @pytest.fixture
@@ -32,21 +28,8 @@ def plant(transactional_db):
     return {"sif": sif}
 
 
-def sign_in(page, base, username, next_url="/operations/"):
-    page.goto(f"{base}/accounts/login/?next={next_url}")
-    page.get_by_label("User name").fill(username)
-    page.get_by_label("Password").fill(f.PASSWORD)
-    page.get_by_role("button", name="Sign in").click()
-    page.wait_for_url(f"**{next_url}*")
-
-
 def shot(page, name):
     page.screenshot(path=str(ARTIFACTS / f"operations-{name}.png"), full_page=True)
-
-
-def no_sideways_scroll(page):
-    width = page.evaluate("document.documentElement.scrollWidth")
-    assert width <= page.viewport_size["width"], width
 
 
 @pytest.mark.browser
@@ -58,7 +41,7 @@ def test_bypass_and_failed_demand_from_the_phone_then_authorised_at_the_desk(
     page.set_viewport_size(PHONE)
 
     # The technician finds the SIF by a device tag and records a bypass of one device.
-    sign_in(page, base, "tech")
+    sign_in(page, base, "tech", "/operations/")
     page.get_by_label("Find a SIF to record a bypass or a demand").fill("LT-201")
     page.get_by_role("button", name="Search").click()
     tiles = page.locator("#found .tile")
@@ -117,7 +100,7 @@ def test_bypass_and_failed_demand_from_the_phone_then_authorised_at_the_desk(
     # At the desk, the lead authorises the bypass.
     page.get_by_role("button", name="Sign out").click()
     page.set_viewport_size(DESK)
-    sign_in(page, base, "lead")
+    sign_in(page, base, "lead", "/operations/")
     pending = page.locator("#open-bypasses [data-pending]")
     expect(pending).to_have_text("1 awaiting authorisation")
     expect(page.locator("#open-findings")).to_contain_text("XV-201")

@@ -2,16 +2,14 @@
 menu, and a page he may not open explains why and leads back."""
 
 import shutil
-from pathlib import Path
 
 import pytest
 from playwright.sync_api import expect
 
 from register import choices
 from tests import factories as f
+from tests.browser.pages import ARTIFACTS
 from tests.conftest import need
-
-ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
 
 
 @pytest.fixture

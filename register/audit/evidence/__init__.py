@@ -15,7 +15,6 @@ from register.audit.evidence.build import (
 )
 from register.audit.evidence.collect import (
     ACHIEVED_FORMULA,
-    CAUTION,
     CHART_POINTS,
     CSV_FILES,
     DESIGN_FORMULA,
@@ -43,6 +42,7 @@ from register.audit.evidence.tables import (
     cover_facts,
     csv_files,
 )
+from register.presenters import CAUTION
 
 __all__ = [
     "ACHIEVED_FORMULA",

@@ -39,8 +39,6 @@ from register.operations import services as findings_rules
 from register.people import person_name
 from register.schedule.due import plan_timelines
 
-CAUTION = ("Results support, and do not replace, a functional safety assessment by "
-           "competent persons under IEC 61511 and local regulations.")
 DESIGN_FORMULA = ("IEC 61508-6 Annex B simplified equations (PFDavg per subsystem by voting, "
                   "with common cause β/βD, MTTR, MRT, proof-test interval T1 and coverage; "
                   "subsystems in series add)")

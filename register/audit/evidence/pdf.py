@@ -8,13 +8,13 @@ from pathlib import Path
 from register import presenters
 from register.audit.evidence.collect import (
     ACHIEVED_FORMULA,
-    CAUTION,
     DESIGN_FORMULA,
     OBSERVED_METHOD,
     _g,
     _iso,
 )
 from register.charts import PACK_HEIGHT_IN, PACK_WIDTH_IN
+from register.presenters import CAUTION
 
 # ---------------------------------------------------------------------------------------
 # The PDF report (reportlab, DejaVu Sans embedded)

@@ -10,7 +10,6 @@ from django.utils import timezone
 
 from register.audit.evidence.collect import (
     ACHIEVED_FORMULA,
-    CAUTION,
     DESIGN_FORMULA,
     OBSERVED_METHOD,
     Collected,
@@ -21,6 +20,7 @@ from register.models import (
     EvidencePack,
 )
 from register.people import person_name
+from register.presenters import CAUTION
 
 # ---------------------------------------------------------------------------------------
 # Files: CSV, JSON, PDF, zip
