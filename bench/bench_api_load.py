@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import datetime as dt
+import functools
 import itertools
 import os
 import random
@@ -132,21 +133,38 @@ def drive(base: str, tokens: list[str], targets: list, seconds: float, clients: 
                                                    "as_left": "pass"} for c in comps]})
                     last = batch
                 kind, t0 = "bulk", time.perf_counter()
-                r = session.post(base + "/api/test-results/bulk/", json=batch, timeout=60)
+                call = functools.partial(session.post, base + "/api/test-results/bulk/",
+                                         json=batch, timeout=60)
             else:
                 kind = "records" if step == 1 else "sifs"
                 t0 = time.perf_counter()
-                r = session.get(base + f"/api/{'test-records' if step == 1 else 'sifs'}/",
-                                timeout=60)
+                call = functools.partial(
+                    session.get, base + f"/api/{'test-records' if step == 1 else 'sifs'}/",
+                    timeout=60)
+            try:
+                r = call()
+                keys = ([i["client_key"] for i in r.json()["items"]]
+                        if kind == "bulk" and r.status_code in (200, 201) else [])
+            except Exception as exc:  # a timeout, a dropped connection, a body that is not JSON
+                with lock:
+                    lat[kind].append((time.perf_counter() - t0) * 1000)
+                    failures.append((kind, type(exc).__name__, str(exc)[:300]))
+                continue
             ms = (time.perf_counter() - t0) * 1000
             with lock:
                 lat[kind].append(ms)
-                if r.status_code >= 500 or r.status_code not in (200, 201):
+                if r.status_code not in (200, 201):
                     failures.append((kind, r.status_code, r.text[:300]))
-                elif kind == "bulk":
-                    accepted.update(i["client_key"] for i in r.json()["items"])
+                accepted.update(keys)
 
-    threads = [threading.Thread(target=client, args=(n,)) for n in range(clients)]
+    def guarded(n: int):
+        try:
+            client(n)
+        except Exception as exc:  # a client that dies counts as a failure, never silently
+            with lock:
+                failures.append(("client", type(exc).__name__, str(exc)[:300]))
+
+    threads = [threading.Thread(target=guarded, args=(n,)) for n in range(clients)]
     t0 = time.time()
     for t in threads:
         t.start()
@@ -232,7 +250,9 @@ def main():
 
         stored = TestRecord.objects.filter(client_key__isnull=False)
         dupes = stored.count() - stored.values("client_key").distinct().count()
-        missing = len(out["accepted"] - set(stored.values_list("client_key", flat=True)))
+        stored_keys = set(stored.values_list("client_key", flat=True))
+        missing = len(out["accepted"] - stored_keys)
+        unacknowledged = len(stored_keys - out["accepted"])
         secs = out["elapsed"]
         print(f"API under load: {args.clients} clients for {secs:.0f} s (gunicorn 4x8 "
               f"threads, PostgreSQL)")
@@ -241,7 +261,10 @@ def main():
         total = sum(len(v) for v in out["latency"].values())
         print(f"  all requests: {total / secs:.1f}/s; accepted records {len(out['accepted'])},"
               f" stored {stored.count()}, duplicates {dupes}, missing {missing}, "
+              f"stored without acknowledgement {unacknowledged}, "
               f"failures {len(out['failures'])}")
+        for kind, status, text in out["failures"][:5]:
+            print(f"    failure: {kind} {status} {text[:120]}")
         read_secs = min(args.seconds, 20)
         lat = psycopg_reads(bench_url, read_secs, args.clients)
         print(summary("  bare psycopg same rows", lat, read_secs))

@@ -253,7 +253,7 @@ class _Builder:
         interval = FULL_INTERVAL_MONTHS[sil]
         full_plan = self.design(TestPlan(
             sif=sif, name="Full proof test", kind=choices.TestKind.FULL,
-            interval_months=interval, coverage=0.95 if tpl["final"] == "xv" else 0.9,
+            interval_months=interval, coverage=0.98,
             demand_counts_as_test=tpl["final"] == "mcc", assignee=self.people["tech"],
         ))
         self.design(TestStep(

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 
 from calcs.adapter.loading import (
     SifData,
+    TestRow,
 )
 from calcs.engine import design as eng_design
 from calcs.engine import field_data as eng_field
@@ -77,6 +78,20 @@ def plan_intervals(d: SifData, sub: Subsystem) -> tuple[float | None, float | No
     return (min(full) if full else None), (min(partial) if partial else None)
 
 
+def plan_coverages(d: SifData, comp_ids: set[int]) -> tuple[float, float]:
+    """(full, partial) coverage the plans covering these components claim now: the least
+    of each kind (1.0 where no plan of that kind covers them). The design figure and the
+    projected tests use the lesser of this and the devices' own coverage, as each recorded
+    test does with the plan version in force on its day (:func:`event_coverage`)."""
+    full, partial = [1.0], [1.0]
+    for plan in d.plans:
+        covered = d.plan_components.get(plan.pk) or None
+        if covered is not None and not (covered & comp_ids):
+            continue
+        (partial if plan.kind == choices.TestKind.PARTIAL else full).append(plan.coverage)
+    return min(full), min(partial)
+
+
 @dataclass(frozen=True)
 class RateTable:
     """The λDU the achieved model and the projections use (site rate basis applied).
@@ -137,8 +152,9 @@ def design_input(d: SifData) -> eng_design.SifDesign:
         full, partial = plan_intervals(d, sub)
         if full is None:
             raise EngineError(f"no full proof-test plan covers subsystem '{sub.name}'")
-        ptc = min(c.proof_test_coverage for c in comps)
-        theta = min(c.partial_test_coverage for c in comps)
+        full_cov, partial_cov = plan_coverages(d, {c.pk for c in comps})
+        ptc = min(min(c.proof_test_coverage for c in comps), full_cov)
+        theta = min(min(c.partial_test_coverage for c in comps), partial_cov, ptc)
         types = {c.effective_class for c in comps}
         scs = [c.effective_sc for c in comps if c.effective_sc]
         subs.append(eng_design.Subsystem(
@@ -197,6 +213,23 @@ def _aware(day_or_dt) -> dt.datetime:
     return dt.datetime.combine(day_or_dt, dt.time(0, 0), tzinfo=dt.UTC)
 
 
+def event_coverage(c, e: TestRow) -> float | None:
+    """The share of a device's dangerous undetected failures one recorded event reveals
+    (None: the device's own coverage for that kind of test).
+
+    A test reveals no more than the device allows for that kind of test (its proof-test
+    or partial-test coverage) and no more than the procedure of the plan version in force
+    on the day claims (common practice, no source): the lesser of the two. A credited
+    demand exercises the device like a full test; otherwise it reveals only the failure
+    it found."""
+    if e.kind == "demand":
+        return c.proof_test_coverage if e.credited else 0.0
+    if e.plan_coverage is None:
+        return None
+    own = c.proof_test_coverage if e.kind == "full" else (c.partial_test_coverage or 0.0)
+    return min(own, e.plan_coverage)
+
+
 def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datetime | None = None
                   ) -> eng_hist.SifHistory:
     """The SIF's recorded life as the history model sees it.
@@ -225,19 +258,17 @@ def history_input(d: SifData, rates: RateTable, *, assume_closed_after: dt.datet
         channels = []
         for cd in d.components.get(sub.pk, []):
             c = cd.obj
+            full_cov, partial_cov = plan_coverages(d, {c.pk})
+            ptc = min(c.proof_test_coverage, full_cov)
             channels.append(eng_hist.Channel(
                 lambda_du=rates.lambda_du(c, cd.events), lambda_dd=c.lambda_dd,
-                mttr_hours=sub.mttr_hours,
-                mrt_hours=sub.mrt_hours, proof_test_coverage=c.proof_test_coverage,
-                partial_test_coverage=c.partial_test_coverage, in_service=_aware(c.in_service_on),
+                mttr_hours=sub.mttr_hours, mrt_hours=sub.mrt_hours, proof_test_coverage=ptc,
+                partial_test_coverage=min(c.partial_test_coverage, partial_cov, ptc),
+                in_service=_aware(c.in_service_on),
                 bypasses=periods(c.pk),
-                tests=tuple(eng_hist.TestEvent(
-                    at=e.at, kind=e.kind, failed=e.failed,
-                    # A credited demand exercises the device like a full test; otherwise
-                    # it reveals only the failure it found.
-                    coverage=(c.proof_test_coverage if e.credited else 0.0)
-                    if e.kind == "demand" else None)
-                    for e in cd.events),
+                tests=tuple(eng_hist.TestEvent(at=e.at, kind=e.kind, failed=e.failed,
+                                               coverage=event_coverage(c, e))
+                            for e in cd.events),
             ))
         groups.append(eng_hist.Group(name=sub.name, voting=sub.voting, beta=sub.beta,
                                      beta_d=sub.beta_d, channels=tuple(channels)))

@@ -12,6 +12,7 @@ from django.db.models import Q
 
 from calcs.engine import history as eng_hist
 from register import choices
+from register.days import local_date
 from register.models import (
     Bypass,
     Component,
@@ -26,6 +27,7 @@ from register.models import (
     TestPlan,
     in_force,
 )
+from register.schedule.due import Version, plan_versions, version_on
 
 log = logging.getLogger(__name__)
 
@@ -47,6 +49,9 @@ class TestRow:
     failed: bool
     record_id: int | None = None
     credited: bool = True  # a demand reveals failures only where a plan credits demands
+    plan_id: int | None = None
+    #: the coverage of the plan version in force on the day of the test (None: no plan)
+    plan_coverage: float | None = None
 
 
 @dataclass
@@ -122,24 +127,56 @@ def load(sif_queryset) -> list[SifData]:
                                        record__sif__in=sif_queryset.values("pk"))
         .exclude(record__kind=choices.TestKind.SIGN_OFF)
         .values_list("component_id", "record__performed_at", "record__kind", "failure_mode",
-                     "as_found", "record_id")
+                     "as_found", "record_id", "record__plan_id")
         .order_by("record__performed_at")
     )
     kind_map = {choices.TestKind.FULL: "full", choices.TestKind.VALIDATION: "full",
                 choices.TestKind.PARTIAL: "partial", choices.TestKind.DEMAND: "demand"}
     credits_demands = {sif_id: any(p.demand_counts_as_test for p in d.plans)
                        for sif_id, d in data.items()}
-    for comp_id, at, kind, mode, as_found, record_id in rows.iterator(chunk_size=5000):
+    for comp_id, at, kind, mode, as_found, record_id, plan_id in rows.iterator(chunk_size=5000):
         cd = comp_of.get(comp_id)
         if cd is None:
             continue
         failed = as_found == choices.Verdict.FAIL and mode == choices.FailureMode.DANGEROUS_UNDETECTED
         credited = kind != choices.TestKind.DEMAND or credits_demands[
             sub_sif[cd.obj.subsystem_id]]
-        cd.events.append(TestRow(at, kind_map[kind], failed, record_id, credited))
+        cd.events.append(TestRow(at, kind_map[kind], failed, record_id, credited, plan_id))
+    _plan_coverage(data, comp_of, sub_sif)
     for cd in comp_of.values():
         cd.events.sort(key=lambda e: e.at)
     return [data[s.pk] for s in sifs]
+
+
+def _plan_coverage(data: dict[int, SifData], comp_of: dict[int, ComponentData],
+                   sub_sif: dict[int, int]) -> None:
+    """Give each test the coverage of the plan version in force on the site's calendar day
+    of the test, so a later change of a plan's coverage leaves past tests as they were
+    (``register.schedule.due.plan_versions``, one query for all plans). A record made
+    under a plan takes that plan's; one made without takes the least of the plans of its
+    kind that named the device then."""
+    live = {p.pk: p for d in data.values() for p in d.plans}
+    versions = plan_versions(list(live))
+    for plan_id, plan in live.items():
+        versions.setdefault(plan_id, [Version(None, plan.interval_months, frozenset(
+            data[plan.sif_id].plan_components.get(plan_id, ())), plan.coverage)])
+    for cd in comp_of.values():
+        d = data[sub_sif[cd.obj.subsystem_id]]
+        for e in cd.events:
+            if e.kind == "demand":
+                continue
+            day = local_date(e.at, d.sif.unit.site)
+            if e.plan_id in live:
+                v = version_on(versions[e.plan_id], day)
+                e.plan_coverage = v.coverage if v else None
+                continue
+            kind = choices.TestKind.PARTIAL if e.kind == "partial" else choices.TestKind.FULL
+            covs = []
+            for plan in d.plans:
+                v = version_on(versions[plan.pk], day) if plan.kind == kind else None
+                if v and (not v.components or cd.obj.pk in v.components):
+                    covs.append(v.coverage)
+            e.plan_coverage = min(covs) if covs else None
 
 
 def _load_scenarios(data: dict[int, SifData], sif_queryset) -> None:

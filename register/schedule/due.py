@@ -154,11 +154,19 @@ def state_for(due_on: dt.date | None, as_of: dt.date, interval_months: int,
 @dataclass(frozen=True)
 class Version:
     """One version of a plan: what it asks, and from when (None: from the start).
-    ``components``: the components it names (empty: every component of the SIF)."""
+    ``components``: the components it names (empty: every component of the SIF);
+    ``coverage``: the share of dangerous undetected failures its procedure reveals."""
 
     effective_from: dt.date | None
     interval_months: int
     components: frozenset[int] = frozenset()
+    coverage: float = 1.0
+
+
+def version_on(versions: list[Version], day: dt.date) -> Version | None:
+    """The version of a plan in force on ``day`` (None: none yet)."""
+    applicable = [v for v in versions if v.effective_from is None or v.effective_from <= day]
+    return applicable[-1] if applicable else None
 
 
 @dataclass
@@ -178,8 +186,8 @@ class _Facts:
         return [v for v in self.versions if v.effective_from is None or v.effective_from <= day]
 
     def interval_on(self, day: dt.date) -> int:
-        applicable = self.versions_on(day)
-        return applicable[-1].interval_months if applicable else self.plan.interval_months
+        version = version_on(self.versions, day)
+        return version.interval_months if version else self.plan.interval_months
 
     def comps(self, version: Version) -> list[int]:
         """Rule 1 for one version: the components it names, or every component."""
@@ -240,7 +248,7 @@ class _Facts:
         return sorted(points)
 
 
-#: History rows of a plan recorded this soon after its creation set it up (``_versions``).
+#: History rows of a plan recorded this soon after its creation set it up (``plan_versions``).
 SETUP_SECONDS = 60
 
 
@@ -250,15 +258,17 @@ def _plan_scope_rows():
     return field.related_model.objects
 
 
-def _versions(plan_ids) -> dict[int, list[Version]]:
-    """Each plan's versions (interval and scope) from its history, in the order they were
+def plan_versions(plan_ids) -> dict[int, list[Version]]:
+    """Each plan's versions (interval, scope and coverage) from its history, in the order they were
     recorded. A change recorded without ``effective_from`` (before plans had one) took
     effect the day it was recorded; the first version applies from the start. Rows
     recorded within ``SETUP_SECONDS`` of a plan's creation are part of setting it up (a
     plan is saved, then its components named); a version taking effect on the same day as
-    the one before it replaces it (a change revised the same day)."""
+    the one before it replaces it (a change revised the same day); a dated change (one that
+    sets ``effective_from``) is never part of setting up."""
     out: dict[int, list[Version]] = defaultdict(list)
     created: dict[int, dt.datetime] = {}
+    first_effective: dict[int, dt.date | None] = {}
     scope: dict[int, set[int]] = defaultdict(set)
     for history_id, comp_id in _plan_scope_rows().filter(
             history__id__in=plan_ids).values_list("history_id", "component_id"):
@@ -266,27 +276,27 @@ def _versions(plan_ids) -> dict[int, list[Version]]:
     rows = (TestPlan.history.filter(id__in=plan_ids)
             .order_by("id", "history_date", "history_id")
             .values_list("id", "history_id", "history_date", "effective_from",
-                         "interval_months"))
-    for plan_id, history_id, recorded, effective, interval in rows:
+                         "interval_months", "coverage"))
+    for plan_id, history_id, recorded, effective, interval, coverage in rows:
         versions = out[plan_id]
         comps = frozenset(scope.get(history_id, ()))
         if not versions:
-            versions.append(Version(None, interval, comps))
-            created[plan_id] = recorded
+            versions.append(Version(None, interval, comps, coverage))
+            created[plan_id], first_effective[plan_id] = recorded, effective
             continue
         prev = versions[-1]
-        if (prev.interval_months, prev.components) == (interval, comps):
+        if (prev.interval_months, prev.components, prev.coverage) == (interval, comps, coverage):
             continue
         when = effective or recorded.date()
         # a version never takes effect before one recorded earlier
         if prev.effective_from and when < prev.effective_from:
             when = prev.effective_from
-        setting_up = len(versions) == 1 and (
+        setting_up = len(versions) == 1 and effective == first_effective[plan_id] and (
             recorded - created[plan_id]).total_seconds() <= SETUP_SECONDS
         if setting_up or when == prev.effective_from:
-            versions[-1] = Version(prev.effective_from, interval, comps)
+            versions[-1] = Version(prev.effective_from, interval, comps, coverage)
         else:
-            versions.append(Version(when, interval, comps))
+            versions.append(Version(when, interval, comps, coverage))
     return out
 
 
@@ -311,7 +321,7 @@ def _load(plans: list[TestPlan], until: dt.date, since: dt.date | None = None
                                                        "in_service_on"):
         comps_of_sif[sif_id].append(comp_id)
         in_service[comp_id] = started
-    versions = _versions(plan_ids)
+    versions = plan_versions(plan_ids)
     by_zone: dict[str, list[TestPlan]] = defaultdict(list)
     for p in plans:
         by_zone[p.sif.unit.site.time_zone].append(p)
@@ -358,15 +368,16 @@ def _load(plans: list[TestPlan], until: dt.date, since: dt.date | None = None
             kinds = (*kinds, choices.TestKind.DEMAND, REAL_DEMAND)
         sif_comps = comps_of_sif.get(plan.sif_id, [])
         live_scope = frozenset(named.get(plan.pk, ()))
-        plan_versions = versions.get(plan.pk) or [Version(None, plan.interval_months,
-                                                          live_scope)]
-        if plan_versions[-1].components != live_scope:
+        in_effect = versions.get(plan.pk) or [Version(None, plan.interval_months,
+                                                      live_scope, plan.coverage)]
+        if in_effect[-1].components != live_scope:
             # rows linked without history (bulk-loaded data): the live scope is today's
-            plan_versions[-1] = Version(plan_versions[-1].effective_from,
-                                        plan_versions[-1].interval_months, live_scope)
+            last = in_effect[-1]
+            in_effect[-1] = Version(last.effective_from, last.interval_months, live_scope,
+                                   last.coverage)
         f = _Facts(plan=plan, kinds=kinds, sif_comps=sif_comps, in_service=in_service,
                    deferrals={d: sorted(v) for d, v in approved.get(plan.pk, {}).items()},
-                   versions=plan_versions, thresholds=Thresholds.of(plan.sif.unit.site))
+                   versions=in_effect, thresholds=Thresholds.of(plan.sif.unit.site))
         for comp in sif_comps:
             dates = set()
             for kind in kinds:
