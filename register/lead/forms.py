@@ -41,13 +41,17 @@ class SubsystemChangeForm(ChangeControlMixin, forms.ModelForm):
 class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
     class Meta:
         model = TestPlan
-        fields = ("interval_months", "components", "effective_from")
+        fields = ("interval_months", "coverage", "components", "effective_from")
         widgets = {"effective_from": forms.DateInput(attrs={"type": "date"}),
                    "components": forms.CheckboxSelectMultiple}
         labels = {"components": "Devices the plan tests"}
         help_texts = {"effective_from": "Empty: from today. Due dates that have already "
                                         "fallen stay under the plan then in force.",
                       "components": "None ticked: the whole SIF."}
+
+    def clean_coverage(self):
+        value = self.cleaned_data.get("coverage")
+        return self.instance.coverage if value is None else value
 
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)
@@ -57,6 +61,11 @@ class PlanChangeForm(ChangeControlMixin, forms.ModelForm):
             subsystem__sif_id=sif_id).select_related("subsystem").order_by(
             "subsystem__position", "tag")
         self.fields["components"].required = False
+        self.fields["coverage"].required = False
+        self.fields["coverage"].help_text = (
+            "Share of dangerous undetected failures the procedure reveals (0 to 1). Tests "
+            "done from the in-force date reveal this share, each device at most its own "
+            "proof-test coverage; tests done before keep theirs. Empty: unchanged.")
         self.fields["components"].label_from_instance = lambda c: (
             f"{c.tag} · {c.subsystem.get_role_display().lower()}")
 

@@ -93,3 +93,30 @@ def test_a_test_after_the_change_reveals_only_the_new_coverage(world):
         figures[coverage] = _achieved(sif, now + dt.timedelta(days=200))
     # half of lambda_DU keeps its age since the test 700 days ago: the figure is worse
     assert figures[0.5] > figures[1.0] * 1.5
+
+
+def test_the_plan_change_page_previews_and_saves_a_coverage_change(client, world):
+    import html as html_lib
+    import re
+
+    from django.urls import reverse
+
+    sif = f.sif(world["unit"])
+    plan = TestPlan.objects.get(sif=sif)
+    url = reverse("register:edit_design", args=["plan", plan.pk])
+    client.force_login(world["lead"])
+    (d,) = load(SafetyFunction.objects.filter(pk=sif.pk))
+    before = evaluate_design(d).pfd_avg
+    post = {"interval_months": 12, "coverage": 0.7, "reason": "Stroke check dropped",
+            "reference": "CR-88"}
+    page = client.post(url, {**post, "action": "preview"}).content.decode()
+    plan.refresh_from_db()
+    assert plan.coverage == 1.0  # a preview changes nothing
+    after = float(re.search(r'id="design-after">([^<]+)<', page).group(1))
+    assert after > before * 2  # 30 % of lambda_DU now waits for the mission time
+    fingerprint = html_lib.unescape(re.search(r'name="previewed" value="([^"]+)"',
+                                              page).group(1))
+    resp = client.post(url, {**post, "action": "save", "previewed": fingerprint})
+    assert resp.status_code == 302
+    plan.refresh_from_db()
+    assert (plan.coverage, plan.effective_from) == (0.7, timezone.localdate())
