@@ -237,3 +237,25 @@ CACHES = {"default": (
     {"BACKEND": "django.core.cache.backends.redis.RedisCache",
      "LOCATION": env_str("CACHE_URL"), "KEY_PREFIX": "sif-ledger"} if env_str("CACHE_URL")
     else {"BACKEND": "django.core.cache.backends.locmem.LocMemCache"})}
+
+# --- Browser hardening ---------------------------------------------------------------
+# Content-Security-Policy (django-csp 4): scripts and styles only from this site's own
+# files, no inline code anywhere, no framing. Pages that need more widen it for themselves
+# (the API documentation: data: images in its stylesheet). Then Cache-Control: private,
+# no-store on every response to a signed-in user (register/middleware_security.py).
+MIDDLEWARE.insert(MIDDLEWARE.index("django.middleware.security.SecurityMiddleware") + 1,
+                  "csp.middleware.CSPMiddleware")
+MIDDLEWARE.insert(MIDDLEWARE.index("django.contrib.auth.middleware.AuthenticationMiddleware")
+                  + 1, "register.middleware_security.NoStoreWhenSignedIn")
+CONTENT_SECURITY_POLICY = {
+    "DIRECTIVES": {
+        "default-src": ["'self'"],
+        "script-src": ["'self'"],
+        "style-src": ["'self'"],
+        "img-src": ["'self'"],
+        "object-src": ["'none'"],
+        "base-uri": ["'self'"],
+        "form-action": ["'self'"],
+        "frame-ancestors": ["'none'"],
+    },
+}

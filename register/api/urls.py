@@ -3,20 +3,25 @@
 from pathlib import Path
 
 import drf_spectacular_sidecar
+from csp.decorators import csp_update
 from django.contrib.auth.views import redirect_to_login
 from django.urls import include, path
 from django.views.static import serve
-from drf_spectacular.views import SpectacularAPIView, SpectacularSwaggerView
+from drf_spectacular.views import SpectacularAPIView, SpectacularSwaggerSplitView
 from rest_framework.routers import DefaultRouter
 
 from register.api import views
+from register.middleware_security import static_asset
 
-_swagger = SpectacularSwaggerView.as_view(url_name="api:schema")
+# Its start-up script is a file of its own (docs/?script), not inline: the page keeps the
+# site's Content-Security-Policy, widened only for the data: images of Swagger UI's stylesheet.
+_swagger = SpectacularSwaggerSplitView.as_view(url_name="api:schema")
 
 
+@csp_update({"img-src": ["data:"]})
 def docs(request, *args, **kwargs):
-    """The documentation page; signed out, the sign-in page (then back here), not a bare
-    401."""
+    """The documentation page and its start-up script; signed out, the sign-in page (then
+    back here), not a bare 401."""
     if not request.user.is_authenticated:
         return redirect_to_login(request.get_full_path())
     return _swagger(request, *args, **kwargs)
@@ -48,7 +53,7 @@ urlpatterns = [
     path("test-results/bulk/", views.BulkTestResults.as_view(), name="bulk-results"),
     path("schema/", SpectacularAPIView.as_view(), name="schema"),
     path("docs/", docs, name="docs"),
-    path("docs/assets/<path:path>", serve, {"document_root": SWAGGER_ASSETS},
+    path("docs/assets/<path:path>", static_asset(serve), {"document_root": SWAGGER_ASSETS},
          name="docs-assets"),
     path("", include(router.urls)),
 ]
