@@ -361,6 +361,21 @@ class BulkItemSerializer(Strict):
         return attrs
 
 
+class BulkEnvelopeSerializer(Strict):
+    """The body of a bulk request: the performer's password (every item is signed with it)
+    and the items, each checked on its own by :class:`BulkItemSerializer`."""
+
+    password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256)
+    results = serializers.ListField(child=serializers.DictField(), allow_empty=False,
+                                    max_length=500)
+
+
+class BulkRequestSerializer(BulkEnvelopeSerializer):
+    """The same body as documented in the schema."""
+
+    results = BulkItemSerializer(many=True, allow_empty=False, max_length=500)
+
+
 class BulkItemOutcomeSerializer(serializers.Serializer):
     index = serializers.IntegerField()
     client_key = serializers.CharField()
@@ -428,6 +443,8 @@ class DeferralSerializer(LedgerModelSerializer):
 
 class DecideSerializer(Strict):
     approve = serializers.BooleanField()
+    password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256,
+                                     help_text="The decider's password, asked again.")
     projected_pfd_avg = serializers.FloatField(read_only=True, help_text=(
         "Computed by the server when the decision is recorded; a value sent is ignored."))
     note = text(required=False, allow_blank=True, default="")

@@ -366,11 +366,16 @@ class BypassViewSet(mixins.CreateModelMixin, ReadViewSet):
         bypass = services.close_bypass(bypass, request.user, ser.validated_data["ended_at"])
         return Response(self.get_serializer(self.get_queryset().get(pk=bypass.pk)).data)
 
-    @extend_schema(request=None, responses={200: s.BypassSerializer})
+    @extend_schema(request=s.PasswordSerializer, responses={200: s.BypassSerializer})
     @action(detail=True, methods=["post"])
     def authorise(self, request, pk=None):
-        """A lead of the site, never the requester, authorises the bypass (now)."""
-        bypass = services.authorise_bypass(self.get_object(), request.user)
+        """A lead of the site, never the requester, authorises the bypass (now) with their
+        password."""
+        bypass = self.get_object()
+        ser = s.PasswordSerializer(data=request.data)
+        ser.is_valid(raise_exception=True)
+        bypass = services.authorise_bypass(bypass, request.user,
+                                           ser.validated_data["password"])
         return Response(self.get_serializer(self.get_queryset().get(pk=bypass.pk)).data)
 
 
@@ -394,8 +399,8 @@ class DeferralViewSet(mixins.CreateModelMixin, ReadViewSet):
         ser = s.DecideSerializer(data=request.data)
         ser.is_valid(raise_exception=True)
         d = ser.validated_data
-        deferral = schedule_services.decide_deferral(deferral, request.user, approve=d["approve"],
-                                                     note=d["note"])
+        deferral = schedule_services.decide_deferral(deferral, request.user, d["password"],
+                                                     approve=d["approve"], note=d["note"])
         return Response(self.get_serializer(deferral).data)
 
 
@@ -496,8 +501,9 @@ def _flatten(index: int, detail, prefix="") -> list[dict]:
 class BulkTestResults(APIView):
     """Signed test results from a maintenance system, all or nothing.
 
-    The body is a list of items. The token's user is the performer of every item and signs
-    it: the token authenticates the user, so no password is asked again. Each item carries
+    The body is ``{"password": ..., "results": [items]}``. The token's user is the
+    performer of every item and signs each with the password, checked once per request
+    (a missing or wrong one: 400 keyed ``password``, nothing written). Each item carries
     a ``client_key``; sending the same key again with the same content returns the stored
     record (200, nothing written), with other content 409. One bad item rejects the whole
     request; the errors name the item index and the field.
@@ -510,15 +516,18 @@ class BulkTestResults(APIView):
         self.action = request.method.lower()
         super().initial(request, *args, **kwargs)
 
-    @extend_schema(request=s.BulkItemSerializer(many=True),
+    @extend_schema(request=s.BulkRequestSerializer,
                    responses={200: s.BulkResponseSerializer, 201: s.BulkResponseSerializer})
     def post(self, request):
-        if not isinstance(request.data, list) or not request.data:
-            raise DRFValidationError({NON_FIELD: ["Send a non-empty list of test results."]})
-        if len(request.data) > 500:
-            raise DRFValidationError({NON_FIELD: ["At most 500 results per request."]})
+        if isinstance(request.data, list):
+            raise DRFValidationError({"password": [
+                'Send {"password": ..., "results": [...]}: the results are signed with your '
+                "password."]})
+        envelope = s.BulkEnvelopeSerializer(data=request.data)
+        envelope.is_valid(raise_exception=True)
+        proof = services.confirm_password(request.user, envelope.validated_data["password"])
         items, errors = [], []
-        for index, raw in enumerate(request.data):
+        for index, raw in enumerate(envelope.validated_data["results"]):
             ser = s.BulkItemSerializer(data=raw)
             if ser.is_valid():
                 items.append(ser.validated_data)
@@ -533,7 +542,7 @@ class BulkTestResults(APIView):
         if errors:
             return self._fail(errors, status.HTTP_400_BAD_REQUEST)
         try:
-            return self._store(request.user, items)
+            return self._store(request.user, items, proof)
         except BulkError as exc:
             return self._fail(exc.errors, exc.code)
 
@@ -577,7 +586,7 @@ class BulkTestResults(APIView):
         return sif, plan, results
 
     @transaction.atomic
-    def _store(self, user, items):
+    def _store(self, user, items, proof):
         errors, outcome, denied = [], [], False
         for index, item in enumerate(items):
             try:
@@ -592,7 +601,7 @@ class BulkTestResults(APIView):
                         kind=item["kind"], performed_at=item["performed_at"],
                         remarks=item.get("remarks", ""), results=_result_inputs(results))
                     if created:
-                        services.sign_record(record, user, None, check_password=False)
+                        services.sign_record(record, user, proof)
             except services.KeyReusedError as exc:
                 raise BulkError([_err(index, "client_key", exc.messages)], 409) from None
             except DjangoValidationError as exc:

@@ -137,7 +137,12 @@ def import_sheet(request):
         site = get_object_or_404(site_qs, pk=stored["site"])
         rows = spreadsheet.read_table(stored["name"], base64.b64decode(stored["data"]))
         try:
-            plan = spreadsheet.apply_import(site, rows, request.user, stored["reference"])
+            plan = spreadsheet.apply_import(site, rows, request.user, stored["reference"],
+                                            request.POST.get("password", ""))
+        except ValidationError as exc:  # the password: the checked file stays ready
+            context.update(plan=spreadsheet.plan_import(site, rows), site=site,
+                           name=stored["name"], password_error=" ".join(exc.messages))
+            form = ImportForm(sites=site_qs)
         except spreadsheet.ImportFailed as exc:
             context.update(plan=spreadsheet.ImportPlan(errors=exc.errors), site=site,
                            name=stored["name"])
@@ -174,4 +179,5 @@ def import_sheet(request):
                                "unchanged": "badge-neutral"}
     context["columns"] = spreadsheet.COLUMNS
     context["record_kinds"] = choices.TestKind.values
-    return render(request, "register/lead/import.html", context)
+    return render(request, "register/lead/import.html", context,
+                  status=400 if context.get("password_error") else 200)

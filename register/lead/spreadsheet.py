@@ -650,9 +650,13 @@ def _row_error(number: int, exc: ValidationError, column_of: dict) -> list[CellE
     return out
 
 
-def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str) -> ImportPlan:
-    """Check again, then write everything or nothing. Raises :class:`ImportFailed`."""
+def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
+                 password) -> ImportPlan:
+    """Check again, then write everything or nothing. Raises :class:`ImportFailed`, or a
+    ValidationError keyed ``password`` when the importer's password (asked again: the
+    test history is signed in their name) is missing or wrong."""
     require(user, Action.EDIT_REGISTER, site.pk)
+    proof = services.confirm_password(user, password, outcome="nothing was imported")
     if not reference.strip():
         raise ImportFailed([CellError(1, "", "Give the change request reference of this "
                                              "import.")])
@@ -728,8 +732,7 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str)
                 record = services.save_draft(user=user, sif=sif, kind=kind,
                                              performed_at=at, results=results, plan=fp,
                                              remarks=group["remarks"])
-                services.sign_record(record, user, None, check_password=False,
-                                     signed_at=at)
+                services.sign_record(record, user, proof, signed_at=at)
             except ValidationError as exc:
                 raise ImportFailed(_row_error(number, exc, {
                     "performed_at": "test_performed_at", "kind": "test_kind"})) from exc

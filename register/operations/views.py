@@ -171,7 +171,7 @@ def bypass_authorise(request, pk):
             "Confirm that you have checked the reason, the compensating measures and the "
             "duration."])
     try:
-        services.authorise_bypass(bypass, request.user)
+        services.authorise_bypass(bypass, request.user, request.POST.get("password", ""))
     except ValidationError as exc:
         return _bypass_page(request, _bypass_for(request.user, pk), status=400,
                             authorise_errors=exc.messages)

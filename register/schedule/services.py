@@ -24,6 +24,7 @@ from register.models import Deferral, TestPlan
 from register.permissions import Action, require
 from register.schedule import followup
 from register.schedule.due import PlanStatus, add_months, compute_statuses, status_of
+from register.services.base import confirm_password
 
 Status = choices.DeferralStatus
 
@@ -117,10 +118,12 @@ def request_deferral(*, user, plan: TestPlan, proposed_on: dt.date, reason: str,
 
 
 @transaction.atomic
-def decide_deferral(deferral: Deferral, user, *, approve: bool, note: str = "",
-                    decided_at: dt.datetime | None = None,
+def decide_deferral(deferral: Deferral, user, password=None, *, approve: bool, note: str = "",
+                    check_password=True, decided_at: dt.datetime | None = None,
                     at: dt.datetime | None = None) -> Deferral:
-    """The site's functional-safety lead, never the requester, approves or rejects.
+    """The site's functional-safety lead, never the requester, approves or rejects,
+    re-entering the password (``register.services.base.confirm_password``;
+    ``check_password=False`` is for the demo loader's invented past only).
 
     The projected PFDavg kept with the decision is computed here, never taken from the
     caller. Approval needs a proposed date still valid today (:func:`check_proposed_on`)
@@ -160,6 +163,8 @@ def decide_deferral(deferral: Deferral, user, *, approve: bool, note: str = "",
             effect = projected_effect(plan, deferral.proposed_on, as_of=moment)
         except ValidationError:
             effect = None  # a rejected date out of range has no projection to keep
+    if check_password:  # last, so that the person hears of any other problem first
+        confirm_password(user, password, outcome="the deferral is not decided")
     deferral.status = Status.APPROVED if approve else Status.REJECTED
     deferral.decided_by = user
     deferral.decided_at = moment

@@ -34,7 +34,7 @@ def _plan_for(user, pk) -> TestPlan:
 
 
 REQUEST_FIELDS = ("proposed_on", "reason")
-DECIDE_FIELDS = ("decision", "decision_note", "decided_by", "proposed_on")
+DECIDE_FIELDS = ("decision", "decision_note", "decided_by", "proposed_on", "password")
 
 
 def _errors(exc: ValidationError, fields) -> tuple[dict, list]:
@@ -145,8 +145,9 @@ def decide(request, pk):
     try:
         if decision not in ("approve", "reject"):
             raise ValidationError({"decision": "Choose Approve or Reject."})
-        schedule_services.decide_deferral(deferral, request.user, approve=decision == "approve",
-                                          note=note)
+        schedule_services.decide_deferral(deferral, request.user,
+                                          request.POST.get("password", ""),
+                                          approve=decision == "approve", note=note)
     except ValidationError as exc:
         deferral.refresh_from_db()
         ctx = _decide_context(deferral, request.user)

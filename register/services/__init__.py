@@ -7,7 +7,12 @@ transaction, leaves a history entry attributed to the actor, and enqueues follow
 the demo loader all write through here.
 """
 
-from register.services.base import _sif_id_of
+from register.services.base import (
+    Reauthenticated,
+    _sif_id_of,
+    check_references,
+    confirm_password,
+)
 from register.services.design import (
     create_design,
     update_design,
@@ -35,12 +40,15 @@ from register.services.records import (
 __all__ = [
     "KeyReusedError",
     "MeasurementInput",
+    "Reauthenticated",
     "ResultInput",
     "StaleDraftError",
     "_sif_id_of",
     "add_attachment",
     "authorise_bypass",
+    "check_references",
     "close_bypass",
+    "confirm_password",
     "create_design",
     "discard_draft",
     "open_bypass",

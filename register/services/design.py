@@ -10,7 +10,7 @@ from register.days import today as site_today
 from register.models import Component, TestPlan
 from register.permissions import Action, require, site_id_of
 from register.schedule import followup
-from register.services.base import _sif_id_of
+from register.services.base import _sif_id_of, check_references
 
 #: Fields of a plan whose change is a new version of the plan (``TestPlan.effective_from``).
 PLAN_VERSION_FIELDS = ("interval_months", "coverage", "kind", "demand_counts_as_test",
@@ -35,11 +35,10 @@ def _plan_scope(plan: TestPlan, components) -> set[int]:
     """The component ids a plan change names, all of the plan's own SIF (empty: every
     component of the SIF)."""
     ids = {getattr(c, "pk", c) for c in components or ()}
-    own = set(Component.objects.filter(subsystem__sif_id=plan.sif_id, pk__in=ids)
-              .values_list("pk", flat=True))
-    if ids - own:
-        raise ValidationError({"components": "A plan can only name components of its own "
-                                             "SIF."})
+    found = list(Component.objects.filter(pk__in=ids).select_related("subsystem"))
+    if ids - {c.pk for c in found}:
+        raise ValidationError({"components": "No such component."})
+    check_references(plan.sif, components=found)
     return ids
 
 

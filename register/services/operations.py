@@ -22,6 +22,7 @@ from register.models import (
 from register.operations import services as findings
 from register.permissions import Action, require
 from register.schedule import followup
+from register.services.base import Reauthenticated, confirm_password, reference_errors
 
 # ---------------------------------------------------------------------------------------
 # Demands, bypasses, deferrals
@@ -32,10 +33,7 @@ def _device_errors(sif: SafetyFunction, successful: bool, spurious: bool, acted,
                    failed) -> dict[str, list[str]]:
     """The per-device rules of a demand: devices of this SIF, each either acted or failed,
     and a real demand the SIF did not act on names the device(s) that failed."""
-    errors: dict[str, list[str]] = {}
-    others = [c.tag for c in [*acted, *failed] if c.subsystem.sif_id != sif.pk]
-    if others:
-        errors["components_exercised"] = [f"Not devices of {sif.tag}: {', '.join(others)}."]
+    errors = reference_errors(sif, components_exercised=acted, failed_components=failed)
     both = sorted({c.tag for c in acted} & {c.tag for c in failed})
     if both:
         errors["failed_components"] = [f"A device either acted or failed to act, not both: "
@@ -127,10 +125,13 @@ def _overlap_check(bypass: Bypass):
 
 
 @transaction.atomic
-def authorise_bypass(bypass: Bypass, user, *, at: dt.datetime | None = None) -> Bypass:
-    """A lead of the site, never the requester, authorises a bypass still in place.
+def authorise_bypass(bypass: Bypass, user, password: str | Reauthenticated | None = None, *,
+                     check_password=True, at: dt.datetime | None = None) -> Bypass:
+    """A lead of the site, never the requester, authorises a bypass still in place,
+    re-entering the password (``services.base.confirm_password``).
 
-    ``at`` is the moment of the authorisation and dates its history row (default now).
+    ``check_password=False`` is for the demo loader's invented past only. ``at`` is the
+    moment of the authorisation and dates its history row (default now).
     """
     bypass = Bypass.objects.select_for_update().select_related("sif__unit").get(pk=bypass.pk)
     require(user, Action.AUTHORISE_BYPASS, bypass.sif.unit.site_id)
@@ -142,6 +143,8 @@ def authorise_bypass(bypass: Bypass, user, *, at: dt.datetime | None = None) -> 
     bypass.authorised_by = user
     bypass.authorised_at = at or timezone.now()
     bypass.full_clean()  # the model refuses the requester as authoriser (Bypass.clean)
+    if check_password:  # last, so that the person hears of any other problem first
+        confirm_password(user, password, outcome="the bypass is not authorised")
     attribute(bypass, user, "bypass authorised", at=at).save()
     return bypass
 

@@ -25,6 +25,7 @@ from register.operations import services as findings
 from register.people import person_name
 from register.permissions import Action, require, site_id_of
 from register.schedule import followup
+from register.services.base import Reauthenticated, confirm_password, reference_errors
 
 # ---------------------------------------------------------------------------------------
 # Test records
@@ -145,6 +146,7 @@ def save_draft(
     ``at`` dates the history rows when the test is loaded from the past (the demo).
     """
     require(user, Action.RECORD_TEST, sif.unit.site_id)
+    _check_draft_references(sif, results)
     if record is None:
         record = TestRecord(sif=sif, performed_by=user)
     else:
@@ -215,6 +217,17 @@ def save_draft(
     return record
 
 
+def _check_draft_references(sif, results) -> None:
+    """Each step a measurement names is of the draft's own SIF
+    (``services.base.check_references``), keyed by its field. (The plan, the corrected
+    record and each device are checked by the models' ``clean``.)"""
+    refs = {f"results[{i}].measurements[{j}].step": m.step
+            for i, item in enumerate(results) for j, m in enumerate(item.measurements)}
+    errors = reference_errors(sif, **refs)
+    if errors:
+        raise ValidationError(errors)
+
+
 @transaction.atomic
 def discard_draft(record: TestRecord, user) -> None:
     """Delete an unsigned draft of one's own, with its results, measurements and
@@ -231,11 +244,14 @@ def discard_draft(record: TestRecord, user) -> None:
 
 
 @transaction.atomic
-def sign_record(record: TestRecord, user, password: str | None, *, check_password=True,
-                signed_at: dt.datetime | None = None,
+def sign_record(record: TestRecord, user, password: str | Reauthenticated | None, *,
+                check_password=True, signed_at: dt.datetime | None = None,
                 at: dt.datetime | None = None) -> TestRecord:
     """The performer signs a draft by re-entering the password; the record is then frozen.
 
+    ``password``: what the performer typed, or their ``Reauthenticated`` proof from
+    ``services.base.confirm_password`` (a batch checks once). ``check_password=False`` is
+    for the demo loader's invented past only; no request path passes it.
     ``signed_at`` is for loading historical records (import, demo); it defaults to now.
     ``at`` dates the history row the same way (default: now).
     """
@@ -245,9 +261,8 @@ def sign_record(record: TestRecord, user, password: str | None, *, check_passwor
         raise ValidationError("This record is already signed.")
     if record.performed_by_id != user.pk:
         raise PermissionDenied("Only the performer can sign this record.")
-    if check_password and not user.check_password(password or ""):
-        raise ValidationError({"password": "The password is not correct; the record is "
-                                           "still a draft."})
+    if check_password:
+        confirm_password(user, password, outcome="the record is still a draft")
     if not record.results.exists():
         raise ValidationError("Record at least one component result before signing.")
     record.full_clean()
@@ -266,8 +281,8 @@ def sign_record(record: TestRecord, user, password: str | None, *, check_passwor
 
 
 @transaction.atomic
-def verify_record(record: TestRecord, user, password: str | None, *, check_password=True,
-                  verified_at: dt.datetime | None = None,
+def verify_record(record: TestRecord, user, password: str | Reauthenticated | None, *,
+                  check_password=True, verified_at: dt.datetime | None = None,
                   at: dt.datetime | None = None) -> TestRecord:
     """A verifier (never the performer) countersigns a signed record."""
     record = TestRecord.objects.select_for_update().get(pk=record.pk)
@@ -278,9 +293,8 @@ def verify_record(record: TestRecord, user, password: str | None, *, check_passw
     if record.performed_by_id == user.pk:
         raise ValidationError({"verified_by": "The verifier must be another person than "
                                               "the performer."})
-    if check_password and not user.check_password(password or ""):
-        raise ValidationError({"password": "The password is not correct; nothing was "
-                                           "countersigned."})
+    if check_password:
+        confirm_password(user, password, outcome="nothing was countersigned")
     record.verified_by = user
     record.verified_by_name = person_name(user)
     record.verified_at = verified_at or timezone.now()

@@ -87,6 +87,11 @@ def test_validation_errors_are_keyed_by_field(world):
     assert TestRecord.objects.count() == 4  # two per site from the world, nothing new
 
 
+def _signed(items: list) -> dict:
+    """A bulk body: the items and the performer's password they are signed with."""
+    return {"password": f.PASSWORD, "results": items}
+
+
 def test_bulk_is_all_or_nothing_and_names_item_and_field(world):
     c = world.client("technician")
     before = (TestRecord.objects.count(), ComponentResult.objects.count())
@@ -94,14 +99,14 @@ def test_bulk_is_all_or_nothing_and_names_item_and_field(world):
              _item(world.own, "wo-2", results=[{"component": world.own.components[0].pk,
                                                 "as_found": "fail", "as_left": "pass"}]),
              _item(world.own, "wo-3", kind="nonsense")]
-    r = c.post("/api/test-results/bulk/", items, format="json")
+    r = c.post("/api/test-results/bulk/", _signed(items), format="json")
     assert r.status_code == 400
     assert r.json()["detail"] == "Nothing was written."
     errors = {(e["index"], e["field"]) for e in r.json()["errors"]}
     assert (2, "kind") in errors
     # Item 1 is well formed but breaks a rule of the model (a failure must be classified).
     items.pop()
-    r = c.post("/api/test-results/bulk/", items, format="json")
+    r = c.post("/api/test-results/bulk/", _signed(items), format="json")
     assert r.status_code == 400
     assert {(e["index"], e["field"]) for e in r.json()["errors"]} == {
         (1, "results[0].failure_mode")}
@@ -111,17 +116,17 @@ def test_bulk_is_all_or_nothing_and_names_item_and_field(world):
 def test_bulk_is_idempotent_by_client_key(world):
     c = world.client("technician")
     items = [_item(world.own, "wo-10"), _item(world.own, "wo-11", plan=None)]
-    first = c.post("/api/test-results/bulk/", items, format="json")
+    first = c.post("/api/test-results/bulk/", _signed(items), format="json")
     assert first.status_code == 201, first.content
     ids = [i["record"]["id"] for i in first.json()["items"]]
     assert all(i["record"]["status"] == "signed" for i in first.json()["items"])
     count = TestRecord.objects.count()
-    again = c.post("/api/test-results/bulk/", items, format="json")
+    again = c.post("/api/test-results/bulk/", _signed(items), format="json")
     assert again.status_code == 200
     assert [i["record"]["id"] for i in again.json()["items"]] == ids
     assert again.json()["created"] == 0 and TestRecord.objects.count() == count
     changed = [items[0], {**items[1], "remarks": "different"}]
-    conflict = c.post("/api/test-results/bulk/", changed, format="json")
+    conflict = c.post("/api/test-results/bulk/", _signed(changed), format="json")
     assert conflict.status_code == 409
     assert conflict.json()["errors"][0]["index"] == 1
     assert TestRecord.objects.count() == count
@@ -131,10 +136,10 @@ def test_bulk_is_idempotent_by_client_key(world):
 
 
 def test_bulk_refuses_auditor_and_other_sites(world):
-    assert world.client("auditor").post("/api/test-results/bulk/", [_item(world.own, "a")],
+    assert world.client("auditor").post("/api/test-results/bulk/", _signed([_item(world.own, "a")]),
                                         format="json").status_code == 403
     r = world.client("technician").post("/api/test-results/bulk/",
-                                        [_item(world.other, "b")], format="json")
+                                        _signed([_item(world.other, "b")]), format="json")
     assert r.status_code == 400 and r.json()["errors"][0]["field"] == "sif"
     assert not TestRecord.objects.filter(client_key__in=["a", "b"]).exists()
 

@@ -136,11 +136,12 @@ TABLE = [
     ("record correction", "post",
      lambda p, w, r: f"/api/test-records/{p.signed.pk}/correction/",
      lambda p: {"reason": "Wrong component ticked"}, CORRECTS),
-    ("bulk results", "post", lambda p, w, r: "/api/test-results/bulk/", lambda p: [{
-        "client_key": f"cmms-{p.site.code}-1", "sif_tag": p.sif.tag, "site": p.site.code,
-        "kind": "full", "performed_at": _ago(hours=2),
-        "results": [{"component_tag": c.tag, "as_found": "pass", "as_left": "pass"}
-                    for c in p.components]}], FIELD_CREATES),
+    ("bulk results", "post", lambda p, w, r: "/api/test-results/bulk/", lambda p: {
+        "password": f.PASSWORD, "results": [{
+            "client_key": f"cmms-{p.site.code}-1", "sif_tag": p.sif.tag, "site": p.site.code,
+            "kind": "full", "performed_at": _ago(hours=2),
+            "results": [{"component_tag": c.tag, "as_found": "pass", "as_left": "pass"}
+                        for c in p.components]}]}, FIELD_CREATES),
     ("demands list", "get", lambda p, w, r: "/api/demands/", None, LIST),
     ("demands detail", "get", lambda p, w, r: f"/api/demands/{p.demand.pk}/", None, READ),
     ("demands create", "post", lambda p, w, r: "/api/demands/", lambda p: {
@@ -157,7 +158,8 @@ TABLE = [
         "sif": p.sif.pk, "component": p.components[0].pk, "started_at": _ago(hours=1),
         "authorised_hours": 4, "reason": "Valve maintenance"}, FIELD_CREATES),
     ("bypasses authorise", "post",
-     lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/authorise/", lambda p: {}, DECIDES),
+     lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/authorise/",
+     lambda p: {"password": f.PASSWORD}, DECIDES),
     ("bypasses close", "post", lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/close/",
      lambda p: {}, FIELD_ACTS),
     ("bypasses delete", "delete", lambda p, w, r: f"/api/bypasses/{p.bypass.pk}/", None,
@@ -170,7 +172,8 @@ TABLE = [
         "proposed_on": (timezone.localdate() + dt.timedelta(days=45)).isoformat(),
         "reason": "Shutdown moved by six weeks"}, FIELD_CREATES),
     ("deferrals decide", "post", lambda p, w, r: f"/api/deferrals/{p.deferral.pk}/decide/",
-     lambda p: {"approve": True, "note": "Risk acceptable"}, DECIDES),
+     lambda p: {"approve": True, "note": "Risk acceptable", "password": f.PASSWORD},
+     DECIDES),
     ("deferrals update", "patch", lambda p, w, r: f"/api/deferrals/{p.deferral.pk}/",
      lambda p: {"reason": "x"}, NOT_ALLOWED),
     ("assessments list", "get", lambda p, w, r: "/api/assessments/", None, LIST),

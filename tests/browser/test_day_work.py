@@ -100,7 +100,7 @@ def test_a_failed_demand_moves_the_achieved_figure_and_a_bypass_is_closed(
         user=plant["tech"], sif=sif, started_at=timezone.now() - dt.timedelta(hours=5),
         authorised_hours=4, reason="XV-401 solenoid replaced",
         component=Component.objects.get(tag="XV-401"))
-    services.authorise_bypass(bypass, plant["lead"])
+    services.authorise_bypass(bypass, plant["lead"], f.PASSWORD)
     page.goto(f"{base}/operations/bypasses/{bypass.pk}/")
     page.get_by_role("button", name="Record the removal").click()
     expect(page.locator("#bypass-state")).to_contain_text("ran over")

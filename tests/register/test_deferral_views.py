@@ -48,7 +48,8 @@ def test_request_shows_projection_then_lead_approves(client, plant):
     assert client.post(reverse("deferrals:decide", args=[deferral.pk]),
                        {"decision": "approve"}).status_code == 403
     client.force_login(lead)
-    client.post(reverse("deferrals:decide", args=[deferral.pk]), {"decision": "approve"})
+    client.post(reverse("deferrals:decide", args=[deferral.pk]),
+                {"decision": "approve", "password": f.PASSWORD})
     deferral.refresh_from_db()
     assert deferral.status == choices.DeferralStatus.APPROVED
     assert deferral.projected_pfd_avg == pytest.approx(later, rel=1e-6)
@@ -126,7 +127,8 @@ def test_reject_without_a_note_keeps_the_request_and_the_form(client, overdue):
     deferral.refresh_from_db()
     assert deferral.status == choices.DeferralStatus.PENDING
     resp = client.post(reverse("deferrals:decide", args=[deferral.pk]),
-                       {"decision": "reject", "note": "Test it this week"})
+                       {"decision": "reject", "note": "Test it this week",
+                        "password": f.PASSWORD})
     assert resp.status_code == 302
     deferral.refresh_from_db()
     assert deferral.status == choices.DeferralStatus.REJECTED

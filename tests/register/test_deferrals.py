@@ -206,7 +206,7 @@ def test_the_requester_cannot_decide_his_own_deferral(world):
         assert "decided_by" in exc.value.message_dict
     deferral.refresh_from_db()
     assert deferral.status == Status.PENDING and deferral.decided_by is None
-    schedule_services.decide_deferral(deferral, world.lead2, approve=True)
+    schedule_services.decide_deferral(deferral, world.lead2, f.PASSWORD, approve=True)
     deferral.refresh_from_db()
     assert deferral.status == Status.APPROVED and deferral.decided_by == world.lead2
     assert Notification.objects.filter(subject_key=f"deferral:{deferral.pk}:approved",
@@ -237,7 +237,8 @@ def test_the_decision_history_is_dated_by_at(world):
         proposed_on=at.date() + dt.timedelta(days=300), at=at)
     assert asked.history.latest("history_id").history_date == at
     decided_at = at + dt.timedelta(days=2)
-    schedule_services.decide_deferral(asked, world.lead, approve=False, note="test on time",
+    schedule_services.decide_deferral(asked, world.lead, f.PASSWORD, approve=False,
+                                      note="test on time",
                                       at=decided_at)
     asked.refresh_from_db()
     assert asked.decided_at == decided_at
@@ -267,7 +268,8 @@ def test_the_api_ignores_a_client_due_date_and_projection(world):
 
     api.force_authenticate(world.lead)
     resp = api.post(f"/api/deferrals/{deferral.pk}/decide/",
-                    {"approve": True, "note": "", "projected_pfd_avg": 0.9}, format="json")
+                    {"approve": True, "note": "", "projected_pfd_avg": 0.9,
+                     "password": f.PASSWORD}, format="json")
     assert resp.status_code == 200, resp.content
     deferral.refresh_from_db()
     expected = schedule_services.projected_effect(world.late_plan, proposed)["deferred"]

@@ -336,7 +336,8 @@ def test_demo_sif_pack_holds_every_element(plant, client, django_capture_on_comm
     deferral = schedule_services.request_deferral(
         user=tech, plan=plan, proposed_on=today + dt.timedelta(days=130),
         reason="Spare solenoid on order", due_on=today + dt.timedelta(days=100))
-    schedule_services.decide_deferral(deferral, lead, approve=False, note="Refused: test on time")
+    schedule_services.decide_deferral(deferral, lead, demo.DEMO_PASSWORD, approve=False,
+                                      note="Refused: test on time")
 
     client.force_login(auditor)
     start = today - dt.timedelta(days=5 * 365)

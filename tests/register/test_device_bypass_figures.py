@@ -41,7 +41,7 @@ def test_a_device_bypass_worsens_the_achieved_figure_like_a_sif_bypass():
                 reason="valve positioner replaced", component=None if how == "sif" else valve,
                 compensating_measures="operator at the manual valve" if how == "compensated"
                 else "", measures_effective=how == "compensated")
-            services.authorise_bypass(b, lead)
+            services.authorise_bypass(b, lead, f.PASSWORD)
             services.close_bypass(b, tech, ended_at=ended)
         figures[how] = _achieved(sif, now)
     assert figures["device"] > figures["none"]

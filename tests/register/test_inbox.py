@@ -195,7 +195,8 @@ class TestNoticesAndPages:
         note = Notification.objects.get(recipient=p["lead"], subject_key=asked[1])
         assert note.link == f"/deferrals/{d.pk}/decide/"
         assert notices.deferral_requested(d) == 0
-        decide_deferral(d, p["lead"], approve=False, note="Test it at the planned stop.")
+        decide_deferral(d, p["lead"], f.PASSWORD, approve=False,
+                        note="Test it at the planned stop.")
         decided = (Kind.DEFERRAL, f"deferral:{d.pk}:rejected")
         assert decided in _keys(p["tech"])
         note = Notification.objects.get(recipient=p["tech"], subject_key=decided[1])

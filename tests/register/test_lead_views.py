@@ -319,7 +319,7 @@ def test_lead_decides_a_deferral_with_the_projection(client, plant):
     page = client.get(reverse("register:sif_detail", args=[plant["overdue"].pk])).content
     assert b"test on the proposed date" in page
     resp = client.post(reverse("deferrals:decide", args=[deferral.pk]),
-                       {"decision": "approve", "note": "",
+                       {"decision": "approve", "note": "", "password": f.PASSWORD,
                         "next": f"/sifs/{plant['overdue'].pk}/#deferrals"})
     assert resp.status_code == 302
     assert resp.url == f"/sifs/{plant['overdue'].pk}/#deferrals"  # back to the SIF page

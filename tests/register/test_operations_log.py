@@ -131,11 +131,11 @@ def test_a_bypass_waits_until_a_lead_who_did_not_ask_authorises_it(world):
     own.refresh_from_db()
     assert own.authorised_by is None
 
-    done = services.authorise_bypass(b, w.lead)
+    done = services.authorise_bypass(b, w.lead, f.PASSWORD)
     assert done.authorised_by == w.lead and done.authorisation == Auth.AUTHORISED
     assert abs((done.authorised_at - timezone.now()).total_seconds()) < 60
     with pytest.raises(ValidationError, match="already authorised"):
-        services.authorise_bypass(b, w.lead2)
+        services.authorise_bypass(b, w.lead2, f.PASSWORD)
     reasons = list(Bypass.history.filter(id=b.pk).order_by("history_id").values_list(
         "history_change_reason", "history_user"))
     assert reasons == [("bypass opened", w.tech.pk), ("bypass authorised", w.lead.pk)]
@@ -174,7 +174,7 @@ def test_bypass_time_counts_from_its_start_authorised_or_not(world):
     pending = adapter.recompute_many(SafetyFunction.objects.filter(pk=sif.pk), trigger="t",
                                      as_of=as_of)[0]
     assert pending.detail["bypass_hours_12m"] == pytest.approx(10.0, abs=1e-6)
-    services.authorise_bypass(b, w.lead)
+    services.authorise_bypass(b, w.lead, f.PASSWORD)
     authorised = adapter.recompute_many(SafetyFunction.objects.filter(pk=sif.pk),
                                         trigger="t", as_of=as_of)[0]
     assert authorised.detail["bypass_hours_12m"] == pending.detail["bypass_hours_12m"]
@@ -205,7 +205,7 @@ def test_closing_records_who_and_when_and_whether_it_ran_over(world):
 def test_the_operations_page_lists_what_the_overview_counts_as_open(world):
     w = world
     _bypass(w)
-    services.authorise_bypass(_bypass(w, sif=w.owned), w.lead)
+    services.authorise_bypass(_bypass(w, sif=w.owned), w.lead, f.PASSWORD)
     services.close_bypass(_bypass(w, sif=w.owned, started_at=_ago(hours=30),
                                   component=_devices(w.owned)[0]), w.tech,
                           ended_at=_ago(hours=29))
@@ -256,7 +256,7 @@ def test_the_bypass_form_refuses_bad_input_and_keeps_what_was_typed(world):
     b.refresh_from_db()
     assert b.authorised_by is None
     assert lead.post(f"/operations/bypasses/{b.pk}/authorise/",
-                     {"confirm": "yes"}).status_code == 302
+                     {"confirm": "yes", "password": f.PASSWORD}).status_code == 302
     b.refresh_from_db()
     assert b.authorised_by == w.lead
 
@@ -296,11 +296,14 @@ def test_the_api_records_the_caller_as_requester_never_as_authoriser(world):
     assert mine.status_code == 400  # another site's SIF does not exist for him
     mine = api[w.lead].post("/api/bypasses/", {**body, "component": w.lt.pk}, format="json")
     assert mine.status_code == 201
-    refused = api[w.lead].post(f"/api/bypasses/{mine.json()['id']}/authorise/")
+    refused = api[w.lead].post(f"/api/bypasses/{mine.json()['id']}/authorise/",
+                              {"password": f.PASSWORD}, format="json")
     assert refused.status_code == 400 and "authorised_by" in refused.json()
-    ok = api[w.lead].post(f"/api/bypasses/{data['id']}/authorise/")
+    ok = api[w.lead].post(f"/api/bypasses/{data['id']}/authorise/",
+                         {"password": f.PASSWORD}, format="json")
     assert ok.status_code == 200 and ok.json()["authorised_by"] == w.lead.pk
-    assert api[w.lead2].post(f"/api/bypasses/{mine.json()['id']}/authorise/").status_code == 200
+    assert api[w.lead2].post(f"/api/bypasses/{mine.json()['id']}/authorise/",
+                            {"password": f.PASSWORD}, format="json").status_code == 200
     for hours in (1e9, -1, 0, "NaN"):
         resp = api[w.tech].post("/api/bypasses/", {**body, "component": None,
                                                    "authorised_hours": hours}, format="json")
@@ -543,7 +546,7 @@ def test_findings_and_bypass_authorisers_are_in_the_evidence_pack(world, setting
     found = _record(w, choices.TestKind.FULL, _ago(days=15), fail=w.xv)
     finding = Finding.objects.get(result__record=found)
     b = _bypass(w, started_at=_ago(days=3), authorised_hours=6)
-    services.authorise_bypass(b, w.lead2)
+    services.authorise_bypass(b, w.lead2, f.PASSWORD)
     services.close_bypass(b, w.tech, ended_at=_ago(days=3) + dt.timedelta(hours=9))
     pack = EvidencePack.objects.create(scope="sif", site=w.north, sif=w.sif,
                                        requested_by=w.auditor,

@@ -118,7 +118,7 @@ def test_deferral_approved_moves_due_once_and_an_early_test_resets(plant):
                                   reason="turnaround")
     with pytest.raises(PermissionDenied):
         schedule_services.decide_deferral(d, tech, approve=True)  # technicians cannot decide
-    schedule_services.decide_deferral(d, lead, approve=True, note="accepted")
+    schedule_services.decide_deferral(d, lead, f.PASSWORD, approve=True, note="accepted")
     st = status_of(plan, today)
     assert st.due_on == today + dt.timedelta(days=40) and st.deferred
     # A second deferral of the same due date cannot be approved.

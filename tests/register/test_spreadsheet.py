@@ -70,7 +70,7 @@ def test_export_then_import_changes_nothing(plant, fmt):
     assert plan.errors == []
     assert {s.action for s in plan.steps} == {"unchanged"}
     before = _counts()
-    spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-RT")
+    spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-RT", f.PASSWORD)
     assert _counts() == before
     # The own rate and the failure found survive the trip.
     again = spreadsheet.export_rows(SafetyFunction.objects.filter(unit__site=plant["site"]))
@@ -103,7 +103,7 @@ def test_import_creates_sif_components_and_tests_then_reimport_is_unchanged(plan
     assert plan.errors == []
     assert [(s.row, s.action) for s in plan.steps] == [
         (2, "create"), (3, "create"), (4, "create"), (5, "create")]
-    spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-55")
+    spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-55", f.PASSWORD)
     sif = SafetyFunction.objects.get(tag="SIF-900")
     assert sif.plans.get().interval_months == 24
     assert Component.objects.get(tag="FT-900").lambda_du_per_hour == pytest.approx(5e-7)
@@ -166,7 +166,7 @@ def test_file_with_errors_writes_nothing_and_names_row_and_column(plant):
     assert "already used by SIF SIF-101" in message[(7, "component_tag")]
     assert str(plan.errors[0]).startswith("row 3, column unit (B)")
     with pytest.raises(spreadsheet.ImportFailed) as exc:
-        spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-1")
+        spreadsheet.apply_import(plant["site"], table, plant["lead"], "CR-1", f.PASSWORD)
     assert {(e.row, e.column) for e in exc.value.errors} == found
     assert _counts() == before
     assert not SafetyFunction.objects.filter(tag="SIF-500").exists()
@@ -194,7 +194,7 @@ def test_import_pages_check_then_confirm(client, plant):
     html = resp.content.decode()
     assert "High level trip → Renamed trip" in html and "Confirm the import" in html
     assert SafetyFunction.objects.get(tag="SIF-101").name == "High level trip"
-    resp = client.post("/import/", {"step": "confirm"})
+    resp = client.post("/import/", {"step": "confirm", "password": f.PASSWORD})
     assert resp.status_code == 302
     sif = SafetyFunction.objects.get(tag="SIF-101")
     assert sif.name == "Renamed trip"
@@ -224,7 +224,8 @@ def test_sample_file_in_fixtures_checks_clean():
         assert plan.errors == [], (name, plan.errors)
         assert plan.changes >= 5
     spreadsheet.apply_import(site, spreadsheet.read_table("s.xlsx", (
-        Path(settings.BASE_DIR) / "fixtures" / "sample_import.xlsx").read_bytes()), lead, "CR-S")
+        Path(settings.BASE_DIR) / "fixtures" / "sample_import.xlsx").read_bytes()), lead, "CR-S",
+        f.PASSWORD)
     assert SafetyFunction.objects.filter(unit__site=site).count() >= 2
     wb = load_workbook(io.BytesIO(spreadsheet.to_xlsx(spreadsheet.export_rows(
         SafetyFunction.objects.filter(unit__site=site)))))
