@@ -52,7 +52,9 @@ def _rank():
 
 
 def _latest(field: str):
-    newest = calculations().Assessment.objects.filter(sif_id=OuterRef("pk")).order_by("-computed_at", "-id")
+    # the one row flagged latest per SIF (partial unique index calcs_assess_one_latest):
+    # an index probe per row, whatever the length of the history
+    newest = calculations().Assessment.objects.filter(sif_id=OuterRef("pk"), latest=True)
     return Subquery(newest.values(field)[:1])
 
 
