@@ -23,6 +23,7 @@ plants), and the separate many-to-many history tables; none of these are chained
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import decimal
 import functools
@@ -33,10 +34,10 @@ import uuid
 from dataclasses import dataclass, field
 
 from django.apps import apps
-from django.db import transaction
+from django.db import connection, transaction
 from django.utils import timezone
 
-from register.models import GENESIS_HASH, ChainEntry, ChainHead
+from register.models import GENESIS_HASH, ChainCheckpoint, ChainEntry, ChainHead
 from register.people import person_name
 
 HEAD_PK = 1
@@ -241,95 +242,281 @@ class VerifyResult:
     history_rows: int
     first_break: Break | None = None
     checked_at: dt.datetime = field(default_factory=timezone.now)
+    #: True: recomputed from the first entry; False: from the checkpoint ``from_seq`` on.
+    full: bool = True
+    from_seq: int = 0
+    #: When the whole chain was last verified from its first entry, and whether it held.
+    full_verified_at: dt.datetime | None = None
+    full_verified_ok: bool | None = None
 
     def summary(self) -> str:
+        scope = "" if self.full else f" (checked from entry #{self.from_seq})"
         if self.ok:
             return (f"Chain intact: {self.entries} entries, {self.history_rows} history rows; "
-                    f"head #{self.head_seq} {self.head_hash}")
-        return f"Chain BROKEN at {self.first_break}"
+                    f"head #{self.head_seq} {self.head_hash}{scope}")
+        return f"Chain BROKEN at {self.first_break}{scope}"
 
 
-def verify_chain() -> VerifyResult:
-    """Recompute every entry from the historical rows and the chain; report the first break.
+def _hash_rows(label: str, model, rows, m2m: dict) -> dict[int, set[str]]:
+    """history_id -> the content hashes each row may carry (with and without the columns
+    added later, see ``ADDED_LATER``)."""
+    has_m2m = bool(m2m_history_models(model))
+    out = {}
+    for row in rows:
+        links = m2m.get(row["history_id"])
+        accepted = {content_hash(row_content(row, links, has_m2m))}
+        before = _as_chained_before(label, row)
+        if before is not None:
+            accepted.add(content_hash(row_content(before, links, has_m2m)))
+        out[row["history_id"]] = accepted
+    return out
+
+
+def _all_content_hashes(models_by_label) -> dict[str, dict[int, set[str]]]:
+    """Content hashes of every historical row, streamed per model."""
+    return {label: _hash_rows(
+        label, model, model._default_manager.order_by().values().iterator(chunk_size=2000),
+        _m2m_rows(model, None) if m2m_history_models(model) else {})
+        for label, model in models_by_label.items()}
+
+
+def _content_hashes_of(models_by_label, entries) -> dict[str, dict[int, set[str]]]:
+    """Content hashes of just the historical rows the given entries cover."""
+    wanted: dict[str, list[int]] = {}
+    for e in entries:
+        wanted.setdefault(e.model_label, []).append(e.history_id)
+    current: dict[str, dict[int, set[str]]] = {}
+    for label, ids in wanted.items():
+        model = models_by_label.get(label)
+        if model is None:
+            continue
+        hashes: dict[int, set[str]] = {}
+        for start in range(0, len(ids), 5000):
+            chunk = ids[start:start + 5000]
+            m2m = _m2m_rows(model, chunk) if m2m_history_models(model) else {}
+            hashes.update(_hash_rows(label, model, model._default_manager.order_by().filter(
+                history_id__in=chunk).values(), m2m))
+        current[label] = hashes
+    return current
+
+
+def _check_entry(e: ChainEntry, current) -> Break | None:
+    """The entry's own hash and the content of the historical row it covers."""
+    if entry_hash(e.prev_hash, e) != e.entry_hash:
+        return Break(e.seq, e.model_label, e.object_id, e.history_id, "entry altered",
+                     "The entry's fields no longer give its recorded hash.")
+    rows = current.get(e.model_label)
+    if rows is None or e.history_id not in rows:
+        return Break(e.seq, e.model_label, e.object_id, e.history_id, "history row deleted",
+                     "The historical row this entry covers no longer exists.")
+    if e.content_hash not in rows[e.history_id]:
+        return Break(e.seq, e.model_label, e.object_id, e.history_id, "content changed",
+                     f"The historical row now hashes to {min(rows[e.history_id])} instead of "
+                     f"{e.content_hash}.")
+    return None
+
+
+def _coverage_break(models_by_label, label: str, history_ids: set[int],
+                    chained_ids: set[int]) -> Break | None:
+    """A historical row without an entry, or an entry whose historical row is gone."""
+    model = models_by_label[label]
+    missing = sorted(history_ids - chained_ids)
+    if missing:
+        row = _row_of(model, missing[0])
+        pk_name = model.instance_type._meta.pk.attname
+        return Break(None, label, str(row[pk_name]), missing[0], "entry missing",
+                     f"{len(missing)} historical row(s) of this model have no chain entry.")
+    gone = sorted(chained_ids - history_ids)
+    if gone:
+        e = ChainEntry.objects.filter(model_label=label, history_id=gone[0]).first()
+        return Break(e.seq if e else None, label, e.object_id if e else "?", gone[0],
+                     "history row deleted",
+                     f"{len(gone)} historical row(s) of this model that the chain covers no "
+                     "longer exist.")
+    return None
+
+
+def _counted_coverage(models_by_label) -> tuple[int, int, Break | None]:
+    """Every historical row has one entry and every entry its row, by counting per model
+    (one query per model and one for the chain); a model whose counts differ is compared
+    row by row. Returns (historical rows, entries, first break)."""
+    from django.db.models import Count
+
+    chained = dict(ChainEntry.objects.order_by().values_list("model_label").annotate(
+        n=Count("id")).values_list("model_label", "n"))
+    total, first = 0, None
+    for label, model in models_by_label.items():
+        n = model._default_manager.count()
+        total += n
+        if first is None and n != chained.get(label, 0):
+            first = _coverage_break(
+                models_by_label, label,
+                set(model._default_manager.values_list("history_id", flat=True)),
+                set(ChainEntry.objects.filter(model_label=label).values_list(
+                    "history_id", flat=True)))
+    return total, sum(chained.values()), first
+
+
+def _walk(entries, prev_hash: str, expected_seq: int, seen, lookup):
+    """Go through ``entries`` in order: unbroken sequence, each linked to the one before,
+    each entry and its historical row as hashed (``lookup(batch)`` gives the rows' content
+    hashes). Notes every covered history id in ``seen`` (unless None). Returns (entries
+    seen, the last one, the first break)."""
+    count, last, first = 0, None, None
+    for batch in _batched(entries.iterator(chunk_size=2000), 2000):
+        count += len(batch)
+        last = batch[-1]
+        if seen is not None:
+            for e in batch:
+                if e.model_label in seen:
+                    seen[e.model_label].add(e.history_id)
+        if first is not None:
+            continue
+        rows = lookup(batch)
+        for e in batch:
+            if e.seq != expected_seq:
+                first = Break(expected_seq, "?", "?", None, "entry missing",
+                              f"Entries #{expected_seq}..#{e.seq - 1} are missing from the "
+                              "chain.")
+            elif e.prev_hash != prev_hash:
+                first = Break(e.seq, e.model_label, e.object_id, e.history_id,
+                              "entry missing",
+                              "The entry does not link to the previous entry's hash.")
+            else:
+                first = _check_entry(e, rows)
+            if first is not None:
+                break
+            prev_hash, expected_seq = e.entry_hash, e.seq + 1
+    return count, last, first
+
+
+def _batched(iterable, n):
+    batch = []
+    for item in iterable:
+        batch.append(item)
+        if len(batch) == n:
+            yield batch
+            batch = []
+    if batch:
+        yield batch
+
+
+@contextlib.contextmanager
+def _snapshot():
+    """On PostgreSQL, read everything from one snapshot (REPEATABLE READ), so a write that
+    commits half-way through a check is seen either wholly or not at all. Inside an outer
+    transaction (tests, a request already in one) the reads share that transaction."""
+    if connection.vendor != "postgresql" or connection.in_atomic_block:
+        yield
+        return
+    with transaction.atomic():
+        with connection.cursor() as cur:
+            cur.execute("SET TRANSACTION ISOLATION LEVEL REPEATABLE READ READ ONLY")
+        yield
+
+
+def checkpoint() -> ChainCheckpoint | None:
+    return ChainCheckpoint.objects.filter(pk=HEAD_PK).first()
+
+
+def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyResult:
+    """Recompute the chain from the historical rows; report the first break.
+
+    ``incremental=False`` (the default) recomputes every entry from the first one.
+    ``incremental=True`` starts at the checkpoint the last intact check reached: it first
+    confirms that entry still hashes to the hash recorded with the checkpoint, then
+    recomputes every later entry and the rows they cover; rows and entries before the
+    checkpoint are only counted (a deleted historical row or entry shows; a historical row
+    changed in place before the checkpoint is found by the next full check). Without a
+    checkpoint, or while the last full check found the chain broken, it checks in full.
 
     Breaks, in the order of the chain: an entry whose own fields no longer give its hash
     (entry altered), a gap in sequence or a link to a hash that is not the previous entry's
     (entry missing), a historical row that no longer exists (history row deleted), a
     historical row whose content no longer gives the recorded hash (content changed).
     After the last entry: the head must name it, and no historical row may lack an entry.
+
+    With ``record`` an intact result moves the checkpoint to the head (and a full check
+    records its time and outcome in any case).
     """
     models_by_label = historical_models()
-    # Content hashes of every historical row, streamed per model.
-    current: dict[str, dict[int, str]] = {}
-    total_rows = 0
-    for label, model in models_by_label.items():
-        hashes = {}
-        has_m2m = bool(m2m_history_models(model))
-        m2m = _m2m_rows(model, None) if has_m2m else {}
-        for row in model._default_manager.order_by().values().iterator(chunk_size=2000):
-            links = m2m.get(row["history_id"])
-            accepted = {content_hash(row_content(row, links, has_m2m))}
-            before = _as_chained_before(label, row)
-            if before is not None:
-                accepted.add(content_hash(row_content(before, links, has_m2m)))
-            hashes[row["history_id"]] = accepted
-        current[label] = hashes
-        total_rows += len(hashes)
-
-    seen: dict[str, set[int]] = {label: set() for label in models_by_label}
-    prev_hash, expected_seq, count = GENESIS_HASH, 1, 0
+    cp = checkpoint()
+    # A chain the last full check found broken is checked in full until it holds again.
+    start = cp.seq if (incremental and cp is not None and cp.seq > 0
+                       and cp.full_verified_ok is not False) else 0
     first: Break | None = None
-    last = None
-    for e in ChainEntry.objects.order_by("seq").iterator(chunk_size=2000):
-        count += 1
-        last = e
-        if first is None:
-            if e.seq != expected_seq:
-                first = Break(expected_seq, "?", "?", None, "entry missing",
-                              f"Entries #{expected_seq}..#{e.seq - 1} are missing from the "
-                              "chain.")
-            elif e.prev_hash != prev_hash:
-                first = Break(e.seq, e.model_label, e.object_id, e.history_id, "entry missing",
-                              "The entry does not link to the previous entry's hash.")
-            elif entry_hash(e.prev_hash, e) != e.entry_hash:
-                first = Break(e.seq, e.model_label, e.object_id, e.history_id, "entry altered",
-                              "The entry's fields no longer give its recorded hash.")
-            else:
-                rows = current.get(e.model_label)
-                if rows is None or e.history_id not in rows:
-                    first = Break(e.seq, e.model_label, e.object_id, e.history_id,
-                                  "history row deleted",
-                                  "The historical row this entry covers no longer exists.")
-                elif e.content_hash not in rows[e.history_id]:
-                    first = Break(e.seq, e.model_label, e.object_id, e.history_id,
-                                  "content changed",
-                                  f"The historical row now hashes to "
-                                  f"{min(rows[e.history_id])} instead of {e.content_hash}.")
-        if e.model_label in seen:
-            seen[e.model_label].add(e.history_id)
-        prev_hash, expected_seq = e.entry_hash, e.seq + 1
+    with _snapshot():
+        entries = ChainEntry.objects.order_by("seq")
+        if start:
+            entries = entries.filter(seq__gte=start)
+            from_entry = ChainEntry.objects.filter(seq=start).first()
+            if from_entry is None:
+                first = Break(start, "?", "?", None, "entry missing",
+                              f"Entry #{start}, where the last check stopped, is gone.")
+            elif from_entry.entry_hash != cp.entry_hash:
+                first = Break(start, from_entry.model_label, from_entry.object_id,
+                              from_entry.history_id, "entry altered",
+                              f"Entry #{start}, where the last check stopped, now carries a "
+                              f"different hash than was verified then ({cp.entry_hash}).")
+            prev_hash = from_entry.prev_hash if from_entry else GENESIS_HASH
+            expected_seq = start
+            current = None  # looked up per batch below
+        else:
+            prev_hash, expected_seq = GENESIS_HASH, 1
+            current = _all_content_hashes(models_by_label)
 
-    head = ChainHead.objects.filter(pk=HEAD_PK).first()
-    head_seq = last.seq if last else 0
-    head_hash = last.entry_hash if last else GENESIS_HASH
-    if first is None and head is not None and (head.last_seq, head.last_hash) != (
-            head_seq, head_hash):
-        first = Break(head.last_seq, "?", "?", None, "entry missing",
-                      f"The chain head names entry #{head.last_seq} but the last entry is "
-                      f"#{head_seq}.")
-    if first is None:
-        for label, rows in current.items():
-            missing = sorted(set(rows) - seen[label])
-            if missing:
-                model = models_by_label[label]
-                row = _row_of(model, missing[0])
-                pk_name = model.instance_type._meta.pk.attname
-                first = Break(None, label, str(row[pk_name]), missing[0], "entry missing",
-                              f"{len(missing)} historical row(s) of this model have no chain "
-                              "entry.")
-                break
-    return VerifyResult(ok=first is None, entries=count, head_seq=head_seq,
-                        head_hash=head_hash, history_rows=total_rows, first_break=first)
+        seen: dict[str, set[int]] = {label: set() for label in models_by_label}
+        count, last, walked = _walk(
+            entries, prev_hash, expected_seq, seen if current is not None else None,
+            (lambda batch: current) if current is not None
+            else (lambda batch: _content_hashes_of(models_by_label, batch)))
+        first = first or walked
+
+        head = ChainHead.objects.filter(pk=HEAD_PK).first()
+        if last is None and start:
+            last = ChainEntry.objects.order_by("-seq").first()
+        head_seq = last.seq if last else 0
+        head_hash = last.entry_hash if last else GENESIS_HASH
+        if first is None and head is not None and (head.last_seq, head.last_hash) != (
+                head_seq, head_hash):
+            first = Break(head.last_seq, "?", "?", None, "entry missing",
+                          f"The chain head names entry #{head.last_seq} but the last entry is "
+                          f"#{head_seq}.")
+        if current is not None:
+            total_rows = sum(len(rows) for rows in current.values())
+            if first is None:
+                for label, rows in current.items():
+                    first = _coverage_break(models_by_label, label, set(rows), seen[label])
+                    if first is not None:
+                        break
+        else:
+            total_rows, count, coverage = _counted_coverage(models_by_label)
+            first = first or coverage
+
+    result = VerifyResult(ok=first is None, entries=count, head_seq=head_seq,
+                          head_hash=head_hash, history_rows=total_rows, first_break=first,
+                          full=not start, from_seq=start)
+    if record:
+        _record(result)
+    cp = checkpoint()
+    if cp is not None:
+        result.full_verified_at, result.full_verified_ok = cp.full_verified_at, \
+            cp.full_verified_ok
+    return result
+
+
+def _record(result: VerifyResult) -> None:
+    """Move the checkpoint to the head after an intact check (never backwards); note a full
+    check's time and outcome either way."""
+    with transaction.atomic():
+        cp, _ = ChainCheckpoint.objects.select_for_update().get_or_create(pk=HEAD_PK)
+        if result.ok and result.head_seq >= cp.seq:
+            cp.seq, cp.entry_hash = result.head_seq, result.head_hash
+            cp.verified_at = result.checked_at
+        if result.full:
+            cp.full_verified_at, cp.full_verified_ok = result.checked_at, result.ok
+            cp.full_verified_seq = result.head_seq
+        cp.save()
 
 
 # ---------------------------------------------------------------------------------------

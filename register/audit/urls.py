@@ -6,6 +6,7 @@ app_name = "audit"
 
 urlpatterns = [
     path("chain/", v.chain, name="chain"),
+    path("chain/verify/", v.chain_verify_full, name="chain_verify_full"),
     path("packs/", v.packs, name="packs"),
     path("packs/<int:pk>/", v.pack_detail, name="pack_detail"),
     path("packs/<int:pk>/status.json", v.pack_status, name="pack_status"),

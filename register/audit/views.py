@@ -1,8 +1,9 @@
 """Auditor pages: the change chain check, evidence packs, and a SIF as it stood on a date.
 
 Every view checks the person's rights at the site concerned (``register.permissions``).
-Auditors read and export only. The one POST they may make is asking for an evidence pack:
-that is an export (Action.EXPORT), it writes only the pack request itself, never a
+Auditors read and export only. The POSTs they may make are asking for an evidence pack
+(an export, Action.EXPORT, which writes only the pack request itself) and asking for the
+change chain to be verified in full (which writes only the chain's checkpoint); never a
 register or test record. All other writes stay refused to auditors by the services.
 """
 
@@ -59,17 +60,37 @@ def record_label(model_label: str) -> str:
     return str(model._meta.verbose_name)
 
 
-@login_required
-def chain(request):
-    """Verify the chain now and show the result with the newest entries."""
-    user = request.user
+def _chain_reader(user):
     if not can_somewhere(user, Action.VIEW_CHAIN):
         raise PermissionDenied("The change chain is open to auditors and leads.")
-    result = verify_chain()
+
+
+@login_required
+def chain(request):
+    """Verify the chain from where the last check stopped and show the result with the
+    newest entries."""
+    user = request.user
+    _chain_reader(user)
+    result = verify_chain(incremental=True)
     recent = entries_for(user)
     for e in recent:
         e.record_label = record_label(e.model_label)
     return render(request, "register/audit/chain.html", {"result": result, "recent": recent})
+
+
+@login_required
+@require_http_methods(["POST"])
+def chain_verify_full(request):
+    """Recompute the whole chain from its first entry (writes only the checkpoint)."""
+    _chain_reader(request.user)
+    result = verify_chain(incremental=False)
+    if result.ok:
+        messages.success(request, f"The whole chain was verified from its first entry: "
+                                  f"{result.entries} entries intact.")
+    else:
+        messages.error(request, f"The whole chain was verified from its first entry: broken at "
+                                f"{result.first_break}")
+    return redirect("audit:chain")
 
 
 # ---------------------------------------------------------------------------------------

@@ -8,6 +8,7 @@ Every model is importable from here; migrations name the validators by this path
 from register.models.audit import (
     GENESIS_HASH,
     ChainAppendOnlyError,
+    ChainCheckpoint,
     ChainEntry,
     ChainHead,
     EvidencePack,
@@ -67,6 +68,7 @@ __all__ = [
     "Attachment",
     "Bypass",
     "ChainAppendOnlyError",
+    "ChainCheckpoint",
     "ChainEntry",
     "ChainHead",
     "Component",

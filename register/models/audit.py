@@ -83,6 +83,30 @@ class ChainEntry(models.Model):
         raise ChainAppendOnlyError("Chain entries cannot be deleted.")
 
 
+class ChainCheckpoint(models.Model):
+    """One row: how far the chain was last verified, so a check need only go on from there.
+
+    ``seq``/``entry_hash`` name the newest entry the last intact verification reached (the
+    next check starts at that entry and first confirms it still hashes to ``entry_hash``);
+    ``full_verified_at`` is when the whole chain was last recomputed from its first entry
+    (``register.audit.chain.verify_chain``). Written only by verification."""
+
+    seq = models.PositiveBigIntegerField(_("verified up to entry"), default=0)
+    entry_hash = models.CharField(_("hash of that entry"), max_length=64, default=GENESIS_HASH)
+    verified_at = models.DateTimeField(_("last verified at"), null=True, blank=True)
+    full_verified_at = models.DateTimeField(_("last verified in full at"), null=True,
+                                            blank=True)
+    full_verified_seq = models.PositiveBigIntegerField(_("entries at the last full check"),
+                                                       null=True, blank=True)
+    full_verified_ok = models.BooleanField(_("intact at the last full check"), null=True)
+
+    class Meta:
+        verbose_name = _("change chain checkpoint")
+
+    def __str__(self):
+        return f"chain verified up to #{self.seq}"
+
+
 class EvidencePack(models.Model):
     """A request for an evidence pack (one SIF, a unit or a site, over a period)."""
 

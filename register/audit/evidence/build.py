@@ -35,7 +35,7 @@ def build(pack: EvidencePack, progress=None) -> Path:
     """Build the zip for ``pack``; return its path. ``progress(percent, text)`` is called
     along the way."""
     progress = progress or (lambda p, s: None)
-    chain = verify_chain()
+    chain = verify_chain(incremental=True)
     progress(5, "Change chain verified")
     col = collect(pack, progress)
     charts = figures(pack, col, progress)
