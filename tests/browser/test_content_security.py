@@ -139,3 +139,19 @@ def test_api_docs_render_without_violations(plant, live_server, page):
                                                                     timeout=15_000)
     expect(page.locator(".opblock").first).to_be_visible()
     watch.assert_clean()
+
+
+@pytest.mark.browser
+def test_sif_page_charts_load_under_the_policy(plant, live_server, page):
+    """The charts are SVG files of the site itself: they need no data: images."""
+    need(shutil.which("chromium") is not None, "Chromium not installed")
+    watch = Watch(page)
+    url = f"/sifs/{plant['sif'].pk}/"
+    sign_in(page, live_server.url, "lead", url)
+    charts = page.locator("figure.chart img")
+    expect(charts).to_have_count(2)
+    for chart in charts.all():
+        chart.scroll_into_view_if_needed()
+        page.wait_for_function("img => img.complete", arg=chart.element_handle())
+        assert chart.evaluate("img => img.naturalWidth") > 0
+    watch.assert_clean()
