@@ -22,9 +22,9 @@ from register.days import local_date
 from register.inbox import notices
 from register.models import Deferral, TestPlan
 from register.permissions import Action, require
+from register.reauth import confirm_password
 from register.schedule import followup
 from register.schedule.due import PlanStatus, add_months, compute_statuses, status_of
-from register.services.base import confirm_password
 
 Status = choices.DeferralStatus
 

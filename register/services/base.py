@@ -4,14 +4,13 @@ every signature and approval, and the rule that a write names only objects of it
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 from django.core.exceptions import ValidationError
 
 from register.models import (
     SafetyFunction,
 )
 from register.permissions import site_id_of
+from register.reauth import Reauthenticated, confirm_password  # noqa: F401 (the one check)
 
 
 def _sif_id_of(instance) -> int | None:
@@ -26,36 +25,6 @@ def _sif_id_of(instance) -> int | None:
         except AttributeError:
             continue
     return None
-
-
-# ---------------------------------------------------------------------------------------
-# Re-authentication: every signature, countersignature, approval and authorisation
-# ---------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class Reauthenticated:
-    """Proof that ``user_id`` re-entered the password in this request. A batch (the bulk
-    API, a spreadsheet import) checks the password once and signs each record with the
-    proof, instead of hashing the password once per record."""
-
-    user_id: int
-
-
-def confirm_password(user, password, *, outcome: str = "nothing was written") -> Reauthenticated:
-    """The one check of a person's password before they sign, countersign, approve or
-    authorise. ``password`` is what they typed, or the :class:`Reauthenticated` proof of
-    this same person from earlier in the request. A missing or wrong password raises a
-    ValidationError keyed ``password``; ``outcome`` tells what stays as it was."""
-    if isinstance(password, Reauthenticated):
-        if password.user_id == user.pk:
-            return password
-        password = None
-    if not password:
-        raise ValidationError({"password": f"Enter your password to confirm; {outcome}."})
-    if not user.check_password(password):
-        raise ValidationError({"password": f"The password is not correct; {outcome}."})
-    return Reauthenticated(user.pk)
 
 
 # ---------------------------------------------------------------------------------------
