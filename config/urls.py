@@ -4,12 +4,12 @@ from django.templatetags.static import static
 from django.urls import include, path
 
 from register.accounts.landing import landing
-from register.accounts.views import ThrottledAdminLoginView, ThrottledLoginView
+from register.accounts.views import LimitedPasswordResetView
 
 urlpatterns = [
-    path("admin/login/", ThrottledAdminLoginView.as_view(), name="admin_login"),
     path("admin/", admin.site.urls),
-    path("accounts/login/", ThrottledLoginView.as_view(), name="login"),
+    path("accounts/password_reset/", LimitedPasswordResetView.as_view(),
+         name="password_reset"),
     path("start/", landing, name="landing"),
     path("favicon.ico", lambda request: redirect(static("favicon.svg"), permanent=True)),
     path("accounts/", include("django.contrib.auth.urls")),

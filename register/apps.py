@@ -12,3 +12,14 @@ class RegisterConfig(AppConfig):
         from register.audit.chain import on_history
 
         post_create_historical_record.connect(on_history, dispatch_uid="register.audit.chain")
+
+        from django.contrib.auth import get_user_model
+        from django.db.models.signals import post_save, pre_save
+
+        from register.accounts import tokens
+
+        user_model = get_user_model()
+        pre_save.connect(tokens.note_password_change, sender=user_model,
+                         dispatch_uid="register.accounts.tokens.note")
+        post_save.connect(tokens.revoke_on_password_change, sender=user_model,
+                          dispatch_uid="register.accounts.tokens.revoke")

@@ -91,7 +91,8 @@ DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
 
 AUTH_PASSWORD_VALIDATORS = [
     {"NAME": "django.contrib.auth.password_validation.UserAttributeSimilarityValidator"},
-    {"NAME": "django.contrib.auth.password_validation.MinimumLengthValidator"},
+    {"NAME": "django.contrib.auth.password_validation.MinimumLengthValidator",
+     "OPTIONS": {"min_length": 12}},
     {"NAME": "django.contrib.auth.password_validation.CommonPasswordValidator"},
     {"NAME": "django.contrib.auth.password_validation.NumericPasswordValidator"},
 ]
@@ -182,7 +183,7 @@ REST_FRAMEWORK = {
     # Token first, so a request without credentials is answered 401 (with a
     # WWW-Authenticate header), not 403.
     "DEFAULT_AUTHENTICATION_CLASSES": [
-        "rest_framework.authentication.TokenAuthentication",
+        "register.api.authentication.ExpiringTokenAuthentication",
         "rest_framework.authentication.SessionAuthentication",
     ],
     "DEFAULT_PERMISSION_CLASSES": ["rest_framework.permissions.IsAuthenticated"],
@@ -259,3 +260,33 @@ CONTENT_SECURITY_POLICY = {
         "frame-ancestors": ["'none'"],
     },
 }
+
+# --- Sign-in and credentials (register/accounts/signin.py, register/api/authentication.py)
+# SIGNIN_MAX_FAILURES failed sign-ins lock one user name from one address (other users, and
+# the same user from another address, are unaffected) for SIGNIN_LOCK_MINUTES after the last
+# failure. django-axes counts them in the database, so every web process shares the count;
+# it covers the sign-in page, the admin's and POST /api/token/. The admin lists the locks
+# (Axes: access attempts); deleting one unlocks at once.
+INSTALLED_APPS += ["axes"]
+MIDDLEWARE += ["axes.middleware.AxesMiddleware"]
+AUTHENTICATION_BACKENDS = ["axes.backends.AxesStandaloneBackend",
+                           "django.contrib.auth.backends.ModelBackend"]
+AXES_HANDLER = "axes.handlers.database.AxesDatabaseHandler"
+AXES_FAILURE_LIMIT = env_int("SIGNIN_MAX_FAILURES", 5)
+AXES_COOLOFF_TIME = __import__("datetime").timedelta(minutes=env_int("SIGNIN_LOCK_MINUTES", 15))
+AXES_LOCKOUT_PARAMETERS = [["username", "ip_address"]]
+AXES_RESET_ON_SUCCESS = True
+AXES_RESET_COOL_OFF_ON_FAILURE_DURING_LOCKOUT = False  # the stated end of a lock holds
+AXES_LOCKOUT_CALLABLE = "register.accounts.signin.locked_out"
+# The client's address is REMOTE_ADDR, or X-Forwarded-For when REMOTE_ADDR is one of these
+# proxies (which must set that header itself, as deploy/Caddyfile does).
+TRUSTED_PROXIES = env_list("TRUSTED_PROXIES")
+AXES_CLIENT_IP_CALLABLE = "register.accounts.signin.client_address"
+# Password-reset requests per address (DRF's throttle, counted in the cache).
+REST_FRAMEWORK["DEFAULT_THROTTLE_RATES"]["password_reset"] = env_str(
+    "PASSWORD_RESET_RATE", "5/hour")
+# An API token lasts API_TOKEN_DAYS from its issue; a password change revokes the user's.
+API_TOKEN_DAYS = env_int("API_TOKEN_DAYS", 30)
+# A signed-in session ends after SESSION_IDLE_MINUTES without a request.
+SESSION_COOKIE_AGE = env_int("SESSION_IDLE_MINUTES", 60) * 60
+SESSION_SAVE_EVERY_REQUEST = True

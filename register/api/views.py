@@ -14,8 +14,14 @@ from django.core.exceptions import ValidationError as DjangoValidationError
 from django.db import IntegrityError, transaction
 from django.utils import timezone
 from drf_spectacular.types import OpenApiTypes
-from drf_spectacular.utils import OpenApiResponse, extend_schema, extend_schema_view
+from drf_spectacular.utils import (
+    OpenApiResponse,
+    extend_schema,
+    extend_schema_view,
+    inline_serializer,
+)
 from rest_framework import mixins, status, viewsets
+from rest_framework import serializers as drf_serializers
 from rest_framework.authtoken.views import ObtainAuthToken
 from rest_framework.decorators import action
 from rest_framework.exceptions import APIException
@@ -27,6 +33,7 @@ from rest_framework.views import APIView
 from rest_framework.views import exception_handler as drf_exception_handler
 
 from register import services
+from register.accounts import tokens
 from register.api import filters
 from register.api import serializers as s
 from register.api.permissions import LedgerPermission
@@ -81,10 +88,28 @@ def exception_handler(exc, context):
 
 
 class ObtainToken(ObtainAuthToken):
-    """Exchange a username and password for an API token (throttled per address)."""
+    """Exchange a username and password for an API token (throttled per address; repeated
+    failures lock the user name at that address, see ``register.accounts.signin``). A token
+    lasts ``API_TOKEN_DAYS``; an expired one is replaced by a new one here."""
 
     throttle_classes = [ScopedRateThrottle]
     throttle_scope = "login"
+
+    def get_serializer_context(self):
+        # The sign-in limit marks the Django request, which its middleware answers.
+        return {**super().get_serializer_context(), "request": self.request._request}
+
+    @extend_schema(responses={200: inline_serializer("IssuedToken", {
+        "token": drf_serializers.CharField(),
+        "expires_at": drf_serializers.DateTimeField()})})
+    def post(self, request, *args, **kwargs):
+        serializer = self.get_serializer(data=request.data)
+        if not serializer.is_valid():
+            # Answered, not raised: a raised error would roll back the request's
+            # transaction, and with it the failure the sign-in limit just counted.
+            return Response(serializer.errors, status=status.HTTP_400_BAD_REQUEST)
+        token = tokens.issue(serializer.validated_data["user"])
+        return Response({"token": token.key, "expires_at": tokens.expires_at(token)})
 
 
 # --- Base classes ---------------------------------------------------------------------
