@@ -13,6 +13,8 @@ ALLOWED_HOSTS = env_list("ALLOWED_HOSTS")
 if not ALLOWED_HOSTS:
     raise ImproperlyConfigured("ALLOWED_HOSTS must list the host names this site answers to")
 
+# Safe only behind the proxy, the one way in: Caddy (deploy/Caddyfile) sets the header itself
+# and drops a client's; gunicorn is not published (docker-compose.yml).
 SECURE_PROXY_SSL_HEADER = ("HTTP_X_FORWARDED_PROTO", "https")
 SECURE_SSL_REDIRECT = env_bool("SECURE_SSL_REDIRECT", True)
 SESSION_COOKIE_SECURE = True
