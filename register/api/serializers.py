@@ -36,6 +36,7 @@ from register.models import (
     TestStep,
 )
 from register.models.base import plausible, plausible_date
+from register.services.design import current_version
 
 #: Longest free text (reasons, remarks, descriptions) a request may carry, in characters.
 MAX_TEXT = 20_000
@@ -159,8 +160,19 @@ class DesignSerializer(LedgerModelSerializer):
 
     change_reason = serializers.CharField(write_only=True, max_length=500)
     change_reference = serializers.CharField(write_only=True, max_length=60)
+    version = serializers.SerializerMethodField(help_text=(
+        "The record's version: the id of its newest history row. A change (PUT or PATCH) "
+        "sends it back as expected_version."))
+    expected_version = serializers.IntegerField(
+        write_only=True, required=False, min_value=1, max_value=2**62, help_text=(
+            "Required on PUT and PATCH: the version the change is based on. When the record "
+            "has changed since, nothing is written (409, with the current version)."))
     # The parent a record hangs under; set on create, never moved by an update.
     parent_field: str = ""
+
+    def get_field_names(self, declared_fields, info):
+        return [*super().get_field_names(declared_fields, info), "version",
+                "expected_version"]
 
     def get_fields(self):
         fields = super().get_fields()
@@ -168,10 +180,19 @@ class DesignSerializer(LedgerModelSerializer):
             fields[self.parent_field].read_only = True
         return fields
 
+    def get_version(self, obj) -> int | None:
+        version = getattr(obj, "history_version", None)  # annotated by the list's query
+        return version if version is not None else current_version(obj)
+
     def validate(self, attrs):
         # A partial update skips required fields; change control never is.
         missing = {name: ["This field is required."]
                    for name in ("change_reason", "change_reference") if name not in attrs}
+        if self.instance is not None and "expected_version" not in attrs:
+            missing["expected_version"] = [
+                "Send the version this change is based on (the record's version field)."]
+        if self.instance is None and "expected_version" in attrs:
+            missing["expected_version"] = ["A new record has no version yet: leave it out."]
         if missing:
             raise serializers.ValidationError(missing)
         return super().validate(attrs)

@@ -141,6 +141,9 @@ class DesignViewSet(mixins.CreateModelMixin, mixins.UpdateModelMixin, ReadViewSe
     write_rights = {"create": Action.EDIT_REGISTER, "update": Action.EDIT_REGISTER,
                     "partial_update": Action.EDIT_REGISTER}
 
+    def get_queryset(self):
+        return services.with_versions(super().get_queryset())
+
     def perform_create(self, serializer):
         reason, reference, data = _change_control(serializer.validated_data)
         parent = serializer.parent_field
@@ -151,9 +154,19 @@ class DesignViewSet(mixins.CreateModelMixin, mixins.UpdateModelMixin, ReadViewSe
 
     def perform_update(self, serializer):
         reason, reference, data = _change_control(serializer.validated_data)
-        serializer.instance = services.update_design(
+        expected = data.pop("expected_version")
+        instance = services.update_design(
             serializer.instance, self.request.user, reason=reason, reference=reference,
-            changes=data)
+            changes=data, expected_version=expected)
+        instance.__dict__.pop("history_version", None)  # read the new version
+        serializer.instance = instance
+
+    def update(self, request, *args, **kwargs):
+        try:
+            return super().update(request, *args, **kwargs)
+        except services.StaleVersionError as exc:  # nothing was written
+            return Response({"detail": str(exc), "expected_version": [str(exc)],
+                             "version": exc.current}, status=status.HTTP_409_CONFLICT)
 
 
 # --- Read-only lists ------------------------------------------------------------------------

@@ -14,8 +14,11 @@ from register.services.base import (
     confirm_password,
 )
 from register.services.design import (
+    StaleVersionError,
     create_design,
+    current_version,
     update_design,
+    with_versions,
 )
 from register.services.operations import (
     authorise_bypass,
@@ -43,6 +46,7 @@ __all__ = [
     "Reauthenticated",
     "ResultInput",
     "StaleDraftError",
+    "StaleVersionError",
     "_sif_id_of",
     "add_attachment",
     "authorise_bypass",
@@ -50,6 +54,7 @@ __all__ = [
     "close_bypass",
     "confirm_password",
     "create_design",
+    "current_version",
     "discard_draft",
     "open_bypass",
     "record_demand",
@@ -59,4 +64,5 @@ __all__ = [
     "start_correction",
     "update_design",
     "verify_record",
+    "with_versions",
 ]

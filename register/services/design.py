@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from django.core.exceptions import ValidationError
 from django.db import transaction
+from django.db.models import OuterRef, Subquery
 
 from register.changes import attribute
 from register.days import today as site_today
@@ -42,15 +43,58 @@ def _plan_scope(plan: TestPlan, components) -> set[int]:
     return ids
 
 
+# ---------------------------------------------------------------------------------------
+# Versions: the id of a design record's newest history row
+# ---------------------------------------------------------------------------------------
+
+
+class StaleVersionError(Exception):
+    """The record changed since the version the change was based on; nothing was written."""
+
+    def __init__(self, expected: int, current: int | None):
+        self.expected, self.current = expected, current
+        super().__init__(f"This record changed since version {expected}: it is now at "
+                         f"version {current}. Read it again and apply your change to that "
+                         "version.")
+
+
+def current_version(instance) -> int | None:
+    """A design record's version: the id of its newest history row (every change under
+    change control writes one), or None before its first."""
+    if instance.pk is None:
+        return None
+    return (instance.history.order_by("-history_id")
+            .values_list("history_id", flat=True).first())
+
+
+def with_versions(queryset):
+    """``queryset`` with each row's version as ``history_version`` (one subquery, so a list
+    reads every version in its own query)."""
+    history = queryset.model.history.model
+    return queryset.annotate(history_version=Subquery(
+        history.objects.filter(id=OuterRef("pk")).order_by("-history_id")
+        .values("history_id")[:1]))
+
+
 @transaction.atomic
-def update_design(instance, user, *, reason: str, reference: str, changes: dict):
+def update_design(instance, user, *, reason: str, reference: str, changes: dict,
+                  expected_version: int | None = None):
     """Change design data of a register record under change control.
 
     ``reason`` and ``reference`` (change request number) are required and are kept in the
-    change history with the change.
+    change history with the change. ``expected_version``: the version (:func:`current_version`)
+    the change is based on; when the record has moved on since, nothing is written and
+    :class:`StaleVersionError` is raised (the row is locked while compared, so of two
+    changes based on one version only the first is written).
     """
     site_id = site_id_of(instance)
     require(user, Action.EDIT_REGISTER, site_id)
+    if expected_version is not None:
+        list(type(instance).objects.select_for_update().filter(pk=instance.pk)
+             .values_list("pk", flat=True))  # lock the row, then compare
+        current = current_version(instance)
+        if current != expected_version:
+            raise StaleVersionError(expected_version, current)
     if not reason.strip() or not reference.strip():
         raise ValidationError({"reason": "A design change needs a reason and a change "
                                          "request reference."})

@@ -34,7 +34,8 @@ def _device_errors(sif: SafetyFunction, successful: bool, spurious: bool, acted,
     """The per-device rules of a demand: devices of this SIF, each either acted or failed,
     and a real demand the SIF did not act on names the device(s) that failed."""
     errors = reference_errors(sif, components_exercised=acted, failed_components=failed)
-    both = sorted({c.tag for c in acted} & {c.tag for c in failed})
+    failed_ids = {c.pk for c in failed}  # by id: two sites may both have an LT-100
+    both = sorted({c.tag for c in acted if c.pk in failed_ids})
     if both:
         errors["failed_components"] = [f"A device either acted or failed to act, not both: "
                                        f"{', '.join(both)}."]

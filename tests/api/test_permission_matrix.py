@@ -16,6 +16,7 @@ from django.db import transaction
 from django.utils import timezone
 
 from register.models import ChainEntry
+from register.services import current_version
 from tests import factories as f
 from tests.api import ROLES, build_world
 
@@ -52,6 +53,11 @@ def _design(extra):
     return {**extra, "change_reason": "New trip added", "change_reference": "CR-42"}
 
 
+def _change(obj, extra):
+    """A design change based on the record's current version."""
+    return _design({**extra, "expected_version": current_version(obj)})
+
+
 # (name, method, url(place, world, role), body(place) or None, expected)
 TABLE = [
     ("sites list", "get", lambda p, w, r: "/api/sites/", None, LIST),
@@ -82,7 +88,7 @@ TABLE = [
         "safe_state": "Pump stopped", "target_sil": 2, "target_pfd_avg": 5e-3}),
      LEAD_CREATES),
     ("sifs update", "patch", lambda p, w, r: f"/api/sifs/{p.sif.pk}/",
-     lambda p: _design({"name": "High high level trip"}), LEAD_CHANGES),
+     lambda p: _change(p.sif, {"name": "High high level trip"}), LEAD_CHANGES),
     ("sifs delete", "delete", lambda p, w, r: f"/api/sifs/{p.sif.pk}/", None, NOT_ALLOWED),
     ("subsystems list", "get", lambda p, w, r: "/api/subsystems/", None, LIST),
     ("subsystems detail", "get", lambda p, w, r: f"/api/subsystems/{p.subsystem.pk}/", None,
@@ -91,7 +97,7 @@ TABLE = [
         "sif": p.sif.pk, "role": "logic", "name": "Logic solver", "voting": "1oo1"}),
      LEAD_CREATES),
     ("subsystems update", "patch", lambda p, w, r: f"/api/subsystems/{p.subsystem.pk}/",
-     lambda p: _design({"mttr_hours": 12}), LEAD_CHANGES),
+     lambda p: _change(p.subsystem, {"mttr_hours": 12}), LEAD_CHANGES),
     ("subsystems delete", "delete", lambda p, w, r: f"/api/subsystems/{p.subsystem.pk}/",
      None, NOT_ALLOWED),
     ("components list", "get", lambda p, w, r: "/api/components/", None, LIST),
@@ -102,7 +108,7 @@ TABLE = [
         "device_type": p.components[0].device_type_id}), LEAD_CREATES),
     ("components update", "patch",
      lambda p, w, r: f"/api/components/{p.components[0].pk}/",
-     lambda p: _design({"proof_test_coverage": 0.9}), LEAD_CHANGES),
+     lambda p: _change(p.components[0], {"proof_test_coverage": 0.9}), LEAD_CHANGES),
     ("components delete", "delete",
      lambda p, w, r: f"/api/components/{p.components[0].pk}/", None, NOT_ALLOWED),
     ("test plans list", "get", lambda p, w, r: "/api/test-plans/", None, LIST),
@@ -111,7 +117,7 @@ TABLE = [
         "sif": p.sif.pk, "name": "Valve stroke test", "kind": "partial",
         "interval_months": 3, "coverage": 0.6}), LEAD_CREATES),
     ("test plans update", "patch", lambda p, w, r: f"/api/test-plans/{p.plan.pk}/",
-     lambda p: _design({"interval_months": 24}), LEAD_CHANGES),
+     lambda p: _change(p.plan, {"interval_months": 24}), LEAD_CHANGES),
     ("test plans delete", "delete", lambda p, w, r: f"/api/test-plans/{p.plan.pk}/", None,
      NOT_ALLOWED),
     ("test records list", "get", lambda p, w, r: "/api/test-records/", None, LIST),
