@@ -99,9 +99,14 @@ class ObtainToken(ObtainAuthToken):
         # The sign-in limit marks the Django request, which its middleware answers.
         return {**super().get_serializer_context(), "request": self.request._request}
 
-    @extend_schema(responses={200: inline_serializer("IssuedToken", {
-        "token": drf_serializers.CharField(),
-        "expires_at": drf_serializers.DateTimeField()})})
+    @extend_schema(responses={
+        200: inline_serializer("IssuedToken", {
+            "token": drf_serializers.CharField(),
+            "expires_at": drf_serializers.DateTimeField()}),
+        400: OpenApiResponse(description="Wrong user name or password."),
+        429: OpenApiResponse(description="Too many attempts: this user name is locked at "
+                             "this address until the time given (detail, locked_until, "
+                             "retry_after_seconds), or this address asks too often.")})
     def post(self, request, *args, **kwargs):
         serializer = self.get_serializer(data=request.data)
         if not serializer.is_valid():
