@@ -282,6 +282,8 @@ AXES_LOCKOUT_CALLABLE = "register.accounts.signin.locked_out"
 # proxies (which must set that header itself, as deploy/Caddyfile does).
 TRUSTED_PROXIES = env_list("TRUSTED_PROXIES")
 AXES_CLIENT_IP_CALLABLE = "register.accounts.signin.client_address"
+# DRF's throttles read the same address: behind the proxy, its one X-Forwarded-For entry.
+REST_FRAMEWORK["NUM_PROXIES"] = 1 if TRUSTED_PROXIES else None
 # Password-reset requests per address (DRF's throttle, counted in the cache).
 REST_FRAMEWORK["DEFAULT_THROTTLE_RATES"]["password_reset"] = env_str(
     "PASSWORD_RESET_RATE", "5/hour")

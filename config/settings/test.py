@@ -33,3 +33,5 @@ STORAGES = {
     "default": {"BACKEND": "django.core.files.storage.FileSystemStorage"},
     "staticfiles": {"BACKEND": "django.contrib.staticfiles.storage.StaticFilesStorage"},
 }
+
+AXES_VERBOSE = False  # the sign-in lock works as in production; its log lines stay out of test output
