@@ -39,12 +39,17 @@ EPISODE_LABEL = "failed channel: possible onset to restoration"
 FOUND_LABEL = "failure found"
 
 
+#: Every text drawn is plain text: a tag or name holding "$" (``XV-$1``, ``T$_$``) is
+#: printed as written, never read as matplotlib math, which it could break.
+PLAIN = {"parse_math": False}
+
+
 def _figure(title: str, size=(WIDTH_IN, HEIGHT_IN), dpi=100, fontsize=11):
     """A figure of its own (no pyplot state, so safe in threads) with one titled axis."""
     fig = Figure(figsize=size, dpi=dpi)
     FigureCanvasAgg(fig)
     ax = fig.add_subplot(1, 1, 1)
-    ax.set_title(title, fontsize=fontsize, loc="left")
+    ax.set_title(title, fontsize=fontsize, loc="left", **PLAIN)
     ax.grid(True, which="major", color="#999999", linewidth=0.4, linestyle=":")
     return fig, ax
 
@@ -59,7 +64,7 @@ def _shade_bands(ax, low: float, high: float, mode: str = "low"):
                    hatch=BAND_HATCH[sil], edgecolor="#9a9a9a", linewidth=0, zorder=0)
         mid = (max(lo, low) * min(hi, high)) ** 0.5
         ax.text(1.01, mid, f"SIL {sil}", transform=ax.get_yaxis_transform(),
-                va="center", ha="left", fontsize=9)
+                va="center", ha="left", fontsize=9, **PLAIN)
 
 
 def _target(ax, target: float | None):
@@ -67,7 +72,7 @@ def _target(ax, target: float | None):
         ax.axhline(target, color="black", linestyle="--", linewidth=1.4, zorder=3)
         ax.annotate(f"target {target:.1e}", xy=(0.005, target), xycoords=("axes fraction",
                     "data"), xytext=(0, 3), textcoords="offset points", fontsize=9,
-                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 1})
+                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 1}, **PLAIN)
 
 
 def _limits(values, target):
@@ -147,7 +152,7 @@ def _draw_pfd(ax, times, values, target, start=None, end=None, episodes=None):
             ax.set_xlim(start, end)
     _target(ax, target)
     _log_axis(ax, low, high)
-    ax.set_ylabel("PFD(t)")
+    ax.set_ylabel("PFD(t)", **PLAIN)
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m"))
     ax.legend(loc="lower right", fontsize=8, framealpha=1)
 
@@ -188,14 +193,14 @@ def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],
                 linestyle=":", marker="s", markersize=3, label="design", zorder=4)
     if not points:
         ax.text(0.5, 0.5, "No calculation stored yet", transform=ax.transAxes,
-                ha="center", va="center")
+                ha="center", va="center", **PLAIN)
     _target(ax, target)
     _log_axis(ax, low, high)
     times = [t for t, _, _ in points]
     if times and max(times) - min(times) < dt.timedelta(days=30):
         middle = min(times) + (max(times) - min(times)) / 2
         ax.set_xlim(middle - dt.timedelta(days=15), middle + dt.timedelta(days=15))
-    ax.set_ylabel("PFDavg")
+    ax.set_ylabel("PFDavg", **PLAIN)
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))
     fig.autofmt_xdate()
     if points:

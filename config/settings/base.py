@@ -45,6 +45,7 @@ INSTALLED_APPS = [
 
 MIDDLEWARE = [
     "django.middleware.security.SecurityMiddleware",
+    "register.request_guard.RequestGuard",
     "whitenoise.middleware.WhiteNoiseMiddleware",
     "django.contrib.sessions.middleware.SessionMiddleware",
     "django.middleware.common.CommonMiddleware",
@@ -82,6 +83,9 @@ DATABASES = {
         conn_max_age=env_int("DB_CONN_MAX_AGE", 0),
     )
 }
+# Every request in one transaction: a request refused or failing half-way writes nothing
+# (after-commit work, such as recomputes and e-mails, runs once the request commits).
+DATABASES["default"]["ATOMIC_REQUESTS"] = env_bool("ATOMIC_REQUESTS", True)
 if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
     # Wait for a lock instead of failing at once; take the write lock at BEGIN so two
     # writers never deadlock on lock upgrade.
@@ -118,6 +122,12 @@ STORAGES = {
 # Attachments (photos, scans) uploaded with test records.
 ATTACHMENT_MAX_BYTES = env_int("ATTACHMENT_MAX_BYTES", 10 * 1024 * 1024)
 DATA_UPLOAD_MAX_MEMORY_SIZE = 12 * 1024 * 1024
+# The whole body of any request, files included (register.request_guard: 413 above it).
+REQUEST_MAX_BYTES = env_int("REQUEST_MAX_BYTES", 16 * 1024 * 1024)
+# Spreadsheet import (README, "Import limits"): the file's size and its rows, counted
+# while reading (a sheet's own stated size is not trusted).
+IMPORT_MAX_BYTES = env_int("IMPORT_MAX_BYTES", 5 * 1024 * 1024)
+IMPORT_MAX_ROWS = env_int("IMPORT_MAX_ROWS", 20_000)
 
 EMAIL_BACKEND = env_str("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
 DEFAULT_FROM_EMAIL = env_str("DEFAULT_FROM_EMAIL", "sif-ledger@localhost")
@@ -190,6 +200,10 @@ REST_FRAMEWORK = {
     "DEFAULT_PAGINATION_CLASS": "rest_framework.pagination.PageNumberPagination",
     "PAGE_SIZE": 50,
     "DEFAULT_FILTER_BACKENDS": ["django_filters.rest_framework.DjangoFilterBackend"],
+    # JSON bodies nested too deeply or holding NaN / Infinity: 400 naming the field.
+    "DEFAULT_PARSER_CLASSES": ["register.api.parsers.LedgerJSONParser",
+                               "rest_framework.parsers.FormParser",
+                               "rest_framework.parsers.MultiPartParser"],
     "DEFAULT_SCHEMA_CLASS": "drf_spectacular.openapi.AutoSchema",
     "EXCEPTION_HANDLER": "register.api.views.exception_handler",
     "DEFAULT_THROTTLE_CLASSES": ["rest_framework.throttling.AnonRateThrottle"],

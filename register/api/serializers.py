@@ -35,11 +35,8 @@ from register.models import (
     TestRecord,
     TestStep,
 )
-from register.models.base import plausible, plausible_date
+from register.models.base import MAX_TEXT, plausible, plausible_date
 from register.services.design import current_version
-
-#: Longest free text (reasons, remarks, descriptions) a request may carry, in characters.
-MAX_TEXT = 20_000
 
 
 def unknown_key_message(key: str, known) -> str:

@@ -14,11 +14,14 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
+import math
 import re
+import zipfile
 from collections import OrderedDict
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 
+from django.conf import settings
 from django.core.exceptions import ValidationError
 from django.db import transaction
 from django.db.models import OuterRef, Subquery
@@ -28,8 +31,10 @@ from openpyxl.utils import get_column_letter
 
 from register import choices, services
 from register.calculations import calculations
+from register.days import check_plausible
 from register.lead import export as writers
 from register.models import (
+    MAX_TEXT,
     Component,
     ComponentResult,
     DeviceType,
@@ -202,22 +207,78 @@ class FileError(Exception):
     """The file cannot be read as a register table at all."""
 
 
-def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
-    """Rows as (row number, {column: text or value}); blank rows skipped."""
-    name = filename.lower()
-    if name.endswith(".csv"):
-        try:
-            text = data.decode("utf-8-sig")
-        except UnicodeDecodeError as exc:
-            raise FileError("The CSV file is not UTF-8 text.") from exc
-        raw = list(csv.reader(io.StringIO(text)))
-    elif name.endswith(".xlsx"):
-        try:
-            wb = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
-        except Exception as exc:
-            raise FileError("The file is not a readable .xlsx workbook.") from exc
+#: The columns read from each row of a workbook: the table's columns and as many again for
+#: blank ones between them; cells further right are not read.
+MAX_COLUMNS = 2 * len(COLUMNS)
+#: A workbook's parts unpacked may be at most this many times the file's size limit (a
+#: compressed sheet that unpacks to gigabytes is refused before it is read).
+UNPACKED_FACTOR = 20
+
+
+def limits() -> tuple[int, int]:
+    """(bytes, rows) an import may have: settings IMPORT_MAX_BYTES and IMPORT_MAX_ROWS."""
+    return settings.IMPORT_MAX_BYTES, settings.IMPORT_MAX_ROWS
+
+
+def _bounded(rows: Iterable, max_rows: int) -> list:
+    """The rows of ``rows`` (header included) while there are at most ``max_rows`` below
+    the header; reading stops at the first row past the limit, whatever the file says of
+    its own size."""
+    out = []
+    for values in rows:
+        if len(out) > max_rows:
+            raise FileError(f"The file has more than {max_rows:,} rows below the header "
+                            f"(the import limit); split it into several files.")
+        out.append(values)
+    return out
+
+
+def _xlsx_rows(data: bytes, max_rows: int) -> list:
+    max_bytes, _ = limits()
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as archive:
+            unpacked = sum(info.file_size for info in archive.infolist())
+    except (zipfile.BadZipFile, OSError, ValueError) as exc:
+        raise FileError("The file is not a readable .xlsx workbook.") from exc
+    if unpacked > UNPACKED_FACTOR * max_bytes:
+        raise FileError(f"The workbook unpacks to {unpacked:,} bytes, more than "
+                        f"{UNPACKED_FACTOR * max_bytes:,} (the import limit).")
+    try:
+        wb = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
         ws = wb[SHEET_NAME] if SHEET_NAME in wb.sheetnames else wb.worksheets[0]
-        raw = [list(r) for r in ws.iter_rows(values_only=True)]
+        ws.reset_dimensions()  # the sheet's stated size is not trusted: read what is there
+        return _bounded(ws.iter_rows(values_only=True, max_col=MAX_COLUMNS), max_rows)
+    except FileError:
+        raise
+    except Exception as exc:
+        raise FileError("The file is not a readable .xlsx workbook.") from exc
+
+
+def _csv_rows(data: bytes, max_rows: int) -> list:
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise FileError("The CSV file is not UTF-8 text.") from exc
+    try:
+        return _bounded(csv.reader(io.StringIO(text, newline="")), max_rows)
+    except csv.Error as exc:  # e.g. a field longer than the csv module reads
+        raise FileError(f"The CSV file cannot be read: {exc}.") from exc
+
+
+def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
+    """Rows as (row number, {column: text or value}); blank rows skipped.
+
+    Refuses (:class:`FileError`) a file larger than IMPORT_MAX_BYTES or with more than
+    IMPORT_MAX_ROWS rows below the header, counted while reading."""
+    name = filename.lower()
+    max_bytes, max_rows = limits()
+    if len(data) > max_bytes:
+        raise FileError(f"The file is {len(data):,} bytes; an import takes at most "
+                        f"{max_bytes:,} bytes.")
+    if name.endswith(".csv"):
+        raw = _csv_rows(data, max_rows)
+    elif name.endswith(".xlsx"):
+        raw = _xlsx_rows(data, max_rows)
     else:
         raise FileError("Give a .xlsx or .csv file.")
     if not raw:
@@ -228,7 +289,8 @@ def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
         raise FileError(f"Row 1 must name the columns; missing: {', '.join(missing)}.")
     unknown = [h for h in header if h and h not in COLUMNS]
     if unknown:
-        raise FileError(f"Unknown column(s) in row 1: {', '.join(unknown)}.")
+        shown = ", ".join(h[:40].replace("\x00", "\\0") for h in unknown[:10])
+        raise FileError(f"Unknown column(s) in row 1: {shown}.")
     rows = []
     for number, values in enumerate(raw[1:], start=2):
         row = {}
@@ -241,6 +303,22 @@ def read_table(filename: str, data: bytes) -> list[tuple[int, dict]]:
         if any(v != "" for v in row.values()):
             rows.append((number, row))
     return rows
+
+
+def cell_problems(number: int, cells: dict) -> list[CellError]:
+    """Cells no column may hold: text with a NUL character (the database cannot store
+    it) or longer than MAX_TEXT characters; numbers that are not finite."""
+    out = []
+    for col, value in cells.items():
+        if isinstance(value, float) and not math.isfinite(value):
+            out.append(CellError(number, col, f"{value!r} is not a finite number."))
+        elif isinstance(value, str):
+            if "\x00" in value:
+                out.append(CellError(number, col, "holds a NUL character; remove it."))
+            elif len(value) > MAX_TEXT:
+                out.append(CellError(number, col, f"holds {len(value):,} characters; at "
+                                                  f"most {MAX_TEXT:,} are taken."))
+    return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -273,8 +351,8 @@ class ImportPlan:
 class _Row:
     """Typed access to one row's cells, collecting errors with row and column."""
 
-    def __init__(self, number: int, cells: dict, errors: list):
-        self.n, self.cells, self.errors = number, cells, errors
+    def __init__(self, number: int, cells: dict, errors: list, site=None):
+        self.n, self.cells, self.errors, self.site = number, cells, errors, site
 
     def err(self, col, msg):
         self.errors.append(CellError(self.n, col, msg))
@@ -288,7 +366,10 @@ class _Row:
             self.err(col, "is required for this kind of row.")
         return value
 
-    def number(self, col, *, required=False, low=None, high=None, integer=False):
+    def number(self, col, *, required=False, low=None, high=None, integer=False,
+               quantity=None):
+        """A finite number; inside ``low`` .. ``high``, or inside the plausible range of
+        ``quantity`` (a key of ``calcs.engine.units.BOUNDS``, the one table of ranges)."""
         value = self.cells.get(col, "")
         if value == "" or value is None:
             if required:
@@ -300,6 +381,15 @@ class _Row:
         except ValueError:
             self.err(col, f"'{value}' is not a number.")
             return None
+        if not math.isfinite(num):
+            self.err(col, f"'{value}' is not a finite number.")
+            return None
+        if quantity is not None:
+            try:
+                return calculations().check_number(num, quantity, col)
+            except calculations().InputError as exc:
+                self.err(col, f"{exc.message}.")
+                return None
         if integer:
             if not num.is_integer():
                 self.err(col, f"'{value}' must be a whole number.")
@@ -324,33 +414,46 @@ class _Row:
     def date(self, col, required=False):
         value = self.cells.get(col, "")
         if isinstance(value, dt.datetime):
-            return value.date()
+            return self.plausible(col, value.date())
         if isinstance(value, dt.date):
-            return value
+            return self.plausible(col, value)
         text = self.text(col, required)
         if not text:
             return None
         try:
-            return dt.date.fromisoformat(text[:10])
+            day = dt.date.fromisoformat(text[:10])
         except ValueError:
             self.err(col, f"'{text}' is not a date (write YYYY-MM-DD).")
             return None
+        return self.plausible(col, day)
+
+    def plausible(self, col, when):
+        """``when`` if inside the plausible window (``register.days.check_plausible``),
+        else None with the error on ``col``."""
+        try:
+            check_plausible(when, self.site)
+        except ValidationError as exc:
+            self.err(col, " ".join(exc.messages))
+            return None
+        return when
 
     def moment(self, col):
         value = self.cells.get(col, "")
         if isinstance(value, dt.datetime):
-            return value if value.tzinfo else value.replace(tzinfo=dt.UTC)
-        if isinstance(value, dt.date):
-            return dt.datetime.combine(value, dt.time(0, 0), tzinfo=dt.UTC)
-        text = self.text(col, required=True)
-        if not text:
-            return None
-        try:
-            at = dt.datetime.fromisoformat(text)
-        except ValueError:
-            self.err(col, f"'{text}' is not a date and time (write YYYY-MM-DD HH:MM).")
-            return None
-        return at if at.tzinfo else at.replace(tzinfo=dt.UTC)
+            at = value if value.tzinfo else value.replace(tzinfo=dt.UTC)
+        elif isinstance(value, dt.date):
+            at = dt.datetime.combine(value, dt.time(0, 0), tzinfo=dt.UTC)
+        else:
+            text = self.text(col, required=True)
+            if not text:
+                return None
+            try:
+                at = dt.datetime.fromisoformat(text)
+            except ValueError:
+                self.err(col, f"'{text}' is not a date and time (write YYYY-MM-DD HH:MM).")
+                return None
+            at = at if at.tzinfo else at.replace(tzinfo=dt.UTC)
+        return self.plausible(col, at)
 
     def rate(self, col):
         """A failure rate per hour from a cell in per-hour or FIT (unit column or suffix)."""
@@ -377,6 +480,9 @@ class _Row:
             self.err(col, f"'{value}' is not a failure rate.")
             return None
         per_hour = number * scale
+        if not math.isfinite(per_hour):
+            self.err(col, f"'{value}' is not a finite failure rate.")
+            return None
         if per_hour < 0:
             self.err(col, "A failure rate cannot be negative.")
             return None
@@ -449,7 +555,11 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
 
     kinds = ["sif", "component", "test"]
     for number, cells in rows:
-        row = _Row(number, cells, errors)
+        problems = cell_problems(number, cells)
+        if problems:  # nothing else is read from a row holding such a cell
+            errors.extend(problems)
+            continue
+        row = _Row(number, cells, errors, site)
         kind = row.choice("record", kinds)
         if kind is None:
             continue
@@ -474,7 +584,7 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
                                           default=choices.DemandMode.LOW),
                 "target_sil": row.number("target_sil", required=True, low=1, high=4,
                                          integer=True),
-                "target_pfd_avg": row.number("target_pfd_avg", low=1e-9, high=1.0),
+                "target_pfd_avg": row.number("target_pfd_avg", quantity="target_pfd"),
                 "life_stage": row.choice("life_stage", choices.LifeStage.values,
                                          default=choices.LifeStage.IN_SERVICE),
                 "in_service_on": row.date("in_service_on"),
@@ -530,15 +640,16 @@ def plan_import(site: Site, rows: list[tuple[int, dict]]) -> ImportPlan:
             sub_values = {
                 "role": row.choice("role", choices.SubsystemRole.values),
                 "voting": row.text("voting", required=True),
-                "beta": row.number("beta", low=0, high=1) or 0.0,
-                "beta_d": row.number("beta_d", low=0, high=1) or 0.0,
+                "beta": row.number("beta", quantity="fraction") or 0.0,
+                "beta_d": row.number("beta_d", quantity="fraction") or 0.0,
             }
             comp_values = {
                 "lambda_du_per_hour": row.rate("lambda_du"),
                 "lambda_dd_per_hour": row.rate("lambda_dd"),
                 "lambda_s_per_hour": row.rate("lambda_s"),
-                "proof_test_coverage": row.number("proof_test_coverage", low=0, high=1),
-                "partial_test_coverage": row.number("partial_test_coverage", low=0, high=1),
+                "proof_test_coverage": row.number("proof_test_coverage", quantity="fraction"),
+                "partial_test_coverage": row.number("partial_test_coverage",
+                                                       quantity="fraction"),
                 "in_service_on": row.date("in_service_on", required=True),
             }
             if comp_values["proof_test_coverage"] is None:

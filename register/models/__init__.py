@@ -15,6 +15,7 @@ from register.models.audit import (
     _AppendOnlyQuerySet,
 )
 from register.models.base import (
+    MAX_TEXT,
     SiteScopedQuerySet,
     _plausible_rate,
     non_negative,
@@ -65,6 +66,7 @@ from register.models.site import (
 __all__ = [
     "GENESIS_HASH",
     "MAX_BYPASS_HOURS",
+    "MAX_TEXT",
     "Attachment",
     "Bypass",
     "ChainAppendOnlyError",

@@ -15,6 +15,10 @@ from django.utils.deconstruct import deconstructible
 
 from register.calculations import calculations
 
+#: Longest free text (reasons, remarks, descriptions) a request or an imported cell may
+#: carry, in characters.
+MAX_TEXT = 20_000
+
 
 @deconstructible
 class Plausible:

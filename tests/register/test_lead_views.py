@@ -188,7 +188,7 @@ def test_list_query_count_does_not_grow_with_sifs(client):
     _refresh(site)
     thirty = _page_queries(client, url)
     assert five == thirty
-    assert thirty <= 12
+    assert thirty <= 14  # +2: the request's savepoint (ATOMIC_REQUESTS inside the test's transaction)
 
 
 @pytest.fixture

@@ -18,12 +18,46 @@ from register.models import (
 
 
 #: The longest period one pack may cover (a pack reads every record of the period).
-MAX_PACK_YEARS = 25
+MAX_PACK_YEARS = 10
+
+
+def service_start(scope: str, site, unit=None, sif=None) -> dt.date | None:
+    """The first day of the service life of what a pack covers: the earliest in-service
+    date of its SIFs and their components (None when nothing in it has one)."""
+    from django.db.models import Min
+
+    from register.models import Component, SafetyFunction
+
+    sifs = SafetyFunction.objects.filter(unit__site=site)
+    if scope == EvidencePack.Scope.UNIT and unit is not None:
+        sifs = sifs.filter(unit=unit)
+    elif scope == EvidencePack.Scope.SIF and sif is not None:
+        sifs = sifs.filter(pk=sif.pk)
+    days = [sifs.aggregate(d=Min("in_service_on"))["d"],
+            Component.objects.filter(subsystem__sif__in=sifs).aggregate(
+                d=Min("in_service_on"))["d"]]
+    days = [d for d in days if d]
+    return min(days) if days else None
+
+
+def _longest_end(start: dt.date) -> dt.date:
+    try:
+        return start.replace(year=start.year + MAX_PACK_YEARS)
+    except ValueError:  # 29 February
+        return start.replace(year=start.year + MAX_PACK_YEARS, day=28)
 
 
 def pack_request_errors(*, scope: str, site, period_start: dt.date | None,
                         period_end: dt.date | None, unit=None, sif=None) -> dict[str, str]:
-    """The one validation of a pack request (page, API and command): field -> message."""
+    """The one validation of a pack request (page, API and command): field -> message.
+
+    The period lies inside the plausible window (``register.days.check_plausible``), ends
+    by today, starts no earlier than the service life of what the pack covers (its first
+    in-service date) and spans at most MAX_PACK_YEARS years."""
+    from django.core.exceptions import ValidationError
+
+    from register.days import check_plausible
+
     errors = {}
     if scope == EvidencePack.Scope.UNIT and (unit is None or site is None
                                              or unit.site_id != site.pk):
@@ -31,14 +65,28 @@ def pack_request_errors(*, scope: str, site, period_start: dt.date | None,
     if scope == EvidencePack.Scope.SIF and (sif is None or site is None
                                             or sif.unit.site_id != site.pk):
         errors["sif"] = "Choose a SIF of this site for a one-SIF pack."
-    if period_start and period_end:
-        if period_end < period_start:
-            errors["period_end"] = "The period cannot end before it starts."
-        elif period_end > timezone.localdate():
-            errors["period_end"] = "The period cannot end in the future."
-        elif (period_end - period_start).days > MAX_PACK_YEARS * 366:
-            errors["period_start"] = (f"A pack covers at most {MAX_PACK_YEARS} years; "
-                                      "ask for several packs.")
+    for name, day in (("period_start", period_start), ("period_end", period_end)):
+        try:
+            check_plausible(day, site)
+        except ValidationError as exc:
+            message = " ".join(exc.messages)
+            errors[name] = f"{message[:1].upper()}{message[1:]}."
+    if errors.keys() & {"period_start", "period_end"} or not (period_start and period_end):
+        return errors
+    today = timezone.localdate()
+    if period_end < period_start:
+        errors["period_end"] = "The period cannot end before it starts."
+    elif period_end > today:
+        errors["period_end"] = f"The period cannot end in the future (after {today})."
+    elif period_end > _longest_end(period_start):
+        errors["period_start"] = (f"A pack covers at most {MAX_PACK_YEARS} years; "
+                                  "ask for several packs.")
+    elif site is not None and "unit" not in errors and "sif" not in errors:
+        first = service_start(scope, site, unit, sif)
+        if first and period_start < first:
+            errors["period_start"] = (f"The period starts before the service life of what "
+                                      f"the pack covers (first in service on {first}); "
+                                      f"start on or after {first}.")
     return errors
 
 
