@@ -248,13 +248,27 @@ class VerifyResult:
     #: When the whole chain was last verified from its first entry, and whether it held.
     full_verified_at: dt.datetime | None = None
     full_verified_ok: bool | None = None
+    #: Live rows (and attachment files) that differ from their latest chained history
+    #: (``register.audit.live``): the first ones, and how many in all.
+    live_breaks: list = field(default_factory=list)
+    live_breaks_total: int = 0
+
+    @property
+    def chain_ok(self) -> bool:
+        """The chain itself holds (whatever the live rows say)."""
+        return self.first_break is None
 
     def summary(self) -> str:
         scope = "" if self.full else f" (checked from entry #{self.from_seq})"
         if self.ok:
             return (f"Chain intact: {self.entries} entries, {self.history_rows} history rows; "
                     f"head #{self.head_seq} {self.head_hash}{scope}")
-        return f"Chain BROKEN at {self.first_break}{scope}"
+        lines = [f"Chain BROKEN at {self.first_break}{scope}" if self.first_break else
+                 f"Chain intact{scope}, but live rows differ from their history"]
+        lines += [f"  {b}" for b in self.live_breaks]
+        if self.live_breaks_total > len(self.live_breaks):
+            lines.append(f"  ... and {self.live_breaks_total - len(self.live_breaks)} more")
+        return "\n".join(lines)
 
 
 def _hash_rows(label: str, model, rows, m2m: dict) -> dict[int, set[str]]:
@@ -435,9 +449,12 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
     (entry missing), a historical row that no longer exists (history row deleted), a
     historical row whose content no longer gives the recorded hash (content changed).
     After the last entry: the head must name it, and no historical row may lack an entry.
+    Then every live row is compared with its latest chained historical row, and every
+    attachment's file with its recorded SHA-256 (``register.audit.live``; from the
+    checkpoint, files uploaded before it are checked for presence and size only).
 
-    With ``record`` an intact result moves the checkpoint to the head (and a full check
-    records its time and outcome in any case).
+    With ``record`` an intact chain moves the checkpoint to the head (and a full check
+    records its time and outcome, live rows included, in any case).
     """
     models_by_label = historical_models()
     cp = checkpoint()
@@ -493,9 +510,14 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
             total_rows, count, coverage = _counted_coverage(models_by_label)
             first = first or coverage
 
-    result = VerifyResult(ok=first is None, entries=count, head_seq=head_seq,
+        from register.audit.live import live_breaks
+
+        listed, total = live_breaks(full=not start, since=cp.verified_at if start else None)
+
+    result = VerifyResult(ok=first is None and not total, entries=count, head_seq=head_seq,
                           head_hash=head_hash, history_rows=total_rows, first_break=first,
-                          full=not start, from_seq=start)
+                          full=not start, from_seq=start, live_breaks=listed,
+                          live_breaks_total=total)
     if record:
         _record(result)
     cp = checkpoint()
@@ -510,7 +532,7 @@ def _record(result: VerifyResult) -> None:
     check's time and outcome either way."""
     with transaction.atomic():
         cp, _ = ChainCheckpoint.objects.select_for_update().get_or_create(pk=HEAD_PK)
-        if result.ok and result.head_seq >= cp.seq:
+        if result.chain_ok and result.head_seq >= cp.seq:
             cp.seq, cp.entry_hash = result.head_seq, result.head_hash
             cp.verified_at = result.checked_at
         if result.full:

@@ -12,7 +12,13 @@ from django.utils import timezone
 from register import choices, services
 from register.audit import chain as audit
 from register.audit import evidence
-from register.models import ChainCheckpoint, ChainEntry, Component, EvidencePack
+from register.models import (
+    ChainCheckpoint,
+    ChainEntry,
+    Component,
+    EvidencePack,
+    SafetyFunction,
+)
 from tests import factories as f
 from tests.register.tamper import raw
 
@@ -102,12 +108,13 @@ def test_a_tampered_entry_before_the_checkpoint_is_found_by_the_full_check(plant
 def test_a_history_row_changed_before_the_checkpoint_is_found_by_the_full_check(plant):
     _s, sif, people = plant
     assert audit.verify_chain().ok
-    comp = Component.objects.filter(subsystem__sif=sif).first()
-    Hist = Component.history.model
-    h = Hist.objects.filter(id=comp.pk).order_by("history_id").first()
-    raw(f"UPDATE {Hist._meta.db_table} SET lambda_du_per_hour = 1e-9 WHERE history_id = %s",
-        [h.history_id])
     _write(sif, people["lead"])
+    # The SIF's first history row (no longer its latest, which the live row is compared
+    # with), rewritten in place before the checkpoint.
+    Hist = SafetyFunction.history.model
+    h = Hist.objects.filter(id=sif.pk).order_by("history_id").first()
+    raw(f"UPDATE {Hist._meta.db_table} SET name = 'Low level trip' WHERE history_id = %s",
+        [h.history_id])
     assert audit.verify_chain(incremental=True).ok
     brk = audit.verify_chain().first_break
     assert brk.kind == "content changed" and brk.history_id == h.history_id

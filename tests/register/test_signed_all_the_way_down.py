@@ -110,7 +110,7 @@ def test_attachments_go_through_the_service_with_history(db, settings, tmp_path)
     att = services.add_attachment(user=tech, record=draft, **args)
     assert att.history.get().history_user == tech
     assert ChainEntry.objects.count() == before + 1  # chained like every other write
-    assert audit.verify_chain().ok
+    assert audit.verify_chain().chain_ok
     with pytest.raises(ValidationError):  # not the performer
         services.add_attachment(user=other, record=draft, **args)
     with pytest.raises(PermissionDenied):  # auditors never write
