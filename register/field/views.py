@@ -48,20 +48,32 @@ def _state_badge(state: str) -> dict:
             "style": choices.PLAN_STATE_STYLE[choices.PlanState(state)]}
 
 
+def _loaded(obj, path: str) -> bool:
+    """Each object along ``path`` ("sif__unit__site") is already loaded with ``obj``."""
+    for name in path.split("__"):
+        if not obj._meta.get_field(name).is_cached(obj):
+            return False
+        obj = getattr(obj, name)
+    return True
+
+
 def _plan_status(plan: TestPlan | None):
+    """The plan's live status (the rule's, ``live_statuses``); the plan in hand is used
+    when its site is loaded with it, else it is read again."""
     if plan is None:
         return None
-    st = live_statuses(TestPlan.objects.filter(pk=plan.pk))[plan.pk]
+    plans = [plan] if _loaded(plan, "sif__unit__site") else TestPlan.objects.filter(pk=plan.pk)
+    st = live_statuses(plans)[plan.pk]
     return {"due_on": st.due_on, "days_overdue": st.days_overdue, **_state_badge(st.state)}
 
 
 def _stored_plan_status(plan: TestPlan | None):
-    """The plan's due date as last written by the rule (one query): what the plan said
-    before the record being signed, which has not changed anything yet."""
+    """The plan's due date as last written by the rule: what the plan said before the
+    record being signed, which has not changed anything yet (the plan was read by this
+    request, and a signing refreshes it only once committed)."""
     if plan is None:
         return None
-    return {"due_on": TestPlan.objects.filter(pk=plan.pk).values_list(
-        "next_due_on", flat=True).first()}
+    return {"due_on": plan.next_due_on}
 
 
 def _components(plan: TestPlan | None, sif) -> list[Component]:
@@ -168,8 +180,12 @@ def _apply_service_errors(exc: ValidationError, header, used_forms):
 
 
 def _after_sign_message(record: TestRecord, before) -> str:
+    """``record``: as ``sign_record`` returned it (its plan and SIF's site loaded)."""
     text = "Signed. The record is now read-only and waits for a verifier's countersignature."
-    after = _plan_status(record.plan)
+    plan = record.plan
+    if plan is not None and plan.sif_id == record.sif_id:
+        plan.sif = record.sif  # loaded with its unit and site
+    after = _plan_status(plan)
     if after and after["due_on"]:
         text += f" The next test of this plan is due {after['due_on']:%Y-%m-%d} ({after['label']})"
         if before and before["due_on"] and before["due_on"] != after["due_on"]:
@@ -246,14 +262,14 @@ def _entry(request, *, sif, plan, record=None):
                         return redirect("field:record_edit", pk=saved.pk)
                     before = _stored_plan_status(plan)
                     try:
-                        services.sign_record(saved, request.user, request.POST["password"])
+                        signed = services.sign_record(saved, request.user,
+                                                      request.POST["password"])
                     except ValidationError as exc:
                         messages.error(request, " ".join(exc.messages)
                                        + " Your entries are saved as a draft.")
                         return redirect(reverse("field:record_edit", args=[saved.pk]) + "#sign")
-                    saved.refresh_from_db()
-                    messages.success(request, _after_sign_message(saved, before))
-                    return redirect("field:record_detail", pk=saved.pk)
+                    messages.success(request, _after_sign_message(signed, before))
+                    return redirect("field:record_detail", pk=signed.pk)
     if stale:
         record.refresh_from_db()
     expected_version = record.draft_version if record and (stale or request.method == "GET") \

@@ -234,8 +234,8 @@ def failure_found(record) -> int:
     (subject key ``failure:<record>``). Nothing for a draft or a record without one."""
     if not record.is_signed:
         return 0
-    failed = list(record.results.filter(failure_mode__in=DANGEROUS).select_related(
-        "component").order_by("component__tag"))
+    failed = sorted((r for r in record.results_with_components()  # read once per signing
+                     if r.failure_mode in DANGEROUS), key=lambda r: r.component.tag)
     if not failed:
         return 0
     site = _site_of_record(record)

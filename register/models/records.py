@@ -10,7 +10,7 @@ import datetime as dt
 from django.conf import settings
 from django.core.exceptions import ValidationError
 from django.db import models
-from django.db.models import Exists, OuterRef, Q
+from django.db.models import Exists, OuterRef, Prefetch, Q, prefetch_related_objects
 from django.urls import reverse
 from django.utils.translation import gettext_lazy as _
 from simple_history.models import HistoricalRecords
@@ -57,7 +57,37 @@ class SignedRecordError(ValidationError):
     """Raised on any attempt to change a signed record."""
 
 
-class TestRecord(models.Model):
+def references_in_hand(instance) -> set[str]:
+    """Names of ``instance``'s references whose target is in hand: the related object is
+    loaded (or was just saved) and is the one the reference names. Such a reference needs
+    no existence query when the row is validated; the database's foreign key still guards
+    it."""
+    names = set()
+    for f in instance._meta.concrete_fields:
+        if not (f.many_to_one or f.one_to_one):
+            continue
+        value = getattr(instance, f.attname)
+        if value is None or not f.is_cached(instance):
+            continue
+        target = f.get_cached_value(instance)
+        if target is not None and not target._state.adding and target.pk == value:
+            names.add(f.name)
+    return names
+
+
+class ChecksReferencesInHand(models.Model):
+    """Validation asks the database only about references whose target is not in hand
+    (:func:`references_in_hand`). Nothing else is skipped: the other checks of such a
+    field (null, blank, choices) pass by construction for the key of a stored object."""
+
+    class Meta:
+        abstract = True
+
+    def clean_fields(self, exclude=None):
+        super().clean_fields(exclude=set(exclude or ()) | references_in_hand(self))
+
+
+class TestRecord(ChecksReferencesInHand):
     """A test done on a SIF: proof test, partial test, validation, sign-off or credited demand.
 
     Drafts may be edited. Once signed, the record is immutable: a correction is a new
@@ -122,8 +152,30 @@ class TestRecord(models.Model):
             ),
         ]
 
+    #: The unique key rule (the database constraint), by name.
+    KEY_CONSTRAINT = "register_test_client_key_per_site"
+    #: Constraints ``clean`` states with its own message: validating them again would
+    #: only cost a query (the database constraint still backs them).
+    STATED_BY_CLEAN = frozenset({"register_test_verifier_not_performer"})
+
     def __str__(self):
         return f"{self.sif.tag} {self.get_kind_display()} {self.performed_at:%Y-%m-%d}"
+
+    def get_constraints(self):
+        """The constraints ``full_clean`` validates: those ``clean`` states are left out,
+        and so is any named in ``_constraints_checked`` (set, for the next validation
+        only, by a service that has just established it in the same transaction: the
+        client key looked up and free, or a signing that changes no key field)."""
+        skip = self.STATED_BY_CLEAN | set(self.__dict__.pop("_constraints_checked", ()))
+        return [(cls, [c for c in constraints if c.name not in skip])
+                for cls, constraints in super().get_constraints()]
+
+    def results_with_components(self) -> list[ComponentResult]:
+        """Its results with their devices: one query the first time, none after (the
+        services of a signing share them)."""
+        prefetch_related_objects([self], Prefetch(
+            "results", queryset=ComponentResult.objects.select_related("component")))
+        return list(self.results.all())
 
     def get_absolute_url(self):
         return reverse("register:test_detail", args=[self.pk])
@@ -164,7 +216,9 @@ class TestRecord(models.Model):
             raise ValidationError(errors)
 
     def save(self, *args, **kwargs):
-        if self.pk:
+        # ``_draft_under_lock``: the service read this row as a draft under a row lock in
+        # the running transaction, so the stored row cannot be signed; used once.
+        if self.pk and not self.__dict__.pop("_draft_under_lock", False):
             self._refuse_changes_after_signing()
         super().save(*args, **kwargs)
 
@@ -193,17 +247,26 @@ class TestRecord(models.Model):
 
 
 def _earliest_in_service(record: TestRecord) -> dt.date | None:
-    if record.plan_id and record.plan.components.exists():
-        qs = record.plan.components.all()
+    """When the equipment of the test entered service: the earliest date of the devices
+    the plan names, else of every device of the SIF, else the SIF's own (one query)."""
+    comps = Component.objects.filter(subsystem__sif_id=record.sif_id)
+    if record.plan_id:
+        named = TestPlan.components.through.objects.filter(
+            testplan_id=record.plan_id, component_id=OuterRef("pk"))
+        comps = Component.objects.annotate(named=Exists(named)).filter(
+            Q(subsystem__sif_id=record.sif_id) | Q(named=True))
+        rows = list(comps.values_list("in_service_on", "named"))
+        if any(is_named for _, is_named in rows):
+            rows = [row for row in rows if row[1]]
+        dates = [d for d, _ in rows if d]
     else:
-        qs = Component.objects.filter(subsystem__sif_id=record.sif_id)
-    dates = [d for d in qs.values_list("in_service_on", flat=True) if d]
+        dates = [d for d in comps.values_list("in_service_on", flat=True) if d]
     if dates:
         return min(dates)
     return record.sif.in_service_on
 
 
-class PartOfRecord(models.Model):
+class PartOfRecord(ChecksReferencesInHand):
     """A row that belongs to a test record (result, measurement, attachment): once the
     record is signed it can be neither changed, added to, nor deleted; a correction
     supersedes the record instead. A database trigger enforces the same on PostgreSQL

@@ -32,7 +32,6 @@ from register.changes import attribute
 from register.days import local_date
 from register.inbox.notices import DANGEROUS
 from register.models import (
-    ComponentResult,
     Demand,
     Finding,
     Membership,
@@ -157,10 +156,11 @@ def after_record_signed(record: TestRecord, user, *, at: dt.datetime | None = No
                         ) -> tuple[list[Finding], list[Finding]]:
     """A record has just been signed (inside ``sign_record``'s transaction): carry over or
     withdraw the findings of the record it corrects, open a finding for each dangerous
-    failure it found, and close the open findings it retests. Returns (opened, closed)."""
-    record = TestRecord.objects.select_related("sif__unit__site").get(pk=record.pk)
-    dangerous = {r.component_id: r for r in ComponentResult.objects.filter(
-        record=record, failure_mode__in=DANGEROUS).select_related("component")}
+    failure it found, and close the open findings it retests. Returns (opened, closed).
+    ``record`` is the instance being signed, as ``sign_record`` read it under its lock;
+    its results are read once for the signing (``TestRecord.results_with_components``)."""
+    results = record.results_with_components()
+    dangerous = {r.component_id: r for r in results if r.failure_mode in DANGEROUS}
     if record.supersedes_id:
         _carry_over(record, dangerous, user, at)
     opened = []
@@ -175,8 +175,7 @@ def after_record_signed(record: TestRecord, user, *, at: dt.datetime | None = No
         opened.append(_open(finding, user, f"finding opened: failure found by test "
                                            f"#{record.pk}", at))
     closed = []
-    tested = list(ComponentResult.objects.filter(record=record, as_found=PASS, as_left=PASS)
-                  .values_list("component_id", flat=True))
+    tested = [r.component_id for r in results if r.as_found == PASS and r.as_left == PASS]
     for finding in (Finding.objects.select_for_update(of=("self",))
                     .filter(sif_id=record.sif_id, component_id__in=tested, status=Status.OPEN)
                     .select_related("component", "result__record", "sif__unit__site")):

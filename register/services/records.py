@@ -5,9 +5,11 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass, field
 
-from django.core.exceptions import PermissionDenied, ValidationError
+from django.core.exceptions import NON_FIELD_ERRORS, PermissionDenied, ValidationError
 from django.db import IntegrityError, transaction
+from django.db.models import prefetch_related_objects
 from django.utils import timezone
+from simple_history.signals import post_create_historical_record
 
 from register import choices, rules
 from register.changes import attribute
@@ -108,10 +110,10 @@ def save_draft_once(*, client_key: str, user, sif: SafetyFunction, kind: str,
         existing.was_written = False
         return existing, False
     try:
-        with transaction.atomic():
-            return save_draft(user=user, sif=sif, plan=plan, kind=kind,
-                              performed_at=performed_at, remarks=remarks, results=results,
-                              client_key=client_key), True
+        with transaction.atomic():  # an IntegrityError (a concurrent twin) rolls back here
+            return _save_draft(user=user, sif=sif, plan=plan, kind=kind,
+                               performed_at=performed_at, remarks=remarks, results=results,
+                               client_key=client_key, key_checked=True), True
     except IntegrityError:
         existing = stored()  # stored by a concurrent request a moment ago
         if existing is None:
@@ -144,7 +146,20 @@ def save_draft(
     unless the stored draft already holds exactly these entries (the same form sent twice),
     when nothing is written either. ``record.was_written`` tells which happened.
     ``at`` dates the history rows when the test is loaded from the past (the demo).
+    A :class:`ValidationError` leaves nothing written.
     """
+    return _save_draft(user=user, sif=sif, kind=kind, performed_at=performed_at,
+                       results=results, plan=plan, remarks=remarks, record=record,
+                       expected_version=expected_version, supersedes=supersedes,
+                       correction_reason=correction_reason, client_key=client_key, at=at)
+
+
+def _save_draft(*, user, sif, kind, performed_at, results, plan=None, remarks="",
+                record=None, expected_version=None, supersedes=None, correction_reason="",
+                client_key=None, at=None, key_checked=False) -> TestRecord:
+    """``save_draft`` without its own savepoint: the caller's atomic block rolls back on
+    an error. ``key_checked``: the caller has just looked the client key up in this
+    transaction and found it free (``save_draft_once``)."""
     require(user, Action.RECORD_TEST, sif.unit.site_id)
     _check_draft_references(sif, results)
     if record is None:
@@ -174,12 +189,21 @@ def save_draft(
     record.supersedes = supersedes
     record.correction_reason = correction_reason
     record.client_key = client_key
-    record.key_site_id = sif.unit.site_id if client_key else None
+    record.key_site = sif.unit.site if client_key else None
+    if key_checked:
+        record._constraints_checked = {TestRecord.KEY_CONSTRAINT}
     record.full_clean()
+    adding = record._state.adding
     attribute(record, user, "draft saved", at=at).save()
 
-    record.results.all().delete()
+    if not adding:  # a new record has no results yet
+        record.results.all().delete()
+    # Each device's SIF is checked by ComponentResult.clean: read the subsystems of the
+    # devices not loaded with theirs at once.
+    prefetch_related_objects([item.component for item in results], "subsystem")
     errors = {}
+    rows: list[tuple[ComponentResult, ResultInput]] = []
+    seen: set[int] = set()
     for index, item in enumerate(results):
         result = ComponentResult(
             record=record, component=item.component, as_found=item.as_found,
@@ -187,7 +211,12 @@ def save_draft(
             failure_description=item.failure_description,
         )
         try:
-            result.full_clean()
+            # The one constraint, a result once per device, concerns only these inputs
+            # (the record's results were just removed): checked here without a query.
+            result.full_clean(validate_constraints=False)
+            if item.component.pk in seen:
+                raise ValidationError({NON_FIELD_ERRORS: [result.unique_error_message(
+                    ComponentResult, ("record", "component"))]})
         except ValidationError as exc:
             for key, msgs in exc.message_dict.items():
                 errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {m}" for m in msgs]
@@ -203,18 +232,42 @@ def save_draft(
             for key, msg in outside.items():
                 errors[f"results[{index}].{key}"] = [f"{item.component.tag}: {msg}"]
             continue
-        attribute(result, user, at=at).save()
+        seen.add(item.component.pk)
+        rows.append((attribute(result, user, at=at), item))
+    if errors:
+        raise ValidationError(errors)
+    # The record is a draft locked by this transaction (new, or read under a row lock):
+    # its results and values are inserted at once, each with its history row.
+    _insert_with_history(ComponentResult, [result for result, _ in rows])
+    values = []
+    for result, item in rows:
         for mv in item.measurements:
-            # MeasuredValue.save judges a value with a step by the one rule
             value = MeasuredValue(
                 result=result, step=mv.step, phase=mv.phase, quantity=mv.quantity,
                 value=mv.value, unit=mv.unit, within_criterion=None,
             )
-            (attribute(value, user, at=at) if at else value).save(force_insert=True)
-    if errors:
-        raise ValidationError(errors)
+            if value.step_id is not None:  # as MeasuredValue.save: the one rule's verdict
+                value.within_criterion = value.judge().within
+            values.append(attribute(value, user, at=at) if at else value)
+    _insert_with_history(MeasuredValue, values)
     record.was_written = True
     return record
+
+
+def _insert_with_history(model, objs: list) -> None:
+    """Insert ``objs`` (rows of a draft's parts) in one statement and their history rows
+    in another, then announce each history row as a save does
+    (``post_create_historical_record``), so each joins the chain. The history rows name
+    the actor, reason and moment set by ``attribute`` as a save's would."""
+    if not objs:
+        return
+    model.objects.bulk_create(objs)
+    history = model.history.bulk_history_create(objs)
+    for obj, row in zip(objs, history, strict=True):
+        post_create_historical_record.send(
+            sender=type(row), instance=obj, history_instance=row,
+            history_date=row.history_date, history_user=row.history_user,
+            history_change_reason=row.history_change_reason, using=None)
 
 
 def _check_draft_references(sif, results) -> None:
@@ -255,7 +308,10 @@ def sign_record(record: TestRecord, user, password: str | Reauthenticated | None
     ``signed_at`` is for loading historical records (import, demo); it defaults to now.
     ``at`` dates the history row the same way (default: now).
     """
-    record = TestRecord.objects.select_for_update().get(pk=record.pk)
+    # Read under a row lock with what the signing reads of it (its SIF and site, plan and
+    # the record it corrects), so nothing below reads them again.
+    record = (TestRecord.objects.select_for_update(of=("self",))
+              .select_related("sif__unit__site", "plan", "supersedes").get(pk=record.pk))
     require(user, Action.RECORD_TEST, record.sif.unit.site_id)
     if record.is_signed:
         raise ValidationError("This record is already signed.")
@@ -263,12 +319,17 @@ def sign_record(record: TestRecord, user, password: str | Reauthenticated | None
         raise PermissionDenied("Only the performer can sign this record.")
     if check_password:
         confirm_password(user, password, outcome="the record is still a draft")
-    if not record.results.exists():
+    if not record.results_with_components():  # shared with the findings and notices
         raise ValidationError("Record at least one component result before signing.")
+    record.performed_by = user
+    if record.key_site_id is not None and record.key_site_id == record.sif.unit.site_id:
+        record.key_site = record.sif.unit.site
+    record._constraints_checked = {TestRecord.KEY_CONSTRAINT}  # signing changes no key field
     record.full_clean()
     record.status = choices.RecordStatus.SIGNED
     record.signed_at = signed_at or timezone.now()
     record.performed_by_name = person_name(user)
+    record._draft_under_lock = True  # read as a draft under the lock above
     attribute(record, user, "signed by performer", at=at).save()
     followup.after_test_change(record.sif_id)
     findings.after_record_signed(record, user, at=at)  # open, carry over, close findings

@@ -1,0 +1,155 @@
+"""The number of SQL queries of saving and signing a proof test in one web request.
+
+Queries of the history chain (``register.audit.chain``: its savepoint, head lock, read-back
+of the history row, entry insert, head update) and SAVEPOINT/RELEASE statements are left
+out of the count: they are counted and batched apart. Everything else a sign POST costs
+is bounded here, and must not grow with the number of devices in the test.
+"""
+
+from __future__ import annotations
+
+import collections
+import os
+import re
+import traceback
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import pytest
+from django.conf import settings
+from django.db import connection
+from django.urls import reverse
+
+from register import choices
+from register.models import Component, TestPlan, TestRecord, TestStep
+from tests import factories as f
+
+#: The bounds reached for the non-chain queries of one save-and-sign POST (the page's
+#: session, user and plan, the form's steps and devices, the draft, the signing, its
+#: notices, the plan's new due date for the message). A failure found also opens a finding
+#: and tells the leads.
+MAX_NON_CHAIN = {"all-pass": 33, "failure-found": 51}
+
+CHAIN_TABLES = re.compile(r'"register_chain(entry|head)"')
+SAVEPOINT = re.compile(r"^\s*(SAVEPOINT|RELEASE SAVEPOINT|ROLLBACK TO SAVEPOINT)\b", re.I)
+HERE = os.path.join(str(settings.BASE_DIR), "register") + os.sep
+
+
+@dataclass
+class Recorded:
+    sql: str
+    frame: str  # the innermost frame in register/ that issued it
+    chain: bool  # issued by the history chain (register/audit/chain.py)
+
+
+@dataclass
+class Recorder:
+    queries: list[Recorded] = field(default_factory=list)
+
+    def __call__(self, execute, sql, params, many, context):
+        frames = [fr for fr in traceback.extract_stack()[:-1] if HERE in fr.filename
+                  and "site-packages" not in fr.filename]
+        inner = frames[-1] if frames else None
+        chain = any(fr.filename.endswith(os.path.join("audit", "chain.py")) for fr in frames)
+        where = (f"{inner.filename.split(HERE, 1)[1]}:{inner.name}" if inner else "?")
+        self.queries.append(Recorded(sql, where, chain))
+        return execute(sql, params, many, context)
+
+    def is_chain(self, q: Recorded) -> bool:
+        return q.chain or bool(CHAIN_TABLES.search(q.sql))
+
+    @property
+    def non_chain(self) -> list[Recorded]:
+        return [q for q in self.queries
+                if not self.is_chain(q) and not SAVEPOINT.match(q.sql)]
+
+    def summary(self) -> str:
+        """Counts by kind and by issuing frame (shown when a bound fails)."""
+        chain = sum(1 for q in self.queries if self.is_chain(q) and not SAVEPOINT.match(q.sql))
+        points = sum(1 for q in self.queries if SAVEPOINT.match(q.sql))
+        by_frame = collections.Counter(
+            (q.frame, q.sql.split()[0].upper()) for q in self.non_chain)
+        lines = [f"all {len(self.queries)}: chain {chain}, savepoint/release {points}, "
+                 f"other {len(self.non_chain)}"]
+        lines += [f"  {n:3d} {verb:7s} {frame}" for (frame, verb), n in by_frame.most_common()]
+        return "\n".join(lines)
+
+
+@contextmanager
+def recorded():
+    rec = Recorder()
+    with connection.execute_wrapper(rec):
+        yield rec
+
+
+def _plant(voting: str):
+    """A SIF whose sensing and final subsystems vote ``voting`` (1oo1: 2 devices, 1oo3: 6),
+    with a trip step for the transmitters and a timing step for the valves."""
+    site = f.site()
+    sif = f.sif(f.unit(site), voting=voting, final_voting=voting)
+    plan = TestPlan.objects.get(sif=sif)
+    trip = TestStep.objects.create(
+        plan=plan, position=1, instruction="Raise the level signal until trip.",
+        measured_quantity="Trip value", unit="%",
+        criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=80.0, tolerance=1.0)
+    closing = TestStep.objects.create(
+        plan=plan, position=2, instruction="Time the valve stroke.",
+        measured_quantity="Closing time", unit="s",
+        criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    tech = f.user(site=site, role=choices.Role.TECHNICIAN)
+    f.user(site=site, role=choices.Role.VERIFIER)
+    f.user(site=site, role=choices.Role.LEAD)
+    comps = list(Component.objects.filter(subsystem__sif=sif).select_related("subsystem"))
+    return {"sif": sif, "plan": plan, "trip": trip, "closing": closing, "tech": tech,
+            "comps": comps}
+
+
+def _sign_data(p, *, fail_first=False):
+    from django.utils import timezone
+
+    when = timezone.localtime() - timezone.timedelta(hours=2)
+    data = {"form_token": "c" * 32, "kind": "full", "remarks": "",
+            "performed_at": when.strftime("%Y-%m-%dT%H:%M"), "action": "sign",
+            "password": f.PASSWORD}
+    first = True
+    for c in p["comps"]:
+        failed = fail_first and first and c.subsystem.role == "sensing"
+        data[f"c{c.pk}-as_found"] = "fail" if failed else "pass"
+        data[f"c{c.pk}-as_left"] = "pass"
+        if c.subsystem.role == "sensing":
+            data[f"c{c.pk}-v{p['trip'].pk}_found"] = "83.0" if failed else "80.4"
+            data[f"c{c.pk}-v{p['trip'].pk}_left"] = "80.1"
+            if failed:
+                data[f"c{c.pk}-failure_mode"] = "du"
+                data[f"c{c.pk}-failure_description"] = "Trip 3 % high (drift)."
+                data[f"c{c.pk}-work_done"] = "Recalibrated."
+                first = False
+        else:
+            data[f"c{c.pk}-v{p['closing'].pk}_found"] = "6.2"
+    return data
+
+
+def _signed_post(client, p, **kw) -> Recorder:
+    client.force_login(p["tech"])
+    url = reverse("field:start", args=[p["plan"].pk])
+    data = _sign_data(p, **kw)
+    with recorded() as rec:
+        resp = client.post(url, data)
+    assert resp.status_code == 302, resp.content.decode()[:2000]
+    record = TestRecord.objects.get(sif=p["sif"])
+    assert record.status == choices.RecordStatus.SIGNED
+    assert resp.url == reverse("field:record_detail", args=[record.pk])
+    assert record.results.count() == len(p["comps"])
+    return rec
+
+
+@pytest.mark.django_db
+@pytest.mark.parametrize("case", MAX_NON_CHAIN)
+def test_sign_post_queries_are_bounded_and_do_not_grow_with_devices(client, case):
+    fail_first = case == "failure-found"
+    small = _signed_post(client, _plant("1oo1"), fail_first=fail_first)
+    client.logout()
+    large = _signed_post(client, _plant("1oo3"), fail_first=fail_first)
+    print("\n2 devices:", small.summary(), "\n6 devices:", large.summary(), sep="\n")
+    assert len(small.non_chain) <= MAX_NON_CHAIN[case], small.summary()
+    assert len(large.non_chain) == len(small.non_chain), (small.summary(), large.summary())
