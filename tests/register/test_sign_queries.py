@@ -153,3 +153,78 @@ def test_sign_post_queries_are_bounded_and_do_not_grow_with_devices(client, case
     print("\n2 devices:", small.summary(), "\n6 devices:", large.summary(), sep="\n")
     assert len(small.non_chain) <= MAX_NON_CHAIN[case], small.summary()
     assert len(large.non_chain) == len(small.non_chain), (small.summary(), large.summary())
+
+
+@pytest.mark.django_db
+def test_signed_post_keeps_every_history_row_chained(client):
+    """The results and values are inserted at once; each history row still joins the
+    chain, and the chain verifies."""
+    from register.audit.chain import verify_chain
+    from register.models import ChainEntry, ComponentResult, MeasuredValue
+
+    p = _plant("1oo3")
+    _signed_post(client, p)
+    record = TestRecord.objects.get(sif=p["sif"])
+    for model, rows in ((ComponentResult, ComponentResult.history.filter(record_id=record.pk)),
+                        (MeasuredValue, MeasuredValue.history.filter(
+                            result__record_id=record.pk))):
+        ids = set(rows.values_list("history_id", flat=True))
+        assert len(ids) == model.objects.filter(
+            **({"record": record} if model is ComponentResult else {"result__record": record})
+        ).count() > 0
+        chained = set(ChainEntry.objects.filter(model_label=model.history.model._meta.label,
+                                                history_id__in=ids)
+                      .values_list("history_id", flat=True))
+        assert chained == ids
+    assert set(MeasuredValue.objects.filter(result__record=record).values_list(
+        "within_criterion", flat=True)) == {True}  # judged by the rule on insert
+    assert verify_chain().ok
+
+
+@pytest.mark.django_db
+def test_a_device_given_twice_is_refused_and_nothing_is_written():
+    from django.core.exceptions import ValidationError
+    from django.utils import timezone
+
+    from register import services
+
+    p = _plant("1oo1")
+    lt = p["comps"][0]
+    results = [services.ResultInput(component=lt, as_found="pass", as_left="pass"),
+               services.ResultInput(component=lt, as_found="pass", as_left="pass")]
+    with pytest.raises(ValidationError) as raised:
+        services.save_draft(user=p["tech"], sif=p["sif"], plan=p["plan"], kind="full",
+                            performed_at=timezone.now() - timezone.timedelta(hours=1),
+                            results=results)
+    assert list(raised.value.message_dict) == ["results[1].__all__"]
+    assert raised.value.message_dict["results[1].__all__"][0].startswith(f"{lt.tag}: ")
+    assert not TestRecord.objects.filter(sif=p["sif"]).exists()
+
+
+@pytest.mark.django_db
+def test_bulk_api_queries_do_not_grow_with_devices():
+    """The API's bulk path shares the services: its non-chain queries do not grow with
+    the devices of an item either (devices are read without their subsystems there)."""
+    from django.utils import timezone
+    from rest_framework.test import APIClient
+
+    counts = []
+    for voting in ("1oo1", "1oo3"):
+        p = _plant(voting)
+        api = APIClient()
+        api.force_authenticate(p["tech"])
+        item = {"client_key": f"wo-{voting}", "sif": p["sif"].pk, "plan": p["plan"].pk,
+                "kind": "full",
+                "performed_at": (timezone.now() - timezone.timedelta(hours=3)).isoformat(),
+                "results": [{"component": c.pk, "as_found": "pass", "as_left": "pass"}
+                            for c in p["comps"]]}
+        with recorded() as rec:
+            r = api.post("/api/test-results/bulk/", {"password": f.PASSWORD,
+                                                     "results": [item]}, format="json")
+        assert r.status_code == 201, r.content[:1000]
+        assert TestRecord.objects.get(sif=p["sif"]).status == choices.RecordStatus.SIGNED
+        counts.append(rec)
+    print("\nbulk, 2 devices:", counts[0].summary(), "\nbulk, 6 devices:", counts[1].summary(),
+          sep="\n")
+    assert len(counts[1].non_chain) == len(counts[0].non_chain), (
+        counts[0].summary(), counts[1].summary())
