@@ -49,6 +49,13 @@ def _fresh_cache():
     yield
 
 
+@pytest.fixture(autouse=True)
+def _own_chain_anchors(settings, tmp_path):
+    """Each test anchors the change chain in a file of its own (a rolled-back test reuses
+    entry numbers another test anchored)."""
+    settings.CHAIN_ANCHOR_FILE = str(tmp_path / "chain-anchors.jsonl")
+
+
 # ---------------------------------------------------------------------------------------
 # The demo plant, loaded once per session into a database of its own
 # ---------------------------------------------------------------------------------------

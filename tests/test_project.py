@@ -13,6 +13,7 @@ ROOT = Path(__file__).resolve().parent.parent
 def test_production_settings_pass_check_deploy():
     env = {**os.environ, "DJANGO_SETTINGS_MODULE": "config.settings.production",
            "SECRET_KEY": "x" * 20 + "a-long-random-test-secret-value-0123456789",
+           "CHAIN_KEY": "c" * 8 + "a-random-test-chain-key-0123456789",
            "ALLOWED_HOSTS": "ledger.example.invalid"}
     env.pop("DJANGO_ALLOW_ASYNC_UNSAFE", None)  # set only for the browser tests
     out = subprocess.run([sys.executable, "manage.py", "check", "--deploy", "--fail-level",

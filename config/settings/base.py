@@ -21,6 +21,12 @@ VAR_DIR = Path(env_str("SIF_LEDGER_VAR_DIR", str(BASE_DIR / "var")))
 VAR_DIR.mkdir(parents=True, exist_ok=True)
 
 SECRET_KEY = env_str("SECRET_KEY", "dev-only-insecure-key-change-me")
+# Key of the change chain's HMAC-SHA256 hashes (register.audit.chain). Off production a
+# key derived from SECRET_KEY stands in; production refuses to start without its own.
+CHAIN_KEY = env_str("CHAIN_KEY") or __import__("hashlib").sha256(
+    f"sif-ledger change chain|{SECRET_KEY}".encode()).hexdigest()
+# The chain's head is written here from time to time, outside the database.
+CHAIN_ANCHOR_FILE = env_str("CHAIN_ANCHOR_FILE", str(VAR_DIR / "chain-anchors.jsonl"))
 DEBUG = env_bool("DEBUG", True)
 ALLOWED_HOSTS = env_list("ALLOWED_HOSTS", "localhost,127.0.0.1,[::1],testserver")
 CSRF_TRUSTED_ORIGINS = env_list("CSRF_TRUSTED_ORIGINS")
@@ -186,6 +192,8 @@ CELERY_BEAT_SCHEDULE = {
         "schedule": __import__("celery.schedules", fromlist=["crontab"]).crontab(
             minute=0, hour=RECOMPUTE_HOUR_UTC),
     },
+    "chain-anchor": {"task": "register.chain_anchor", "schedule": 3600,
+                     "options": {"expires": 3000}},
 }
 
 # --- REST framework ----------------------------------------------------------------

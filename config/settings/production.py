@@ -9,6 +9,9 @@ from config.settings.env import env_bool, env_int, env_list, env_str
 DEBUG = False
 if not SECRET_KEY or SECRET_KEY.startswith("dev-only") or len(SECRET_KEY) < 50:
     raise ImproperlyConfigured("SECRET_KEY must be set to a random value of 50+ characters")
+CHAIN_KEY = env_str("CHAIN_KEY")
+if not CHAIN_KEY or len(CHAIN_KEY) < 32:
+    raise ImproperlyConfigured("CHAIN_KEY must be set to a random value of 32+ characters")
 ALLOWED_HOSTS = env_list("ALLOWED_HOSTS")
 if not ALLOWED_HOSTS:
     raise ImproperlyConfigured("ALLOWED_HOSTS must list the host names this site answers to")

@@ -6,9 +6,17 @@ the same transaction:
 
 * ``content_hash`` = SHA-256 of a canonical JSON of the historical row's stored field
   values (read back from the database, so what is hashed is what is kept);
-* ``entry_hash`` = SHA-256 of ``prev_hash`` followed by the canonical JSON of the entry's
-  own fields (sequence, time, model, object, history row, action, actor, reason,
-  content hash).
+* ``entry_hash`` = HMAC-SHA256, keyed with ``settings.CHAIN_KEY``, of ``prev_hash``
+  followed by the canonical JSON of the entry's own fields (sequence, time, model, object,
+  history row, action, actor, reason, content hash, scheme). Someone who can write to the
+  database but does not hold the key cannot recompute the chain after changing it. Entries
+  appended before the chain was keyed keep their plain SHA-256 (``scheme`` 1); the sealed
+  checkpoint names the last of them, so no later entry can pass as one.
+
+From time to time (Celery beat, and after every full check that finds the chain intact)
+the head's sequence and hash are appended to an anchors file outside the database
+(``settings.CHAIN_ANCHOR_FILE``); verification holds the chain to every anchor, so cutting
+entries off the end, or rewriting an anchored entry, shows even with the key.
 
 Appends lock the one-row :class:`ChainHead` (``select_for_update``), so concurrent
 writers queue and the chain cannot fork.
@@ -19,6 +27,9 @@ Not covered: rows written with ``QuerySet.update()`` or ``bulk_create()`` leave 
 historical row (for example ``TestPlan.next_due_on`` and its state dates, derived from
 the records, and ``Bypass.announced_state``, excluded from history anyway, and synthetic benchmark
 plants), and the separate many-to-many history tables; none of these are chained.
+
+The key cannot be changed without making every keyed entry unverifiable: keep it with the
+backups.
 """
 
 from __future__ import annotations
@@ -28,12 +39,14 @@ import datetime as dt
 import decimal
 import functools
 import hashlib
+import hmac
 import json
 import logging
 import uuid
 from dataclasses import dataclass, field
 
 from django.apps import apps
+from django.conf import settings
 from django.db import connection, transaction
 from django.utils import timezone
 
@@ -114,8 +127,33 @@ def entry_payload(entry: ChainEntry) -> dict:
     }
 
 
+def _key() -> bytes:
+    return settings.CHAIN_KEY.encode("utf-8")
+
+
+def keyed_hash(text: str) -> str:
+    """HMAC-SHA256 of ``text`` with the chain key."""
+    return hmac.new(_key(), text.encode("utf-8"), hashlib.sha256).hexdigest()
+
+
 def entry_hash(prev_hash: str, entry: ChainEntry) -> str:
-    return sha256_text(prev_hash + canonical_json(entry_payload(entry)))
+    """The entry's hash under its scheme: keyed (HMAC-SHA256) or, for entries appended
+    before the chain was keyed, plain SHA-256. An unknown scheme gives no hash at all."""
+    if entry.scheme == ChainEntry.HMAC_SHA256:
+        return keyed_hash(prev_hash + canonical_json({**entry_payload(entry),
+                                                      "scheme": entry.scheme}))
+    if entry.scheme == ChainEntry.SHA256:
+        return sha256_text(prev_hash + canonical_json(entry_payload(entry)))
+    return ""
+
+
+_SEALED = ("seq", "entry_hash", "verified_at", "full_verified_at", "full_verified_seq",
+           "full_verified_ok", "unkeyed_until")
+
+
+def checkpoint_seal(cp) -> str:
+    """The keyed hash of a checkpoint's values (``ChainCheckpoint.seal``)."""
+    return keyed_hash(canonical_json({name: getattr(cp, name) for name in _SEALED}))
 
 
 @functools.cache
@@ -198,7 +236,7 @@ def append(history_instance) -> ChainEntry:
             content_hash=content_hash(row_content(
                 row, _m2m_rows(model, [history_instance.pk]).get(history_instance.pk),
                 bool(m2m_history_models(model)))),
-            prev_hash=head.last_hash,
+            prev_hash=head.last_hash, scheme=ChainEntry.HMAC_SHA256,
         )
         entry.entry_hash = entry_hash(head.last_hash, entry)
         entry.save()
@@ -314,8 +352,12 @@ def _content_hashes_of(models_by_label, entries) -> dict[str, dict[int, set[str]
     return current
 
 
-def _check_entry(e: ChainEntry, current) -> Break | None:
-    """The entry's own hash and the content of the historical row it covers."""
+def _check_entry(e: ChainEntry, current, unkeyed_until: int) -> Break | None:
+    """The entry's scheme, its own hash and the content of the historical row it covers."""
+    if e.scheme != ChainEntry.HMAC_SHA256 and e.seq > unkeyed_until:
+        return Break(e.seq, e.model_label, e.object_id, e.history_id, "entry altered",
+                     f"The entry is marked as hashed without the chain key, but every entry "
+                     f"after #{unkeyed_until} is keyed.")
     if entry_hash(e.prev_hash, e) != e.entry_hash:
         return Break(e.seq, e.model_label, e.object_id, e.history_id, "entry altered",
                      "The entry's fields no longer give its recorded hash.")
@@ -371,7 +413,7 @@ def _counted_coverage(models_by_label) -> tuple[int, int, Break | None]:
     return total, sum(chained.values()), first
 
 
-def _walk(entries, prev_hash: str, expected_seq: int, seen, lookup):
+def _walk(entries, prev_hash: str, expected_seq: int, seen, lookup, unkeyed_until: int):
     """Go through ``entries`` in order: unbroken sequence, each linked to the one before,
     each entry and its historical row as hashed (``lookup(batch)`` gives the rows' content
     hashes). Notes every covered history id in ``seen`` (unless None). Returns (entries
@@ -397,7 +439,7 @@ def _walk(entries, prev_hash: str, expected_seq: int, seen, lookup):
                               "entry missing",
                               "The entry does not link to the previous entry's hash.")
             else:
-                first = _check_entry(e, rows)
+                first = _check_entry(e, rows, unkeyed_until)
             if first is not None:
                 break
             prev_hash, expected_seq = e.entry_hash, e.seq + 1
@@ -453,15 +495,24 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
     attachment's file with its recorded SHA-256 (``register.audit.live``; from the
     checkpoint, files uploaded before it are checked for presence and size only).
 
+    The checkpoint's seal must fit its values, every entry after ``unkeyed_until`` must be
+    keyed, and the chain must reach, unchanged, every entry anchored outside the database
+    (``register.audit.anchors``).
+
     With ``record`` an intact chain moves the checkpoint to the head (and a full check
-    records its time and outcome, live rows included, in any case).
+    records its time and outcome, live rows included, in any case); a full check that finds
+    the chain intact anchors its head.
     """
     models_by_label = historical_models()
     cp = checkpoint()
-    # A chain the last full check found broken is checked in full until it holds again.
-    start = cp.seq if (incremental and cp is not None and cp.seq > 0
+    first = _seal_break(cp)
+    # An altered checkpoint is not trusted: the check starts from the first entry and
+    # accepts no unkeyed entry. A chain the last full check found broken is checked in
+    # full until it holds again.
+    trusted = cp is not None and first is None
+    unkeyed_until = cp.unkeyed_until if trusted else 0
+    start = cp.seq if (incremental and trusted and cp.seq > 0
                        and cp.full_verified_ok is not False) else 0
-    first: Break | None = None
     with _snapshot():
         entries = ChainEntry.objects.order_by("seq")
         if start:
@@ -486,7 +537,7 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
         count, last, walked = _walk(
             entries, prev_hash, expected_seq, seen if current is not None else None,
             (lambda batch: current) if current is not None
-            else (lambda batch: _content_hashes_of(models_by_label, batch)))
+            else (lambda batch: _content_hashes_of(models_by_label, batch)), unkeyed_until)
         first = first or walked
 
         head = ChainHead.objects.filter(pk=HEAD_PK).first()
@@ -499,6 +550,10 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
             first = Break(head.last_seq, "?", "?", None, "entry missing",
                           f"The chain head names entry #{head.last_seq} but the last entry is "
                           f"#{head_seq}.")
+        from register.audit.anchors import anchor_break, write_anchor
+        from register.audit.live import live_breaks
+
+        first = first or anchor_break(head_seq)
         if current is not None:
             total_rows = sum(len(rows) for rows in current.values())
             if first is None:
@@ -510,7 +565,6 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
             total_rows, count, coverage = _counted_coverage(models_by_label)
             first = first or coverage
 
-        from register.audit.live import live_breaks
 
         listed, total = live_breaks(full=not start, since=cp.verified_at if start else None)
 
@@ -520,6 +574,8 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
                           live_breaks_total=total)
     if record:
         _record(result)
+        if result.full and result.chain_ok:
+            write_anchor(result.head_seq, result.head_hash)
     cp = checkpoint()
     if cp is not None:
         result.full_verified_at, result.full_verified_ok = cp.full_verified_at, \
@@ -527,17 +583,31 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
     return result
 
 
+def _seal_break(cp) -> Break | None:
+    if cp is None or cp.seal == checkpoint_seal(cp):
+        return None
+    return Break(None, "register.ChainCheckpoint", str(cp.pk), None, "checkpoint altered",
+                 "The checkpoint's values no longer fit its seal: it was changed without the "
+                 "chain key. It is not used until it is put right.")
+
+
 def _record(result: VerifyResult) -> None:
     """Move the checkpoint to the head after an intact check (never backwards); note a full
-    check's time and outcome either way."""
+    check's time and outcome either way; seal it. An altered checkpoint is left as found
+    (sealing it would make its changed values pass)."""
     with transaction.atomic():
-        cp, _ = ChainCheckpoint.objects.select_for_update().get_or_create(pk=HEAD_PK)
+        cp = ChainCheckpoint.objects.select_for_update().filter(pk=HEAD_PK).first()
+        if cp is None:
+            cp = ChainCheckpoint(pk=HEAD_PK)  # a chain begun after keying: nothing unkeyed
+        elif _seal_break(cp) is not None:
+            return
         if result.chain_ok and result.head_seq >= cp.seq:
             cp.seq, cp.entry_hash = result.head_seq, result.head_hash
             cp.verified_at = result.checked_at
         if result.full:
             cp.full_verified_at, cp.full_verified_ok = result.checked_at, result.ok
             cp.full_verified_seq = result.head_seq
+        cp.seal = checkpoint_seal(cp)
         cp.save()
 
 

@@ -46,6 +46,11 @@ class ChainEntry(models.Model):
     """One link of the chain: which historical row, its content hash, and the link hash."""
 
     ACTIONS = [("+", _("created")), ("~", _("changed")), ("-", _("deleted"))]
+    #: How ``entry_hash`` was made: plain SHA-256 (entries appended before the chain was
+    #: keyed) or HMAC-SHA256 with ``settings.CHAIN_KEY`` (``register.audit.chain``).
+    SHA256, HMAC_SHA256 = 1, 2
+    SCHEMES = [(SHA256, _("SHA-256 (before the chain was keyed)")),
+               (HMAC_SHA256, _("HMAC-SHA256 with the chain key"))]
 
     seq = models.PositiveBigIntegerField(_("sequence"), unique=True)
     created_at = models.DateTimeField(_("appended at"))
@@ -58,6 +63,8 @@ class ChainEntry(models.Model):
     content_hash = models.CharField(_("content hash (SHA-256)"), max_length=64)
     prev_hash = models.CharField(_("previous entry hash"), max_length=64)
     entry_hash = models.CharField(_("entry hash (SHA-256)"), max_length=64)
+    scheme = models.PositiveSmallIntegerField(_("hash scheme"), choices=SCHEMES,
+                                              default=HMAC_SHA256)
 
     objects = _AppendOnlyQuerySet.as_manager()
 
@@ -69,6 +76,9 @@ class ChainEntry(models.Model):
             models.UniqueConstraint(fields=["model_label", "history_id"],
                                     name="register_chain_one_entry_per_history_row"),
         ]
+        # each object's newest entry (the live rows' comparison, register.audit.live)
+        indexes = [models.Index(fields=["model_label", "object_id", "seq"],
+                                name="register_chain_object_seq")]
 
     def __str__(self):
         return f"#{self.seq} {self.action} {self.model_label} {self.object_id}"
@@ -89,7 +99,8 @@ class ChainCheckpoint(models.Model):
     ``seq``/``entry_hash`` name the newest entry the last intact verification reached (the
     next check starts at that entry and first confirms it still hashes to ``entry_hash``);
     ``full_verified_at`` is when the whole chain was last recomputed from its first entry
-    (``register.audit.chain.verify_chain``). Written only by verification."""
+    (``register.audit.chain.verify_chain``). Written only by verification (and once by the
+    migration that keyed the chain)."""
 
     seq = models.PositiveBigIntegerField(_("verified up to entry"), default=0)
     entry_hash = models.CharField(_("hash of that entry"), max_length=64, default=GENESIS_HASH)
@@ -99,6 +110,12 @@ class ChainCheckpoint(models.Model):
     full_verified_seq = models.PositiveBigIntegerField(_("entries at the last full check"),
                                                        null=True, blank=True)
     full_verified_ok = models.BooleanField(_("intact at the last full check"), null=True)
+    #: Entries up to this one were appended before the chain was keyed (plain SHA-256);
+    #: every later one must be keyed. Set once, by the migration that keyed the chain.
+    unkeyed_until = models.PositiveBigIntegerField(_("unkeyed entries up to"), default=0)
+    #: HMAC of this row's values with the chain key: without the key, the checkpoint can
+    #: be neither moved nor widened to accept unkeyed entries.
+    seal = models.CharField(_("seal"), max_length=64, blank=True)
 
     class Meta:
         verbose_name = _("change chain checkpoint")
