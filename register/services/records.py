@@ -258,11 +258,14 @@ def _insert_with_history(model, objs: list) -> None:
     """Insert ``objs`` (rows of a draft's parts) in one statement and their history rows
     in another, then announce each history row as a save does
     (``post_create_historical_record``), so each joins the chain. The history rows name
-    the actor, reason and moment set by ``attribute`` as a save's would."""
+    the actor, reason (none: NULL, as a save stores) and moment set by ``attribute`` as a
+    save's would."""
     if not objs:
         return
     model.objects.bulk_create(objs)
-    history = model.history.bulk_history_create(objs)
+    history = model.history.bulk_history_create(objs, default_change_reason=None)
+    if history is None:  # history switched off (SIMPLE_HISTORY_ENABLED)
+        return
     for obj, row in zip(objs, history, strict=True):
         post_create_historical_record.send(
             sender=type(row), instance=obj, history_instance=row,

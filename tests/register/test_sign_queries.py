@@ -228,3 +228,27 @@ def test_bulk_api_queries_do_not_grow_with_devices():
           sep="\n")
     assert len(counts[1].non_chain) == len(counts[0].non_chain), (
         counts[0].summary(), counts[1].summary())
+
+
+@pytest.mark.django_db
+def test_history_rows_of_inserted_results_read_as_saved_ones():
+    """A result's history row from the one-statement insert holds what a save's would:
+    the actor, no reason (NULL), the moment given with ``at``."""
+    import datetime as dt
+
+    from django.utils import timezone
+
+    from register import services
+    from register.models import ComponentResult
+
+    p = _plant("1oo1")
+    at = timezone.now() - dt.timedelta(days=3)
+    results = [services.ResultInput(component=c, as_found="pass", as_left="pass")
+               for c in p["comps"]]
+    record = services.save_draft(user=p["tech"], sif=p["sif"], plan=p["plan"], kind="full",
+                                 performed_at=at, results=results, at=at)
+    rows = ComponentResult.history.filter(record_id=record.pk)
+    assert rows.count() == len(p["comps"])
+    for row in rows:
+        assert (row.history_user_id, row.history_change_reason, row.history_type,
+                row.history_date) == (p["tech"].pk, None, "+", at)
