@@ -171,7 +171,9 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         windows = [(start_12, end)]
         if in_service and _aware(in_service) < end:
             windows.append((_aware(in_service), end))
-        results, observed = eng_obs.achieved_and_observed_windows(hist, windows, as_of=end)
+        prepared = eng_hist.prepare(hist, end)  # once: every window and the projection
+        results, observed = eng_obs.achieved_and_observed_windows(hist, windows, as_of=end,
+                                                                  prepared=prepared)
         last12, obs12 = results[0], observed[0]
         a.achieved_pfd_avg = last12.pfd_avg
         a.observed_unavailability = obs12.unavailability
@@ -192,8 +194,9 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
             due_at = max(_aware(due_on), end)
             full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
             if any(b.ended_at is None for b in d.bypasses):
-                hist = history_input(d, rates, assume_closed_after=end)
-            proj = eng_hist.projection(hist, end, due_at, interval_hours=full_t1)
+                prepared = eng_hist.prepare(history_input(d, rates, assume_closed_after=end),
+                                            end)
+            proj = prepared.projection(due_at, interval_hours=full_t1)
             a.projected_pfd_avg = proj.pfd_avg
             detail["projection"] = {"next_test_on": due_on.isoformat(),
                                     "horizon_end": proj.window_end.isoformat()}

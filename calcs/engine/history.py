@@ -84,6 +84,8 @@ TEST_KINDS = ("full", "partial", "demand")
 DEFAULT_SCHEDULE_TOLERANCE = 0.15
 
 _EPOCH = datetime(1970, 1, 1)
+_EPOCH_UTC = _EPOCH.replace(tzinfo=UTC)
+_HOUR = timedelta(hours=1)
 _GL_CACHE: dict[int, tuple[np.ndarray, np.ndarray]] = {}
 
 
@@ -104,7 +106,22 @@ def _as_utc_naive(value: Any, field_name: str) -> datetime:
 
 
 def _hours(value: Any, field_name: str) -> float:
-    return (_as_utc_naive(value, field_name) - _EPOCH) / timedelta(hours=1)
+    # Hours since the epoch, exactly (value - epoch) / 1 h on the UTC time line. An aware
+    # value is subtracted from an aware epoch directly (Python does that in integer
+    # microseconds, the same as converting to naive UTC first, without the conversion).
+    if type(value) is datetime:
+        tz = value.tzinfo
+        if tz is None:
+            return (value - _EPOCH) / _HOUR
+        if tz.utcoffset(value) is not None:
+            return (value - _EPOCH_UTC) / _HOUR
+    return (_as_utc_naive(value, field_name) - _EPOCH) / _HOUR
+
+
+def _check_date(value: Any, field_name: str) -> None:
+    """Raise as :func:`_as_utc_naive` would for a value that is no date."""
+    if not isinstance(value, date):
+        _as_utc_naive(value, field_name)
 
 
 def _is_aware(value: Any) -> bool:
@@ -177,7 +194,7 @@ class TestEvent:
     replaced: bool = False
 
     def __post_init__(self) -> None:
-        _as_utc_naive(self.at, "at")
+        _check_date(self.at, "at")
         if self.kind not in TEST_KINDS:
             raise InputError("kind", f"must be one of {', '.join(TEST_KINDS)}, got {self.kind!r}")
         if self.coverage is not None:
@@ -409,30 +426,74 @@ def _default_cov(ch: Channel, kind: str) -> float:
     return 0.0
 
 
-def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None,
-             extra: dict[int, list[tuple[float, float | None]]] | None = None) -> _Compiled:
-    """Turn a SifHistory into arrays of renewal times.
+@dataclass
+class _PChannel:
+    """One channel prepared for an evaluation date (independent of the window end and of
+    planned tests): renewal times, the tests kept with their coverage, repairs, bypasses."""
 
-    ``cutoff_h``: records after it are not used (counted in a flag).
-    ``end_h``: open bypasses run to here. ``extra``: planned (time, coverage)
-    full tests per group index added to every channel of that group.
-    """
+    lam: float  # (1 - beta) * lambda_DU
+    ptc: float
+    bounds: frozenset[float]
+    renew_all: np.ndarray
+    kept_t: np.ndarray
+    kept_c: np.ndarray
+    fail_s: list[float]
+    fail_e: list[float]
+    bypasses: list[tuple[float, float | None]]  # end None: open, runs to the window end
+    log_surv_dd: float
+    events: list[_Event]  # the recorded tests used (up to the evaluation date)
+    after: int  # tests dated after the evaluation date (not used)
+
+
+@dataclass
+class _PGroup:
+    name: str
+    m: int
+    n: int
+    single: bool
+    channels: list[_PChannel]
+    bounds: frozenset[float]
+    tests_t: np.ndarray  # tests of any channel, with their coverage
+    tests_c: np.ndarray
+    base: np.ndarray  # renewals of the common-cause share (in service, overhauls)
+    lam: float  # beta * lambda_DU (geometric mean of the channels)
+    log_surv_dd_ccf: float
+
+
+@dataclass
+class _Prepared:
+    groups: list[_PGroup]
+    bypasses: list[tuple[float, float | None]]
+    start_h: float
+    flags: list[str]
+
+
+def _prepare(sif: SifHistory, cutoff_h: float | None, open_bypasses: bool = True) -> _Prepared:
+    """The part of :func:`_compile` that depends on the records and the evaluation date
+    only (records after ``cutoff_h`` are not used). ``open_bypasses``: a bypass without an
+    end runs to the window end (False: it is ignored)."""
     flags: list[str] = []
-    cgroups: list[_CGroup] = []
-    events: list[float] = []
+    pgroups: list[_PGroup] = []
     start_h = -math.inf
     after = 0
-    for gi, g in enumerate(sif.groups):
+    for g in sif.groups:
         v = parse_voting(g.voting)
         single = v.n == 1
         beta = 0.0 if single else float(g.beta)
         beta_d = 0.0 if single else float(g.beta_d)
-        cchans: list[_CChannel] = []
+        pchans: list[_PChannel] = []
         group_bounds: set[float] = {0.0, 1.0}
-        group_tests: list[tuple[float, float]] = []  # (time, coverage) of any channel
+        tests_t: list[float] = []
+        tests_c: list[float] = []
         group_renew_all: list[float] = []
         same = all(c is g.channels[0] for c in g.channels)
         for ci, ch in enumerate(g.channels):
+            if same and ci:
+                # the same channel again (a planned history): the same preparation, the
+                # same flags (given once), its tests and renewals already in the group's
+                pchans.append(pchans[0])
+                after += pchans[0].after
+                continue
             label = f"{g.name} channel {ci + 1}" if v.n > 1 and not same else g.name
             ins = _hours(ch.in_service, "in_service")
             start_h = max(start_h, ins)
@@ -446,116 +507,179 @@ def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None
                     renew_all.append(oh)
                     group_renew_all.append(oh)
             bounds = {0.0, 1.0, float(ch.partial_test_coverage), float(ch.proof_test_coverage)}
-            kept: list[tuple[float, float]] = []
-            out_s: list[float] = []
-            out_e: list[float] = []
+            kept_t: list[float] = []
+            kept_c: list[float] = []
+            fail_s: list[float] = []
+            fail_e: list[float] = []
+            used: list[_Event] = []
+            ch_after = 0
             for ev in _channel_events(ch, label, ins, cutoff_h, flags):
                 th, cov = ev.at_h, ev.coverage
                 if ev.after_cutoff:
-                    after += 1
+                    ch_after += 1
                     continue
+                used.append(ev)
                 bounds.add(cov)
-                group_tests.append((th, cov))
+                tests_t.append(th)
+                tests_c.append(cov)
                 if ev.failed:
                     if ev.restored_h > th:
-                        out_s.append(th)
-                        out_e.append(ev.restored_h)
+                        fail_s.append(th)
+                        fail_e.append(ev.restored_h)
                     if ev.replaced:
                         renew_all.append(ev.restored_h)
                     else:
                         # a repair fixes what was found and the test checked what it covers:
                         # the shares up to this coverage are as new, the rest keep their age
-                        kept.append((ev.restored_h, cov))
+                        kept_t.append(ev.restored_h)
+                        kept_c.append(cov)
                 else:
-                    kept.append((th, cov))
-            for bs_h, be_h in _bypass_periods(ch.bypasses, end_h, flags, f"{label}: "):
-                out_s.append(bs_h)
-                out_e.append(be_h)
-            if extra and gi in extra:
-                for th, cov in extra[gi]:
-                    cov = float(ch.proof_test_coverage if cov is None else cov)
-                    bounds.add(cov)
-                    kept.append((th, cov))
-                    group_tests.append((th, cov))
+                    kept_t.append(th)
+                    kept_c.append(cov)
+            after += ch_after
+            byp = _bypass_raw(ch.bypasses, open_bypasses, flags, f"{label}: ")
             group_bounds |= bounds
-            b = sorted(bounds)
-            lam = (1.0 - beta) * float(ch.lambda_du)
-            kept_t = np.array([k[0] for k in kept], dtype=float)
-            kept_c = np.array([k[1] for k in kept], dtype=float)
-            ra = np.array(renew_all, dtype=float)
-            segs = []
-            for lo, hi in itertools.pairwise(b):
-                rate = lam * (hi - lo)
-                if rate <= 0.0:
-                    continue
-                r = np.unique(np.concatenate([ra, kept_t[kept_c >= hi - 1e-12]]))
-                segs.append((rate, r))
-                events.extend(r.tolist())
-            ms, me, _ = _merge(np.array(out_s, dtype=float), np.array(out_e, dtype=float))
-            events.extend(ms.tolist())
-            events.extend(me.tolist())
             qdd = min(1.0, (1.0 - beta_d) * float(ch.lambda_dd) * float(ch.mttr_hours))
-            cchans.append(_CChannel(segs, math.log1p(-qdd) if qdd < 1 else -math.inf, ms, me))
-        # common-cause part
-        ccf_segs = []
-        log_dd_ccf = 0.0
+            pchans.append(_PChannel(
+                lam=(1.0 - beta) * float(ch.lambda_du), ptc=float(ch.proof_test_coverage),
+                bounds=frozenset(bounds), renew_all=np.array(renew_all, dtype=float),
+                kept_t=np.array(kept_t, dtype=float), kept_c=np.array(kept_c, dtype=float),
+                fail_s=fail_s, fail_e=fail_e, bypasses=byp,
+                log_surv_dd=math.log1p(-qdd) if qdd < 1 else -math.inf, events=used,
+                after=ch_after))
+        lam_g, log_dd_ccf = 0.0, 0.0
+        base = np.empty(0)
         if not single:
             lam_g = beta * _geo_mean([float(c.lambda_du) for c in g.channels])
             ins_g = min(_hours(c.in_service, "in_service") for c in g.channels)
-            gt = np.array([x[0] for x in group_tests], dtype=float)
-            gc = np.array([x[1] for x in group_tests], dtype=float)
             base = np.array([ins_g] + group_renew_all, dtype=float)
-            b = sorted(group_bounds)
-            for lo, hi in itertools.pairwise(b):
-                rate = lam_g * (hi - lo)
-                if rate <= 0.0:
-                    continue
-                r = np.unique(np.concatenate([base, gt[gc >= hi - 1e-12]]))
-                ccf_segs.append((rate, r))
-                events.extend(r.tolist())
             mttr_g = sum(float(c.mttr_hours) for c in g.channels) / v.n
             qdd_c = min(1.0, beta_d * _geo_mean([float(c.lambda_dd) for c in g.channels]) * mttr_g)
             log_dd_ccf = math.log1p(-qdd_c) if qdd_c < 1 else -math.inf
-        cgroups.append(_CGroup(g.name, v.m, v.n, cchans, ccf_segs, log_dd_ccf))
-
+        pgroups.append(_PGroup(g.name, v.m, v.n, single, pchans, frozenset(group_bounds),
+                               np.array(tests_t, dtype=float), np.array(tests_c, dtype=float),
+                               base, lam_g, log_dd_ccf))
     if after:
         flags.append(f"{after} test record(s) dated after the evaluation date "
                      f"({_fmt(cutoff_h)}) are not used")
+    byp = _bypass_raw(sif.bypasses, open_bypasses, flags)
+    return _Prepared(pgroups, byp, start_h, flags)
 
-    # bypasses of the whole SIF
-    pairs = _bypass_periods(sif.bypasses, end_h, flags)
-    ms, me, overlaps = _merge(np.array([p[0] for p in pairs], dtype=float),
-                              np.array([p[1] for p in pairs], dtype=float))
+
+def _segments(lam: float, bounds, renew_all: np.ndarray, kept_t: np.ndarray,
+              kept_c: np.ndarray, events: list[np.ndarray]) -> list[tuple[float, np.ndarray]]:
+    """The shares of lambda between coverage boundaries, each with its renewal times: the
+    renewals of everything, and the tests that reach the share's upper boundary."""
+    segs = []
+    for lo, hi in itertools.pairwise(sorted(bounds)):
+        rate = lam * (hi - lo)
+        if rate <= 0.0:
+            continue
+        r = np.unique(np.concatenate([renew_all, kept_t[kept_c >= hi - 1e-12]]))
+        segs.append((rate, r))
+        events.append(r)
+    return segs
+
+
+def _finish(p: _Prepared, end_h: float | None,
+            extra: dict[int, list[tuple[float, float | None]]] | None = None) -> _Compiled:
+    """The compiled form of a prepared SIF: open bypasses run to ``end_h``; ``extra``:
+    planned (time, coverage) full tests per group index added to every channel of that
+    group (coverage None: the channel's proof-test coverage)."""
+    events: list[np.ndarray] = []
+    cgroups: list[_CGroup] = []
+    for gi, pg in enumerate(p.groups):
+        planned = extra.get(gi) if extra else None
+        planned_t = np.array([t for t, _ in planned], dtype=float) if planned else None
+        group_bounds = set(pg.bounds)
+        tests_t, tests_c = [pg.tests_t], [pg.tests_c]
+        cchans: list[_CChannel] = []
+        done: dict[int, _CChannel] = {}
+        for pc in pg.channels:
+            if id(pc) in done:  # the same channel again: its times are in already
+                cchans.append(done[id(pc)])
+                continue
+            bounds, kept_t, kept_c = pc.bounds, pc.kept_t, pc.kept_c
+            if planned:
+                planned_c = np.array([pc.ptc if c is None else float(c) for _, c in planned],
+                                     dtype=float)
+                bounds = bounds | set(planned_c.tolist())
+                group_bounds |= bounds
+                kept_t = np.concatenate([kept_t, planned_t])
+                kept_c = np.concatenate([kept_c, planned_c])
+                tests_t.append(planned_t)
+                tests_c.append(planned_c)
+            segs = _segments(pc.lam, bounds, pc.renew_all, kept_t, kept_c, events)
+            out = _bypass_close(pc.bypasses, end_h)
+            ms, me, _ = _merge(np.array(pc.fail_s + [s for s, _ in out], dtype=float),
+                               np.array(pc.fail_e + [e for _, e in out], dtype=float))
+            events.extend((ms, me))
+            cc = _CChannel(segs, pc.log_surv_dd, ms, me)
+            done[id(pc)] = cc
+            cchans.append(cc)
+        ccf_segs = []
+        if not pg.single:
+            ccf_segs = _segments(pg.lam, group_bounds, pg.base, np.concatenate(tests_t),
+                                 np.concatenate(tests_c), events)
+        cgroups.append(_CGroup(pg.name, pg.m, pg.n, cchans, ccf_segs, pg.log_surv_dd_ccf))
+    flags = list(p.flags)
+    pairs = _bypass_close(p.bypasses, end_h)
+    ms, me, overlaps = _merge(np.array([s for s, _ in pairs], dtype=float),
+                              np.array([e for _, e in pairs], dtype=float))
     if overlaps:
         flags.append(f"{overlaps} overlapping bypass record(s) merged; "
                      "the overlapping time is counted once")
-    events.extend(ms.tolist())
-    events.extend(me.tolist())
-    return _Compiled(cgroups, ms, me, np.unique(np.array(events, dtype=float)), start_h,
+    events.extend((ms, me))
+    return _Compiled(cgroups, ms, me, np.unique(np.concatenate(events)), p.start_h,
                      list(dict.fromkeys(flags)))
 
 
-def _bypass_periods(bypasses, end_h: float | None, flags: list[str], label: str = ""
-                    ) -> list[tuple[float, float]]:
-    """Bypass periods in hours: one open at the end runs to ``end_h`` (ignored without
-    it); one ending before it starts is ignored; each with a flag."""
-    out = []
+def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None,
+             extra: dict[int, list[tuple[float, float | None]]] | None = None) -> _Compiled:
+    """Turn a SifHistory into arrays of renewal times.
+
+    ``cutoff_h``: records after it are not used (counted in a flag).
+    ``end_h``: open bypasses run to here. ``extra``: planned (time, coverage)
+    full tests per group index added to every channel of that group.
+    """
+    return _finish(_prepare(sif, cutoff_h, end_h is not None), end_h, extra)
+
+
+def _bypass_raw(bypasses, open_ok: bool, flags: list[str], label: str = ""
+                ) -> list[tuple[float, float | None]]:
+    """Bypass periods in hours, end None where still open (only with ``open_ok``, else
+    ignored); one ending before it starts is ignored; each with a flag."""
+    out: list[tuple[float, float | None]] = []
     for i, (s, e) in enumerate(bypasses):
         sh = _hours(s, f"bypasses[{i}].start")
         if e is None:
-            if end_h is None:
+            if not open_ok:
                 flags.append(f"{label}bypass from {_fmt(sh)} has no end; ignored")
                 continue
             flags.append(f"{label}bypass from {_fmt(sh)} has no end; counted as still active")
-            eh = max(end_h, sh)
-        else:
-            eh = _hours(e, f"bypasses[{i}].end")
+            out.append((sh, None))
+            continue
+        eh = _hours(e, f"bypasses[{i}].end")
         if eh < sh:
             flags.append(f"{label}bypass from {_fmt(sh)} ends before it starts "
                          f"({_fmt(eh)}); ignored")
             continue
         if eh > sh:
             out.append((sh, eh))
+    return out
+
+
+def _bypass_close(raw: list[tuple[float, float | None]], end_h: float | None
+                  ) -> list[tuple[float, float]]:
+    """Bypass periods with the open ones running to ``end_h`` (kept if that is later than
+    their start)."""
+    out = []
+    for sh, eh in raw:
+        if eh is None:
+            eh = max(end_h, sh)
+            if not eh > sh:
+                continue
+        out.append((sh, eh))
     return out
 
 
@@ -582,8 +706,9 @@ def _channel_events(ch: Channel, label: str, ins: float, cutoff_h: float | None,
     are returned with ``after_cutoff`` (not used).
     """
     out: list[_Event] = []
-    for t in sorted(ch.tests, key=lambda x: _hours(x.at, "at")):
-        th = _hours(t.at, "at")
+    timed = sorted(((_hours(t.at, "at"), i) for i, t in enumerate(ch.tests)))
+    for th, i in timed:  # in time order, ties in record order (a stable sort)
+        t = ch.tests[i]
         if th < ins:
             flags.append(f"{label}: {t.kind} test on {_fmt(th)} is before the channel "
                          f"went into service ({_fmt(ins)}); ignored")
@@ -759,6 +884,103 @@ def _resolve_start(sif_c: _Compiled, window_start: Any, end_dt: datetime) -> flo
 # public functions
 
 
+class PreparedHistory:
+    """One SIF's recorded life prepared once for one evaluation date ``as_of`` (records
+    after it are not used): the achieved PFDavg over any number of windows and the
+    projections from that date all reuse the one preparation. Each method gives what the
+    single-SIF function of the same name gives for that SIF and date (those functions
+    prepare a history and call it)."""
+
+    def __init__(self, sif: SifHistory, as_of: Any):
+        if as_of is None:
+            raise InputError("as_of", "an evaluation date is required")
+        self.sif = sif
+        self.as_of = as_of
+        self.as_of_h = _hours(as_of, "as_of")
+        self._prepared = _prepare(sif, self.as_of_h)
+        self._by_end: dict[float, _Compiled] = {}
+
+    def compiled(self, end_h: float | None = None) -> _Compiled:
+        """The compiled form with open bypasses running to ``end_h`` (default: the
+        evaluation date), built once per end."""
+        end_h = self.as_of_h if end_h is None else float(end_h)
+        c = self._by_end.get(end_h)
+        if c is None:
+            c = self._by_end[end_h] = _finish(self._prepared, end_h)
+        return c
+
+    @property
+    def resolved_events(self) -> list[list[list[_Event]]]:
+        """The recorded tests used, per group and channel, in time order, restorations
+        resolved (the observed-unavailability model reads the same ones)."""
+        return [[pc.events for pc in pg.channels] for pg in self._prepared.groups]
+
+    def achieved(self, window_start: Any = None, window_end: Any = None, *, order: int = 8,
+                 max_piece_hours: float = 2190.0, end_h: float | None = None
+                 ) -> HistoryResult:
+        """Achieved PFDavg over [window_start, window_end] (end default: the evaluation
+        date; start as in :func:`achieved_pfd`). Open bypasses run to ``end_h`` (default:
+        the evaluation date)."""
+        window_end = self.as_of if window_end is None else window_end
+        c = self.compiled(end_h)
+        b = _hours(window_end, "window_end")
+        a = _resolve_start(c, window_start, _as_utc_naive(window_end, "window_end"))
+        return _average(c, a, b, int(order), float(max_piece_hours), _is_aware(window_end),
+                        list(c.flags))
+
+    def windows(self, windows: Sequence[tuple[Any, Any]], *, order: int = 8,
+                max_piece_hours: float = 2190.0) -> list[HistoryResult]:
+        """:meth:`achieved` for each (start, end) window."""
+        return [self.achieved(s, e, order=order, max_piece_hours=max_piece_hours)
+                for s, e in windows]
+
+    def projection(self, next_test_at: Any, horizon_end: Any = None, *,
+                   interval_hours: float | None = None, coverage: float | None = None,
+                   order: int = 8, max_piece_hours: float = 2190.0) -> HistoryResult:
+        """See :func:`projection` (from the evaluation date)."""
+        as_h = self.as_of_h
+        nt_h = _hours(next_test_at, "next_test_at")
+        if nt_h < as_h:
+            raise InputError("next_test_at",
+                             f"{_fmt(nt_h)} is before the as-of date {_fmt(as_h)}")
+        if interval_hours is not None:
+            interval_hours = _num(interval_hours, "interval_hours")
+            if interval_hours <= 0:
+                raise InputError("interval_hours", "must be greater than 0")
+        if coverage is not None:
+            _num(coverage, "coverage", 0.0, 1.0)
+        if horizon_end is None:
+            if interval_hours is None:
+                raise InputError("horizon_end", "give a horizon end or a test interval")
+            hz_h = nt_h + interval_hours
+            aware = _is_aware(next_test_at)
+        else:
+            hz_h = _hours(horizon_end, "horizon_end")
+            aware = _is_aware(horizon_end)
+        if hz_h <= as_h:
+            raise InputError("horizon_end", "must be after the as-of date")
+        planned_t = [nt_h]
+        if interval_hours:
+            k = nt_h + interval_hours
+            while k < hz_h:
+                planned_t.append(k)
+                k += interval_hours
+        cov = None if coverage is None else float(coverage)  # None: each channel's PTC
+        extra = {gi: [(t, cov) for t in planned_t] for gi in range(len(self.sif.groups))}
+        c = _finish(self._prepared, hz_h, extra)
+        flags = list(c.flags)
+        if nt_h >= hz_h:
+            flags.append(f"the next test ({_fmt(nt_h)}) falls after the horizon end; "
+                         "it does not affect this projection")
+        return _average(c, as_h, hz_h, int(order), float(max_piece_hours), aware, flags)
+
+
+def prepare(sif: SifHistory, as_of: Any) -> PreparedHistory:
+    """``sif`` prepared once for the evaluation date ``as_of`` (see
+    :class:`PreparedHistory`)."""
+    return PreparedHistory(sif, as_of)
+
+
 def achieved_pfd(sif: SifHistory, window_start: Any = None, window_end: Any = None, *,
                  as_of: Any = None, order: int = 8,
                  max_piece_hours: float = 2190.0) -> HistoryResult:
@@ -774,27 +996,18 @@ def achieved_pfd(sif: SifHistory, window_start: Any = None, window_end: Any = No
     if window_end is None:
         raise InputError("window_end", "an evaluation date is required")
     end_h = _hours(window_end, "window_end")
-    cut_h = end_h if as_of is None else _hours(as_of, "as_of")
-    c = _compile(sif, cut_h, end_h)
-    a = _resolve_start(c, window_start, _as_utc_naive(window_end, "window_end"))
-    return _average(c, a, end_h, int(order), float(max_piece_hours), _is_aware(window_end),
-                    list(c.flags))
+    p = PreparedHistory(sif, window_end if as_of is None else as_of)
+    return p.achieved(window_start, window_end, order=order,
+                      max_piece_hours=max_piece_hours, end_h=end_h)
 
 
 def achieved_pfd_windows(sif: SifHistory, windows: Sequence[tuple[Any, Any]], *,
                          as_of: Any, order: int = 8, max_piece_hours: float = 2190.0,
-                         compiled: _Compiled | None = None) -> list[HistoryResult]:
+                         prepared: PreparedHistory | None = None) -> list[HistoryResult]:
     """Several windows of one SIF sharing one evaluation date (prepared once;
-    ``compiled``: the same SIF and evaluation date already prepared)."""
-    cut_h = _hours(as_of, "as_of")
-    c = compiled if compiled is not None else _compile(sif, cut_h, cut_h)
-    out = []
-    for start, end in windows:
-        end_h = _hours(end, "window_end")
-        a = _resolve_start(c, start, _as_utc_naive(end, "window_end"))
-        out.append(_average(c, a, end_h, int(order), float(max_piece_hours), _is_aware(end),
-                            list(c.flags)))
-    return out
+    ``prepared``: the same SIF and evaluation date already prepared)."""
+    p = prepared if prepared is not None else PreparedHistory(sif, as_of)
+    return p.windows(windows, order=order, max_piece_hours=max_piece_hours)
 
 
 def pfd_series(sif: SifHistory, start: Any, end: Any, points: int = 500, *,
@@ -805,8 +1018,7 @@ def pfd_series(sif: SifHistory, start: Any, end: Any, points: int = 500, *,
     if isinstance(points, bool) or not isinstance(points, int) or points < 2:
         raise InputError("points", "must be an integer of at least 2")
     end_h = _hours(end, "end")
-    cut_h = end_h if as_of is None else _hours(as_of, "as_of")
-    c = _compile(sif, cut_h, end_h)
+    c = PreparedHistory(sif, end if as_of is None else as_of).compiled(end_h)
     a, b = _window(c, _hours(start, "start"), end_h, [])
     uni = np.linspace(a, b, points)
     ev = c.events[(c.events > a) & (c.events < b)]
@@ -835,48 +1047,18 @@ def projection(sif: SifHistory, as_of: Any, next_test_at: Any, horizon_end: Any 
     interval_hours. Compare a due date with a proposed later date over the same
     horizon (see :func:`compare_deferral`).
     """
-    as_h = _hours(as_of, "as_of")
-    nt_h = _hours(next_test_at, "next_test_at")
-    if nt_h < as_h:
-        raise InputError("next_test_at", f"{_fmt(nt_h)} is before the as-of date {_fmt(as_h)}")
-    if interval_hours is not None:
-        interval_hours = _num(interval_hours, "interval_hours")
-        if interval_hours <= 0:
-            raise InputError("interval_hours", "must be greater than 0")
-    if coverage is not None:
-        _num(coverage, "coverage", 0.0, 1.0)
-    if horizon_end is None:
-        if interval_hours is None:
-            raise InputError("horizon_end", "give a horizon end or a test interval")
-        hz_h = nt_h + interval_hours
-        aware = _is_aware(next_test_at)
-    else:
-        hz_h = _hours(horizon_end, "horizon_end")
-        aware = _is_aware(horizon_end)
-    if hz_h <= as_h:
-        raise InputError("horizon_end", "must be after the as-of date")
-    planned_t = [nt_h]
-    if interval_hours:
-        k = nt_h + interval_hours
-        while k < hz_h:
-            planned_t.append(k)
-            k += interval_hours
-    cov = None if coverage is None else float(coverage)  # None: each channel's PTC
-    extra = {gi: [(t, cov) for t in planned_t] for gi in range(len(sif.groups))}
-    c = _compile(sif, as_h, hz_h, extra)
-    flags = list(c.flags)
-    if nt_h >= hz_h:
-        flags.append(f"the next test ({_fmt(nt_h)}) falls after the horizon end; "
-                     "it does not affect this projection")
-    return _average(c, as_h, hz_h, int(order), float(max_piece_hours), aware, flags)
+    return PreparedHistory(sif, as_of).projection(
+        next_test_at, horizon_end, interval_hours=interval_hours, coverage=coverage,
+        order=order, max_piece_hours=max_piece_hours)
 
 
 def compare_deferral(sif: SifHistory, as_of: Any, due_at: Any, proposed_at: Any,
                      horizon_end: Any, *, interval_hours: float | None = None) -> DeferralComparison:
     """Projected PFDavg over [as_of, horizon_end] with the next full test on its
     due date versus on a proposed later date."""
-    on_due = projection(sif, as_of, due_at, horizon_end, interval_hours=interval_hours)
-    later = projection(sif, as_of, proposed_at, horizon_end, interval_hours=interval_hours)
+    p = PreparedHistory(sif, as_of)
+    on_due = p.projection(due_at, horizon_end, interval_hours=interval_hours)
+    later = p.projection(proposed_at, horizon_end, interval_hours=interval_hours)
     inc = later.pfd_avg - on_due.pfd_avg
     rel = inc / on_due.pfd_avg if on_due.pfd_avg > 0 else math.inf if inc > 0 else 0.0
     return DeferralComparison(on_due, later, inc, rel)

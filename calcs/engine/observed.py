@@ -127,8 +127,11 @@ def _overlap(s: float, e: float, lo: float, hi: float) -> float:
     return max(0.0, min(e, hi) - max(s, lo))
 
 
-def _episodes(sif: _h.SifHistory, cutoff_h: float, flags: list[str]) -> list[_Ep]:
-    """Every finding of every channel, same-day findings of a group merged."""
+def _episodes(sif: _h.SifHistory, cutoff_h: float, flags: list[str],
+              resolved: list[list[list[_h._Event]]] | None = None) -> list[_Ep]:
+    """Every finding of every channel, same-day findings of a group merged. ``resolved``:
+    the channels' tests up to ``cutoff_h`` already resolved (per group and channel, see
+    :attr:`calcs.engine.history.PreparedHistory.resolved_events`)."""
     out: list[_Ep] = []
     for gi, g in enumerate(sif.groups):
         v = parse_voting(g.voting)
@@ -142,8 +145,11 @@ def _episodes(sif: _h.SifHistory, cutoff_h: float, flags: list[str]) -> list[_Ep
                 oh = _h._hours(ch.overhaul_at, "overhaul_at")
                 if ins <= oh <= cutoff_h:
                     renewals.append(oh)
-            events = [e for e in _h._channel_events(ch, label, ins, cutoff_h, flags)
-                      if not e.after_cutoff]
+            if resolved is not None:
+                events = resolved[gi][ci]
+            else:
+                events = [e for e in _h._channel_events(ch, label, ins, cutoff_h, flags)
+                          if not e.after_cutoff]
             for k, ev in enumerate(events):
                 if not ev.failed:
                     continue
@@ -222,8 +228,8 @@ def observed_unavailability(sif: _h.SifHistory, window_start=None, window_end=No
     if window_end is None:
         raise InputError("window_end", "an evaluation date is required")
     end_h = _h._hours(window_end, "window_end")
-    cut_h = end_h if as_of is None else _h._hours(as_of, "as_of")
-    prepared = _h._compile(sif, cut_h, end_h), _episodes(sif, cut_h, [])
+    p = _h.PreparedHistory(sif, window_end if as_of is None else as_of)
+    prepared = p.compiled(end_h), _episodes(sif, p.as_of_h, [], p.resolved_events)
     return _evaluate(sif, prepared, window_start, window_end, order, max_piece_hours)
 
 
@@ -270,19 +276,20 @@ def _evaluate(sif: _h.SifHistory, prepared, window_start, window_end, order: int
         flags=tuple(dict.fromkeys(flags)))
 
 
-def observed_windows(sif: _h.SifHistory, windows, *, as_of) -> list[ObservedResult]:
-    """Several windows sharing one evaluation date (prepared once)."""
-    cut_h = _h._hours(as_of, "as_of")
-    prepared = _h._compile(sif, cut_h, cut_h), _episodes(sif, cut_h, [])
-    return [_evaluate(sif, prepared, s, e) for s, e in windows]
+def observed_windows(sif: _h.SifHistory, windows, *, as_of,
+                     prepared: _h.PreparedHistory | None = None) -> list[ObservedResult]:
+    """Several windows sharing one evaluation date (prepared once; ``prepared``: the same
+    SIF and evaluation date already prepared by :func:`calcs.engine.history.prepare`)."""
+    p = prepared if prepared is not None else _h.PreparedHistory(sif, as_of)
+    both = p.compiled(), _episodes(sif, p.as_of_h, [], p.resolved_events)
+    return [_evaluate(sif, both, s, e) for s, e in windows]
 
 
-def achieved_and_observed_windows(sif: _h.SifHistory, windows, *, as_of
+def achieved_and_observed_windows(sif: _h.SifHistory, windows, *, as_of,
+                                  prepared: _h.PreparedHistory | None = None
                                   ) -> tuple[list[_h.HistoryResult], list[ObservedResult]]:
     """:func:`calcs.engine.history.achieved_pfd_windows` and :func:`observed_windows` of
-    the same SIF, windows and evaluation date, with the history model compiled once."""
-    cut_h = _h._hours(as_of, "as_of")
-    c = _h._compile(sif, cut_h, cut_h)
-    achieved = _h.achieved_pfd_windows(sif, windows, as_of=as_of, compiled=c)
-    prepared = c, _episodes(sif, cut_h, [])
-    return achieved, [_evaluate(sif, prepared, s, e) for s, e in windows]
+    the same SIF, windows and evaluation date, with the history model prepared once
+    (``prepared``: already prepared for this SIF and date; a projection may reuse it)."""
+    p = prepared if prepared is not None else _h.PreparedHistory(sif, as_of)
+    return p.windows(windows), observed_windows(sif, windows, as_of=as_of, prepared=p)
