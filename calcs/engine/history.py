@@ -683,7 +683,7 @@ def _bypass_close(raw: list[tuple[float, float | None]], end_h: float | None
     return out
 
 
-@dataclass
+@dataclass(slots=True)
 class _Event:
     """One recorded test of a channel, resolved: times in hours, coverage, restoration."""
 
@@ -706,19 +706,26 @@ def _channel_events(ch: Channel, label: str, ins: float, cutoff_h: float | None,
     are returned with ``after_cutoff`` (not used).
     """
     out: list[_Event] = []
-    timed = sorted(((_hours(t.at, "at"), i) for i, t in enumerate(ch.tests)))
+    tests = ch.tests
+    timed = sorted([(_hours(t.at, "at"), i) for i, t in enumerate(tests)])
+    default = {kind: float(_default_cov(ch, kind)) for kind in TEST_KINDS}
+    any_failed = False
     for th, i in timed:  # in time order, ties in record order (a stable sort)
-        t = ch.tests[i]
+        t = tests[i]
         if th < ins:
             flags.append(f"{label}: {t.kind} test on {_fmt(th)} is before the channel "
                          f"went into service ({_fmt(ins)}); ignored")
             continue
-        cov = float(_default_cov(ch, t.kind) if t.coverage is None else t.coverage)
+        cov = default[t.kind] if t.coverage is None else float(t.coverage)
         late = cutoff_h is not None and th > cutoff_h
-        rest = 0.0
         if t.failed:
+            any_failed = True
             rest = ch.mrt if t.restore_hours is None else float(t.restore_hours)
-        out.append(_Event(th, t.kind, cov, bool(t.failed), bool(t.replaced), th + rest, late))
+            out.append(_Event(th, t.kind, cov, True, t.replaced, th + rest, late))
+        else:
+            out.append(_Event(th, t.kind, cov, False, t.replaced, th, late))
+    if not any_failed:
+        return out
     used = [e for e in out if not e.after_cutoff]
     for i, e in enumerate(used):
         if not e.failed:
@@ -851,23 +858,35 @@ def _window(c: _Compiled, a: float, b: float, flags: list[str]) -> tuple[float, 
 
 def _average(c: _Compiled, a: float, b: float, order: int, max_piece: float,
              aware: bool, flags: list[str]) -> HistoryResult:
-    a, b = _window(c, a, b, flags)
-    t, w = _nodes(c.events, a, b, order, max_piece)
-    q_sif, q_groups = _evaluate(c, t)
-    span = b - a
-    avg = float(np.dot(w, q_sif) / span)
-    gavg = {g.name: float(np.dot(w, q_groups[i]) / span) for i, g in enumerate(c.groups)}
-    end_q, _ = _evaluate(c, np.array([b]), left=True)
-    return HistoryResult(
-        pfd_avg=avg,
-        window_start=_to_dt(a, aware),
-        window_end=_to_dt(b, aware),
-        hours=span,
-        groups=gavg,
-        bypass_hours=_bypass_hours(c, a, b),
-        pfd_at_end=float(end_q[0]),
-        flags=tuple(flags),
-    )
+    return _averages(c, [(a, b, aware, flags)], order, max_piece)[0]
+
+
+def _averages(c: _Compiled, windows: Sequence[tuple[float, float, bool, list[str]]],
+              order: int, max_piece: float) -> list[HistoryResult]:
+    """The average over each (start, end, aware, flags) window, every window's nodes
+    evaluated in one pass and every distinct end in another."""
+    spans = [_window(c, a, b, flags) for a, b, _, flags in windows]
+    nodes = [_nodes(c.events, a, b, order, max_piece) for a, b in spans]
+    cuts = np.cumsum([0] + [t.size for t, _ in nodes])
+    q_sif, q_groups = _evaluate(c, np.concatenate([t for t, _ in nodes]))
+    ends = sorted({b for _, b in spans})
+    end_q, _ = _evaluate(c, np.array(ends), left=True)
+    out = []
+    for k, ((a, b), (_, w), (_, _, aware, flags)) in enumerate(zip(spans, nodes, windows)):
+        lo, hi = cuts[k], cuts[k + 1]
+        span = b - a
+        out.append(HistoryResult(
+            pfd_avg=float(np.dot(w, q_sif[lo:hi]) / span),
+            window_start=_to_dt(a, aware),
+            window_end=_to_dt(b, aware),
+            hours=span,
+            groups={g.name: float(np.dot(w, q_groups[i, lo:hi]) / span)
+                    for i, g in enumerate(c.groups)},
+            bypass_hours=_bypass_hours(c, a, b),
+            pfd_at_end=float(end_q[ends.index(b)]),
+            flags=tuple(flags),
+        ))
+    return out
 
 
 def _resolve_start(sif_c: _Compiled, window_start: Any, end_dt: datetime) -> float:
@@ -930,9 +949,15 @@ class PreparedHistory:
 
     def windows(self, windows: Sequence[tuple[Any, Any]], *, order: int = 8,
                 max_piece_hours: float = 2190.0) -> list[HistoryResult]:
-        """:meth:`achieved` for each (start, end) window."""
-        return [self.achieved(s, e, order=order, max_piece_hours=max_piece_hours)
-                for s, e in windows]
+        """:meth:`achieved` for each (start, end) window (evaluated together)."""
+        c = self.compiled()
+        spans = []
+        for start, end in windows:
+            end = self.as_of if end is None else end
+            b = _hours(end, "window_end")
+            a = _resolve_start(c, start, _as_utc_naive(end, "window_end"))
+            spans.append((a, b, _is_aware(end), list(c.flags)))
+        return _averages(c, spans, int(order), float(max_piece_hours))
 
     def projection(self, next_test_at: Any, horizon_end: Any = None, *,
                    interval_hours: float | None = None, coverage: float | None = None,
