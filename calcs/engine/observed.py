@@ -235,45 +235,62 @@ def observed_unavailability(sif: _h.SifHistory, window_start=None, window_end=No
 
 def _evaluate(sif: _h.SifHistory, prepared, window_start, window_end, order: int = 8,
               max_piece_hours: float = 2190.0) -> ObservedResult:
+    return _evaluate_many(sif, prepared, [(window_start, window_end)], order,
+                          max_piece_hours)[0]
+
+
+def _evaluate_many(sif: _h.SifHistory, prepared, windows, order: int = 8,
+                   max_piece_hours: float = 2190.0) -> list[ObservedResult]:
+    """Each (start, end) window, the nodes of every window evaluated in one pass."""
     c, eps = prepared  # c: bypasses, start of service, flags
-    end_h = _h._hours(window_end, "window_end")
-    flags = list(c.flags)
-    a = _h._resolve_start(c, window_start, _h._as_utc_naive(window_end, "window_end"))
-    a, b = _h._window(c, a, end_h, flags)
-    bounds = [a, b]
-    for ep in eps:
-        bounds += [ep.a, ep.b, *ep.restored.values()]
-    events = np.unique(np.concatenate([np.array(bounds, dtype=float), c.byp_s, c.byp_e]))
-    t, w = _h._nodes(events, a, b, int(order), float(max_piece_hours))
-    span = b - a
+    spans = []
+    for window_start, window_end in windows:
+        end_h = _h._hours(window_end, "window_end")
+        flags = list(c.flags)
+        a = _h._resolve_start(c, window_start, _h._as_utc_naive(window_end, "window_end"))
+        a, b = _h._window(c, a, end_h, flags)
+        bounds = [a, b]
+        for ep in eps:
+            bounds += [ep.a, ep.b, *ep.restored.values()]
+        events = np.unique(np.concatenate([np.array(bounds, dtype=float), c.byp_s, c.byp_e]))
+        t, w = _h._nodes(events, a, b, int(order), float(max_piece_hours))
+        spans.append((a, b, t, w, flags, _h._is_aware(window_end)))
+    t = np.concatenate([x[2] for x in spans])
+    cuts = np.cumsum([0] + [x[2].size for x in spans])
     log_up = np.zeros(t.shape)
-    groups: dict[str, float] = {}
+    q_groups = []
     for gi, g in enumerate(sif.groups):
         v = parse_voting(g.voting)
         qg = _group_q(v.n, v.m, [e for e in eps if e.group == gi], t)
-        groups[g.name] = float(np.dot(w, qg) / span)
+        q_groups.append(qg)
         with np.errstate(divide="ignore"):
             log_up += np.log1p(-qg)
     q_sif = -np.expm1(log_up)
     if c.byp_s.size:
         q_sif[_h._in_intervals(t, c.byp_s, c.byp_e, False)] = 1.0
-    value = float(np.dot(w, q_sif) / span)
-    aware = _h._is_aware(window_end)
-    out_eps = []
-    for ep in sorted(eps, key=lambda e: e.b):
-        g = sif.groups[ep.group]
-        restored = max(ep.restored.values())
-        hours = _q_integral(ep.a, ep.b, ep.lam, a, b) + _overlap(ep.b, restored, a, b)
-        out_eps.append(Episode(
-            group=g.name, channels=tuple(sorted(ep.channels)),
-            onset_from=_h._to_dt(ep.a, aware), found_at=_h._to_dt(ep.b, aware),
-            restored_at=_h._to_dt(restored, aware), found_by=ep.found_by,
-            common_cause=len(ep.channels) > 1, hours_in_window=hours))
-    return ObservedResult(
-        unavailability=value, window_start=_h._to_dt(a, aware), window_end=_h._to_dt(b, aware),
-        hours=span, unavailable_hours=value * span, groups=groups,
-        bypass_hours=_h._bypass_hours(c, a, b), episodes=tuple(out_eps),
-        flags=tuple(dict.fromkeys(flags)))
+    out = []
+    for k, (a, b, _, w, flags, aware) in enumerate(spans):
+        lo, hi = cuts[k], cuts[k + 1]
+        span = b - a
+        groups = {g.name: float(np.dot(w, q_groups[gi][lo:hi]) / span)
+                  for gi, g in enumerate(sif.groups)}
+        value = float(np.dot(w, q_sif[lo:hi]) / span)
+        out_eps = []
+        for ep in sorted(eps, key=lambda e: e.b):
+            g = sif.groups[ep.group]
+            restored = max(ep.restored.values())
+            hours = _q_integral(ep.a, ep.b, ep.lam, a, b) + _overlap(ep.b, restored, a, b)
+            out_eps.append(Episode(
+                group=g.name, channels=tuple(sorted(ep.channels)),
+                onset_from=_h._to_dt(ep.a, aware), found_at=_h._to_dt(ep.b, aware),
+                restored_at=_h._to_dt(restored, aware), found_by=ep.found_by,
+                common_cause=len(ep.channels) > 1, hours_in_window=hours))
+        out.append(ObservedResult(
+            unavailability=value, window_start=_h._to_dt(a, aware),
+            window_end=_h._to_dt(b, aware), hours=span, unavailable_hours=value * span,
+            groups=groups, bypass_hours=_h._bypass_hours(c, a, b), episodes=tuple(out_eps),
+            flags=tuple(dict.fromkeys(flags))))
+    return out
 
 
 def observed_windows(sif: _h.SifHistory, windows, *, as_of,
@@ -282,7 +299,7 @@ def observed_windows(sif: _h.SifHistory, windows, *, as_of,
     SIF and evaluation date already prepared by :func:`calcs.engine.history.prepare`)."""
     p = prepared if prepared is not None else _h.PreparedHistory(sif, as_of)
     both = p.compiled(), _episodes(sif, p.as_of_h, [], p.resolved_events)
-    return [_evaluate(sif, both, s, e) for s, e in windows]
+    return _evaluate_many(sif, both, windows)
 
 
 def achieved_and_observed_windows(sif: _h.SifHistory, windows, *, as_of,
