@@ -45,14 +45,16 @@ def free_port() -> int:
 
 
 @contextlib.contextmanager
-def serve(database_url: str, workers: int = 4, threads: int = 8):
-    """Run gunicorn on a free loopback port; yield its base URL."""
+def serve(database_url: str, workers: int = 4, threads: int = 8,
+          settings_module: str = "config.settings.base"):
+    """Run gunicorn on a free loopback port; yield its base URL. The test suite passes its
+    own settings, so the server checks passwords with the suite's fast hasher."""
     port = free_port()
     var = Path(tempfile.mkdtemp(prefix="apiload-"))
     for sub in ("broker/queue", "broker/control", "broker/processed"):
         (var / sub).mkdir(parents=True, exist_ok=True)
     env = {**os.environ, "DATABASE_URL": database_url, "DJANGO_SETTINGS_MODULE":
-           "config.settings.base", "DEBUG": "false", "SIF_LEDGER_VAR_DIR": str(var),
+           settings_module, "TEST_CELERY_EAGER": "false", "DEBUG": "false", "SIF_LEDGER_VAR_DIR": str(var),
            "CELERY_BROKER_URL": "filesystem://", "CELERY_TASK_ALWAYS_EAGER": "false",
            "DB_CONN_MAX_AGE": "60", "LOG_LEVEL": "WARNING"}
     log = open(var / "server.log", "w")  # noqa: SIM115 - the server writes to it until stopped

@@ -181,6 +181,14 @@ RECOMPUTE_HOUR_UTC = env_int("RECOMPUTE_HOUR_UTC", 2)
 # queue "calcs" (start workers with -Q celery,calcs).
 CALCS_QUEUE = env_str("CALCS_QUEUE", "calcs")
 RECOMPUTE_CHUNK_SIFS = env_int("RECOMPUTE_CHUNK_SIFS", 500)
+# Evidence packs on a queue of their own, so a long pack never delays the scan or the
+# recompute (workers: -Q celery,calcs,packs). At the soft limit a pack is stopped and
+# marked failed with a plain message; the hard limit ends a build that does not stop.
+PACKS_QUEUE = env_str("PACKS_QUEUE", "packs")
+PACK_TIME_LIMIT_SECONDS = env_int("PACK_TIME_LIMIT_SECONDS", 900)
+PACK_HARD_TIME_LIMIT_SECONDS = env_int("PACK_HARD_TIME_LIMIT_SECONDS",
+                                       PACK_TIME_LIMIT_SECONDS + 60)
+CELERY_TASK_ROUTES = {"register.evidence_pack": {"queue": PACKS_QUEUE}}
 CELERY_BEAT_SCHEDULE = {
     "due-date-scan": {
         "task": "register.scan",

@@ -71,8 +71,7 @@ def test_lead_filters_opens_and_changes_a_test_interval(plant, live_server, page
     page.get_by_role("link", name="U20-SIF-301").click()
     chart = page.locator("img[src$='/chart/pfd.svg']")
     chart.scroll_into_view_if_needed()
-    page.wait_for_function(
-        "document.querySelector(\"img[src$='/chart/pfd.svg']\").naturalWidth > 0")
+    page.wait_for_function("img => img.naturalWidth > 0", arg=chart.element_handle())
     assert page.get_by_text("required SIF PFDavg = tolerable / frequency without the SIF"
                             ).first.is_visible()
     shot(page, "sif", 1280)

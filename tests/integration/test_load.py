@@ -20,7 +20,10 @@ def _database_url() -> str:
 def test_fifty_clients_bulk_and_lists_without_loss_or_duplicates():
     need(connection.vendor == "postgresql", "PostgreSQL not configured (set DATABASE_URL)")
     tokens, targets = build_plant(n_sifs=10, n_users=10)
-    with serve(_database_url(), workers=3, threads=8) as base:
+    # the suite's settings: users made here carry the suite's (fast) password hashes, and
+    # every bulk request re-checks the password
+    with serve(_database_url(), workers=3, threads=8,
+               settings_module="config.settings.test") as base:
         out = drive(base, tokens, targets, seconds=10, clients=50)
     assert not out["failures"], out["failures"][:5]
     assert len(out["latency"]["bulk"]) > 20 and len(out["latency"]["records"]) > 20

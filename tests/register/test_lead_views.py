@@ -188,7 +188,9 @@ def test_list_query_count_does_not_grow_with_sifs(client):
     _refresh(site)
     thirty = _page_queries(client, url)
     assert five == thirty
-    assert thirty <= 14  # +2: the request's savepoint (ATOMIC_REQUESTS inside the test's transaction)
+    # 12 reads, +2 the request's savepoint (ATOMIC_REQUESTS inside the test's transaction),
+    # +3 the session saved on every request (its idle expiry moves on), in its own savepoint
+    assert thirty <= 17
 
 
 @pytest.fixture

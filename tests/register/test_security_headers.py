@@ -271,6 +271,7 @@ def test_caddyfile_is_valid_for_caddy():
 def test_production_trusts_the_proxy_header_and_secures_cookies():
     env = {**os.environ, "DJANGO_SETTINGS_MODULE": "config.settings.production",
            "SECRET_KEY": "x" * 20 + "a-long-random-test-secret-value-0123456789",
+           "CHAIN_KEY": "k" * 8 + "a-random-test-chain-key-0123456789",
            "ALLOWED_HOSTS": "ledger.example.invalid"}
     code = ("import django; django.setup(); from django.conf import settings as s; "
             "print(s.SECURE_PROXY_SSL_HEADER, s.SESSION_COOKIE_SECURE, s.CSRF_COOKIE_SECURE)")
