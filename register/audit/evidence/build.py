@@ -5,9 +5,11 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 import zipfile
 from pathlib import Path
 
+from celery.exceptions import SoftTimeLimitExceeded
 from django.conf import settings
 from django.utils import timezone
 
@@ -70,8 +72,45 @@ def _safe(text: str) -> str:
     return "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in text)
 
 
-def run(pack_id: int) -> EvidencePack:
-    """Build one pack, recording status and progress on the row as it goes."""
+#: The pack's step once it was stopped at its time limit.
+STOPPED_STAGE = "Stopped at the time limit"
+
+
+def time_limit_message(seconds: int) -> str:
+    """What the pack page says of a pack stopped at its time limit (``seconds``)."""
+    took = f"{seconds // 60} minutes" if seconds >= 120 else \
+        f"{seconds} second{'s' if seconds != 1 else ''}"
+    return (f"The pack took longer than the time limit of {took} and was stopped. Ask for "
+            "a shorter period or a smaller scope (one unit or one SIF), or ask the "
+            "administrator to raise PACK_TIME_LIMIT_SECONDS.")
+
+
+def mark_failed(pack_id: int, error: str, stage: str = "Failed") -> int:
+    """Mark an unfinished pack failed with ``error`` (the pack page shows it); returns the
+    rows changed (0 when the pack was finished meanwhile). Tried again on a fresh database
+    connection once, since what stopped the build may have come in the middle of a query."""
+    from django.db import DatabaseError, InterfaceError, connection
+
+    for attempt in (1, 2):
+        try:
+            return EvidencePack.objects.filter(pk=pack_id).exclude(
+                status=EvidencePack.Status.DONE).update(
+                status=EvidencePack.Status.FAILED, error=error, stage=stage,
+                finished_at=timezone.now())
+        except (DatabaseError, InterfaceError):
+            if attempt == 2 or connection.in_atomic_block:
+                raise
+            connection.close()
+    return 0
+
+
+def run(pack_id: int, time_limit: int | None = None) -> EvidencePack:
+    """Build one pack, recording status and progress on the row as it goes.
+
+    ``time_limit`` (seconds): the build also stops itself at its next step past the limit,
+    should the worker's interruption at the soft time limit have been lost (an exception
+    raised inside a finaliser is only printed)."""
+    began = time.monotonic()
     pack = EvidencePack.objects.select_related("site", "unit", "sif", "requested_by").get(
         pk=pack_id)
     if pack.status == EvidencePack.Status.DONE:
@@ -82,15 +121,19 @@ def run(pack_id: int) -> EvidencePack:
                                                    progress=1, error="", stage="Started")
 
     def progress(percent: int, text: str):
+        if time_limit and time.monotonic() - began > time_limit:
+            raise SoftTimeLimitExceeded(f"past the time limit of {time_limit} s")
         EvidencePack.objects.filter(pk=pack.pk).update(progress=min(99, percent),
                                                        stage=text[:200])
 
     try:
         path = build(pack, progress)
     except Exception as exc:
-        EvidencePack.objects.filter(pk=pack.pk).update(
-            status=EvidencePack.Status.FAILED, error=f"{type(exc).__name__}: {exc}",
-            finished_at=timezone.now(), stage="Failed")
+        if isinstance(exc, SoftTimeLimitExceeded):
+            mark_failed(pack.pk, time_limit_message(
+                time_limit or settings.PACK_TIME_LIMIT_SECONDS), STOPPED_STAGE)
+        else:
+            mark_failed(pack.pk, f"{type(exc).__name__}: {exc}")
         raise
     data = path.read_bytes()
     EvidencePack.objects.filter(pk=pack.pk).update(
