@@ -18,8 +18,11 @@ the head's sequence and hash are appended to an anchors file outside the databas
 (``settings.CHAIN_ANCHOR_FILE``); verification holds the chain to every anchor, so cutting
 entries off the end, or rewriting an anchored entry, shows even with the key.
 
-Appends lock the one-row :class:`ChainHead` (``select_for_update``), so concurrent
-writers queue and the chain cannot fork.
+A transaction's entries are appended together just before it commits (the project's
+database backends, ``register.dbwrap``, call :func:`flush`), locking the one-row
+:class:`ChainHead` (``select_for_update``) only from then to the commit: concurrent
+writers queue for that moment only, and the chain cannot fork. A rolled-back
+transaction leaves no entry, as it leaves no history row.
 
 :func:`verify_chain` recomputes everything and names the first broken entry.
 
@@ -47,9 +50,10 @@ from dataclasses import dataclass, field
 
 from django.apps import apps
 from django.conf import settings
-from django.db import connection, transaction
+from django.db import DEFAULT_DB_ALIAS, connection, connections, transaction
 from django.utils import timezone
 
+from register.dbwrap import PENDING, ChainOnCommit
 from register.models import GENESIS_HASH, ChainCheckpoint, ChainEntry, ChainHead
 from register.people import person_name
 
@@ -217,38 +221,96 @@ def _actor_name(history_instance) -> str:
     return person_name(getattr(history_instance, "history_user", None))[:200]
 
 
-def append(history_instance) -> ChainEntry:
-    """Append the entry for one historical row (locks the head; call inside the write)."""
-    model = type(history_instance)
-    with transaction.atomic():
-        head = ChainHead.objects.select_for_update().filter(pk=HEAD_PK).first()
-        if head is None:
-            head, _ = ChainHead.objects.get_or_create(pk=HEAD_PK)
-            head = ChainHead.objects.select_for_update().get(pk=HEAD_PK)
-        row = _row_of(model, history_instance.pk)
-        pk_name = history_instance.instance_type._meta.pk.attname
+def _locked_head() -> ChainHead:
+    head = ChainHead.objects.select_for_update().filter(pk=HEAD_PK).first()
+    if head is None:
+        ChainHead.objects.get_or_create(pk=HEAD_PK)
+        head = ChainHead.objects.select_for_update().get(pk=HEAD_PK)
+    return head
+
+
+def _append_rows(pending: list[tuple[type, int, str]]) -> list[ChainEntry]:
+    """Append entries for these history rows, in this order, under one lock of the head:
+    one read per history table (and its many-to-many tables), one insert, one head update.
+    Rows no longer there (rolled back to a savepoint) are skipped."""
+    by_model: dict[type, list[int]] = {}
+    for model, history_id, _ in pending:
+        by_model.setdefault(model, []).append(history_id)
+    rows: dict[tuple[str, int], dict] = {}
+    m2m: dict[str, dict[int, dict]] = {}
+    for model, ids in by_model.items():
+        label = model._meta.label
+        for row in model._default_manager.filter(pk__in=ids).values():
+            rows[(label, row[model._meta.pk.attname])] = row
+        if m2m_history_models(model):
+            m2m[label] = _m2m_rows(model, ids)
+    head = _locked_head()
+    seq, prev = head.last_seq, head.last_hash
+    now = timezone.now()
+    entries = []
+    for model, history_id, actor in pending:
+        label = model._meta.label
+        row = rows.get((label, history_id))
+        if row is None:
+            continue
+        seq += 1
         entry = ChainEntry(
-            seq=head.last_seq + 1, created_at=timezone.now(),
-            model_label=model._meta.label, object_id=str(row[pk_name]),
-            history_id=history_instance.pk, action=row["history_type"],
-            actor=_actor_name(history_instance),
+            seq=seq, created_at=now, model_label=label,
+            object_id=str(row[model.instance_type._meta.pk.attname]),
+            history_id=history_id, action=row["history_type"], actor=actor,
             reason=(row.get("history_change_reason") or "")[:200],
             content_hash=content_hash(row_content(
-                row, _m2m_rows(model, [history_instance.pk]).get(history_instance.pk),
-                bool(m2m_history_models(model)))),
-            prev_hash=head.last_hash, scheme=ChainEntry.HMAC_SHA256,
+                row, m2m.get(label, {}).get(history_id), label in m2m)),
+            prev_hash=prev, scheme=ChainEntry.HMAC_SHA256,
         )
-        entry.entry_hash = entry_hash(head.last_hash, entry)
-        entry.save()
-        ChainHead.objects.filter(pk=HEAD_PK).update(last_seq=entry.seq,
-                                                    last_hash=entry.entry_hash)
+        entry.entry_hash = prev = entry_hash(prev, entry)
+        entries.append(entry)
+    if entries:
+        ChainEntry.objects.bulk_create(entries)
+        ChainHead.objects.filter(pk=HEAD_PK).update(last_seq=seq, last_hash=prev)
+    return entries
+
+
+def append(history_instance) -> ChainEntry:
+    """Append the entry for one historical row now (locks the head)."""
+    with transaction.atomic():
+        (entry,) = _append_rows([(type(history_instance), history_instance.pk,
+                                  _actor_name(history_instance))])
     return entry
+
+
+def flush(using: str = DEFAULT_DB_ALIAS) -> list[ChainEntry]:
+    """Append the entries of the history rows this transaction has written so far.
+
+    Called by the database backend just before the transaction commits
+    (``register.dbwrap``), and before anything reads the chain within the transaction
+    (``ChainEntry.objects``, :func:`verify_chain`), so a transaction always sees its own
+    entries. The head is locked from here to the commit only."""
+    conn = connections[using]
+    pending = conn.__dict__.get(PENDING)
+    if not pending:
+        return []
+    items = list(pending.values())
+    pending.clear()
+    if conn.get_autocommit():
+        with transaction.atomic(using=using):
+            return _append_rows(items)
+    return _append_rows(items)
 
 
 def on_history(sender, history_instance=None, **kwargs):
     """Receiver of simple-history's ``post_create_historical_record`` (connected in
-    ``RegisterConfig.ready``): every historical row joins the chain."""
-    append(history_instance)
+    ``RegisterConfig.ready``): every historical row joins the chain. Inside a transaction
+    the row waits for :func:`flush` (at the latest, just before the commit, by the
+    database backend); outside one, or on a backend that does not flush, it is appended at
+    once."""
+    conn = connections[DEFAULT_DB_ALIAS]
+    if conn.get_autocommit() or not isinstance(conn, ChainOnCommit):
+        append(history_instance)
+        return
+    model = type(history_instance)
+    conn.__dict__.setdefault(PENDING, {})[(model._meta.label, history_instance.pk)] = (
+        model, history_instance.pk, _actor_name(history_instance))
 
 
 # ---------------------------------------------------------------------------------------
@@ -503,6 +565,7 @@ def verify_chain(*, incremental: bool = False, record: bool = True) -> VerifyRes
     records its time and outcome, live rows included, in any case); a full check that finds
     the chain intact anchors its head.
     """
+    flush()  # this transaction's own entries first
     models_by_label = historical_models()
     cp = checkpoint()
     first = _seal_break(cp)

@@ -35,6 +35,35 @@ class ChainHead(models.Model):
 
 
 class _AppendOnlyQuerySet(models.QuerySet):
+    """Entries cannot be changed or deleted; every read first appends the entries this
+    transaction has pending (``register.audit.chain.flush``), so it sees its own."""
+
+    def _flush_pending(self):
+        from register.audit.chain import flush
+
+        flush(self.db)
+
+    def _fetch_all(self):
+        if self._result_cache is None:
+            self._flush_pending()
+        super()._fetch_all()
+
+    def count(self):
+        self._flush_pending()
+        return super().count()
+
+    def exists(self):
+        self._flush_pending()
+        return super().exists()
+
+    def aggregate(self, *args, **kwargs):
+        self._flush_pending()
+        return super().aggregate(*args, **kwargs)
+
+    def iterator(self, chunk_size=None):
+        self._flush_pending()
+        return super().iterator(chunk_size=chunk_size)
+
     def update(self, **kwargs):
         raise ChainAppendOnlyError("Chain entries cannot be changed.")
 
