@@ -225,6 +225,9 @@ def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--seconds", type=float, default=60)
     parser.add_argument("--clients", type=int, default=50)
+    parser.add_argument("--settings", default="config.settings.base",
+                        help="settings of the bench and its server; config.settings.test "
+                             "uses a fast password hasher, to see the rest of a bulk request")
     args = parser.parse_args()
     url = os.environ.get("DATABASE_URL", "")
     if not url.startswith("postgres"):
@@ -239,7 +242,7 @@ def main():
         conn.execute(f'CREATE DATABASE "{bench_db}"')
     try:
         os.environ["DATABASE_URL"] = bench_url
-        os.environ["DJANGO_SETTINGS_MODULE"] = "config.settings.base"
+        os.environ["DJANGO_SETTINGS_MODULE"] = args.settings
         os.environ.setdefault("SIF_LEDGER_VAR_DIR", tempfile.mkdtemp(prefix="apiload-var-"))
         import django
 
@@ -251,7 +254,7 @@ def main():
 
         with followup.suspended():
             tokens, targets = build_plant()
-        with serve(bench_url) as base:
+        with serve(bench_url, settings_module=args.settings) as base:
             out = drive(base, tokens, targets, args.seconds, args.clients)
         from register.models import TestRecord
 

@@ -89,6 +89,12 @@ DATABASES = {
         conn_max_age=env_int("DB_CONN_MAX_AGE", 0),
     )
 }
+# The project's backends: Django's own, appending the change chain's entries of a
+# transaction just before it commits (register.dbwrap).
+DATABASES["default"]["ENGINE"] = {
+    "django.db.backends.postgresql": "register.dbwrap.postgresql",
+    "django.db.backends.sqlite3": "register.dbwrap.sqlite3",
+}.get(DATABASES["default"]["ENGINE"], DATABASES["default"]["ENGINE"])
 # Every request in one transaction: a request refused or failing half-way writes nothing
 # (after-commit work, such as recomputes and e-mails, runs once the request commits).
 DATABASES["default"]["ATOMIC_REQUESTS"] = env_bool("ATOMIC_REQUESTS", True)
