@@ -743,22 +743,39 @@ def _channel_events(ch: Channel, label: str, ins: float, cutoff_h: float | None,
 # evaluation
 
 
-def _in_intervals(t: np.ndarray, s: np.ndarray, e: np.ndarray, left: bool) -> np.ndarray:
+def _last_at_or_before(r: np.ndarray, t: np.ndarray, n_right: int) -> np.ndarray:
+    """Index of the last element of ``r`` at or before each of the first ``n_right``
+    points of ``t`` (value just after, right limit) and strictly before each of the rest
+    (value just before, left limit); -1 where there is none."""
+    if n_right >= t.size:
+        return np.searchsorted(r, t, "right") - 1
+    if n_right <= 0:
+        return np.searchsorted(r, t, "left") - 1
+    return np.concatenate([np.searchsorted(r, t[:n_right], "right"),
+                           np.searchsorted(r, t[n_right:], "left")]) - 1
+
+
+def _in_intervals(t: np.ndarray, s: np.ndarray, e: np.ndarray, n_right: int) -> np.ndarray:
+    """Inside [s, e) for the first ``n_right`` points (right limit), inside (s, e] for
+    the rest (left limit)."""
     if s.size == 0:
         return np.zeros(t.shape, dtype=bool)
-    if left:  # left limit: inside (s, e]
-        idx = np.searchsorted(s, t, "left") - 1
-        ok = idx >= 0
-        return ok & (t <= e[np.maximum(idx, 0)])
-    idx = np.searchsorted(s, t, "right") - 1
+    idx = _last_at_or_before(s, t, n_right)
     ok = idx >= 0
-    return ok & (t < e[np.maximum(idx, 0)])
+    end = e[np.maximum(idx, 0)]
+    if n_right >= t.size:
+        return ok & (t < end)
+    if n_right <= 0:
+        return ok & (t <= end)
+    inside = t < end
+    inside[n_right:] = t[n_right:] <= end[n_right:]
+    return ok & inside
 
 
-def _exposure(segs: list[tuple[float, np.ndarray]], t: np.ndarray, side: str) -> np.ndarray:
+def _exposure(segs: list[tuple[float, np.ndarray]], t: np.ndarray, n_right: int) -> np.ndarray:
     s = np.zeros(t.shape)
     for rate, r in segs:
-        idx = np.searchsorted(r, t, side) - 1
+        idx = _last_at_or_before(r, t, n_right)
         np.maximum(idx, 0, out=idx)
         age = t - r[idx]
         np.maximum(age, 0.0, out=age)
@@ -766,45 +783,49 @@ def _exposure(segs: list[tuple[float, np.ndarray]], t: np.ndarray, side: str) ->
     return s
 
 
-def _log_group_survival(g: _CGroup, t: np.ndarray, left: bool) -> np.ndarray:
-    """log(1 - Q_group(t))."""
-    side = "left" if left else "right"
+def _log_group_survival(g: _CGroup, t: np.ndarray, n_right: int) -> np.ndarray:
+    """log(1 - Q_group(t)) (right limit at the first ``n_right`` points, left limit at
+    the rest). Call with floating-point warnings silenced (see :func:`_evaluate`)."""
     logs = []
     for ch in g.channels:
-        ls = ch.log_surv_dd - _exposure(ch.segs, t, side)
+        ls = ch.log_surv_dd - _exposure(ch.segs, t, n_right)
         if ch.out_s.size:
-            ls[_in_intervals(t, ch.out_s, ch.out_e, left)] = -np.inf
+            ls[_in_intervals(t, ch.out_s, ch.out_e, n_right)] = -np.inf
         logs.append(ls)
     f = g.n - g.m + 1  # failed channels that fail the group
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if f == 1:
-            log_ind = np.sum(logs, axis=0)
+    if f == 1:
+        log_ind = np.sum(logs, axis=0)
+    else:
+        qs = [-np.expm1(ls) for ls in logs]
+        if f == g.n:
+            q_ind = np.prod(qs, axis=0)
         else:
-            qs = [-np.expm1(ls) for ls in logs]
-            if f == g.n:
-                q_ind = np.prod(qs, axis=0)
-            else:
-                dist = np.zeros((g.n + 1, t.size))
-                dist[0] = 1.0
-                for i, q in enumerate(qs):
-                    p = 1.0 - q
-                    dist[1:i + 2] = dist[1:i + 2] * p + dist[0:i + 1] * q
-                    dist[0] *= p
-                q_ind = dist[f:].sum(axis=0)
-            log_ind = np.log1p(-np.minimum(q_ind, 1.0))
-        log_ccf = g.log_surv_dd_ccf - _exposure(g.ccf_segs, t, side) if g.ccf_segs else (
-            np.full(t.shape, g.log_surv_dd_ccf))
+            dist = np.zeros((g.n + 1, t.size))
+            dist[0] = 1.0
+            for i, q in enumerate(qs):
+                p = 1.0 - q
+                dist[1:i + 2] = dist[1:i + 2] * p + dist[0:i + 1] * q
+                dist[0] *= p
+            q_ind = dist[f:].sum(axis=0)
+        log_ind = np.log1p(-np.minimum(q_ind, 1.0))
+    log_ccf = g.log_surv_dd_ccf - _exposure(g.ccf_segs, t, n_right) if g.ccf_segs else (
+        np.full(t.shape, g.log_surv_dd_ccf))
     return log_ind + log_ccf
 
 
-def _evaluate(c: _Compiled, t: np.ndarray, left: bool = False) -> tuple[np.ndarray, np.ndarray]:
-    """Return (Q_sif(t), Q_group(t) as (G, P) array)."""
-    logs = np.array([_log_group_survival(g, t, left) for g in c.groups])
-    with np.errstate(invalid="ignore"):
+def _evaluate(c: _Compiled, t: np.ndarray, left: bool = False, *,
+              n_right: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Return (Q_sif(t), Q_group(t) as (G, P) array): the value just after each point
+    (right limit), or just before it with ``left``; with ``n_right``, just after the
+    first ``n_right`` points and just before the rest (one pass for both)."""
+    if n_right is None:
+        n_right = 0 if left else t.size
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logs = np.array([_log_group_survival(g, t, n_right) for g in c.groups])
         q_groups = -np.expm1(logs)
         q_sif = -np.expm1(logs.sum(axis=0))
     if c.byp_s.size:
-        q_sif[_in_intervals(t, c.byp_s, c.byp_e, left)] = 1.0
+        q_sif[_in_intervals(t, c.byp_s, c.byp_e, n_right)] = 1.0
     return q_sif, q_groups
 
 
@@ -868,9 +889,10 @@ def _averages(c: _Compiled, windows: Sequence[tuple[float, float, bool, list[str
     spans = [_window(c, a, b, flags) for a, b, _, flags in windows]
     nodes = [_nodes(c.events, a, b, order, max_piece) for a, b in spans]
     cuts = np.cumsum([0] + [t.size for t, _ in nodes])
-    q_sif, q_groups = _evaluate(c, np.concatenate([t for t, _ in nodes]))
     ends = sorted({b for _, b in spans})
-    end_q, _ = _evaluate(c, np.array(ends), left=True)
+    q_sif, q_groups = _evaluate(c, np.concatenate([t for t, _ in nodes] + [np.array(ends)]),
+                                n_right=int(cuts[-1]))  # the nodes, then just before each end
+    end_q = q_sif[cuts[-1]:]
     out = []
     for k, ((a, b), (_, w), (_, _, aware, flags)) in enumerate(zip(spans, nodes, windows)):
         lo, hi = cuts[k], cuts[k + 1]

@@ -267,7 +267,7 @@ def _evaluate_many(sif: _h.SifHistory, prepared, windows, order: int = 8,
             log_up += np.log1p(-qg)
     q_sif = -np.expm1(log_up)
     if c.byp_s.size:
-        q_sif[_h._in_intervals(t, c.byp_s, c.byp_e, False)] = 1.0
+        q_sif[_h._in_intervals(t, c.byp_s, c.byp_e, t.size)] = 1.0  # right limit
     out = []
     for k, (a, b, _, w, flags, aware) in enumerate(spans):
         lo, hi = cuts[k], cuts[k + 1]
