@@ -1,8 +1,9 @@
 """Benchmark: recomputing every SIF of a scale plant, and where the time goes.
 
 Times ``recompute_many`` over the whole plant (each run a new evaluation day, so every
-SIF is evaluated again) and, with ``--profile``, prints the functions that take the most
-time. Uses the scale plant that bench/bench_scale.py builds (built here when missing):
+SIF is evaluated again); with ``--phases``, the time of each step of a recompute (reading
+the rows, building the engine's inputs, the history model, storing); with ``--profile``,
+the functions that take the most time. Uses the scale plant that bench/bench_scale.py builds (built here when missing):
     DATABASE_URL=postgres://postgres@127.0.0.1:5432/sif_bench_scale \\
         .venv/bin/python bench/bench_recompute.py --sifs 1000 --profile
 """
@@ -27,6 +28,7 @@ def main():
     parser.add_argument("--sifs", type=int, default=1000)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--profile", action="store_true")
+    parser.add_argument("--phases", action="store_true")
     parser.add_argument("--top", type=int, default=30)
     args = parser.parse_args()
     import django
@@ -52,6 +54,11 @@ def main():
         took = time.perf_counter() - t
         best = took if best is None else min(best, took)
     print(f"recompute of {qs.count()} SIFs: best of {args.repeat} {best * 1000:.0f} ms")
+    if args.phases:
+        as_of += dt.timedelta(days=1)
+        took = phases(lambda: recompute_many(qs, trigger="bench", as_of=as_of))
+        for name, ms in took:
+            print(f"  {name:40} {ms:8.0f} ms")
     if args.profile:
         as_of += dt.timedelta(days=1)
         prof = cProfile.Profile()
@@ -61,6 +68,54 @@ def main():
         out = io.StringIO()
         pstats.Stats(prof, stream=out).sort_stats("cumulative").print_stats(args.top)
         print(out.getvalue())
+
+
+def phases(run) -> list[tuple[str, float]]:
+    """Run ``run`` once with the steps of a recompute timed (each step's functions wrapped
+    for that run only); steps nest (``assess`` holds the engine's)."""
+    import functools
+
+    from calcs.adapter import assessment
+    from calcs.engine import history, observed
+
+    steps = [
+        (assessment, "load", "read the rows (load)"),
+        (assessment, "latest_assessments", "newest assessments"),
+        (assessment, "_full_due_dates", "due dates"),
+        (assessment, "inputs_digest", "inputs digest"),
+        (assessment, "assess", "assess (per SIF, summed)"),
+        (assessment, "design_input", "  design input"),
+        (assessment.eng_design, "evaluate_sif", "  design figures"),
+        (assessment, "_schedule_check", "  schedule self-check"),
+        (assessment, "history_input", "  history input"),
+        (history, "prepare", "  history prepared"),
+        (observed, "achieved_and_observed_windows", "  achieved and observed windows"),
+        (history.PreparedHistory, "projection", "  projection"),
+        (assessment, "_store", "store"),
+    ]
+    took: dict[str, float] = {}
+    saved = []
+    for owner, attr, label in steps:
+        fn = getattr(owner, attr)
+        saved.append((owner, attr, fn))
+
+        def timed(*a, _fn=fn, _label=label, **k):
+            t = time.perf_counter()
+            try:
+                return _fn(*a, **k)
+            finally:
+                took[_label] = took.get(_label, 0.0) + time.perf_counter() - t
+
+        setattr(owner, attr, functools.wraps(fn)(timed))
+    t = time.perf_counter()
+    try:
+        run()
+    finally:
+        for owner, attr, fn in saved:
+            setattr(owner, attr, fn)
+    took["recompute (all)"] = time.perf_counter() - t
+    return [(label, took.get(label, 0.0) * 1000)
+            for label in ["recompute (all)"] + [x[2] for x in steps]]
 
 
 if __name__ == "__main__":
