@@ -314,6 +314,9 @@ AXES_LOCKOUT_PARAMETERS = [["username", "ip_address"]]
 AXES_RESET_ON_SUCCESS = True
 AXES_RESET_COOL_OFF_ON_FAILURE_DURING_LOCKOUT = False  # the stated end of a lock holds
 AXES_LOCKOUT_CALLABLE = "register.accounts.signin.locked_out"
+# Its start-up banner and per-attempt lines only in production (production.py), not on the
+# demo's or the commands' output.
+AXES_VERBOSE = False
 # The client's address is REMOTE_ADDR, or X-Forwarded-For when REMOTE_ADDR is one of these
 # proxies (which must set that header itself, as deploy/Caddyfile does).
 TRUSTED_PROXIES = env_list("TRUSTED_PROXIES")

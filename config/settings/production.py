@@ -40,3 +40,6 @@ STORAGES = {
 CACHE_URL = env_str("CACHE_URL", "redis://127.0.0.1:6379/1")
 CACHES = {"default": {"BACKEND": "django.core.cache.backends.redis.RedisCache",
                       "LOCATION": CACHE_URL, "KEY_PREFIX": "sif-ledger"}}
+
+# Sign-in failures and locks in the log (django-axes).
+AXES_VERBOSE = True

@@ -34,4 +34,3 @@ STORAGES = {
     "staticfiles": {"BACKEND": "django.contrib.staticfiles.storage.StaticFilesStorage"},
 }
 
-AXES_VERBOSE = False  # the sign-in lock works as in production; its log lines stay out of test output
