@@ -443,6 +443,7 @@ class _PChannel:
     log_surv_dd: float
     events: list[_Event]  # the recorded tests used (up to the evaluation date)
     after: int  # tests dated after the evaluation date (not used)
+    outages: tuple | None = None  # merged repairs and bypasses, kept once none is open
 
 
 @dataclass
@@ -466,6 +467,7 @@ class _Prepared:
     bypasses: list[tuple[float, float | None]]
     start_h: float
     flags: list[str]
+    outages: tuple | None = None  # merged SIF bypasses, kept once none is open
 
 
 def _prepare(sif: SifHistory, cutoff_h: float | None, open_bypasses: bool = True) -> _Prepared:
@@ -601,18 +603,19 @@ def _finish(p: _Prepared, end_h: float | None,
                 continue
             bounds, kept_t, kept_c = pc.bounds, pc.kept_t, pc.kept_c
             if planned:
-                planned_c = np.array([pc.ptc if c is None else float(c) for _, c in planned],
-                                     dtype=float)
-                bounds = bounds | set(planned_c.tolist())
-                group_bounds |= bounds
+                if all(c is None for _, c in planned):  # the channel's own coverage
+                    planned_c = np.full(len(planned), pc.ptc)  # (a boundary already)
+                else:
+                    planned_c = np.array([pc.ptc if c is None else float(c)
+                                          for _, c in planned], dtype=float)
+                    bounds = bounds | set(planned_c.tolist())
+                    group_bounds |= bounds
                 kept_t = np.concatenate([kept_t, planned_t])
                 kept_c = np.concatenate([kept_c, planned_c])
                 tests_t.append(planned_t)
                 tests_c.append(planned_c)
             segs = _segments(pc.lam, bounds, pc.renew_all, kept_t, kept_c, events)
-            out = _bypass_close(pc.bypasses, end_h)
-            ms, me, _ = _merge(np.array(pc.fail_s + [s for s, _ in out], dtype=float),
-                               np.array(pc.fail_e + [e for _, e in out], dtype=float))
+            ms, me, _ = pc.outages or _outages(pc, pc.fail_s, pc.fail_e, pc.bypasses, end_h)
             events.extend((ms, me))
             cc = _CChannel(segs, pc.log_surv_dd, ms, me)
             done[id(pc)] = cc
@@ -623,15 +626,26 @@ def _finish(p: _Prepared, end_h: float | None,
                                  np.concatenate(tests_c), events)
         cgroups.append(_CGroup(pg.name, pg.m, pg.n, cchans, ccf_segs, pg.log_surv_dd_ccf))
     flags = list(p.flags)
-    pairs = _bypass_close(p.bypasses, end_h)
-    ms, me, overlaps = _merge(np.array([s for s, _ in pairs], dtype=float),
-                              np.array([e for _, e in pairs], dtype=float))
+    ms, me, overlaps = p.outages or _outages(p, [], [], p.bypasses, end_h)
     if overlaps:
         flags.append(f"{overlaps} overlapping bypass record(s) merged; "
                      "the overlapping time is counted once")
     events.extend((ms, me))
     return _Compiled(cgroups, ms, me, np.unique(np.concatenate(events)), p.start_h,
                      list(dict.fromkeys(flags)))
+
+
+def _outages(owner, fail_s: list[float], fail_e: list[float],
+             bypasses: list[tuple[float, float | None]], end_h: float | None
+             ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Repairs and bypasses merged (starts, ends, overlaps joined); kept on ``owner``
+    when no bypass is open (then they do not depend on ``end_h``)."""
+    out = _bypass_close(bypasses, end_h)
+    merged = _merge(np.array(fail_s + [s for s, _ in out], dtype=float),
+                    np.array(fail_e + [e for _, e in out], dtype=float))
+    if all(e is not None for _, e in bypasses):
+        owner.outages = merged
+    return merged
 
 
 def _compile(sif: SifHistory, cutoff_h: float | None, end_h: float | None = None,
