@@ -1,7 +1,7 @@
 """A SIF's history prepared once (``calcs.engine.history.prepare``) gives the same
 figures as the single-SIF functions called separately for each window, the projection
 and the observed unavailability, each preparing the history anew: on randomised
-histories (every voting arrangement the register uses, failures found and repaired or
+histories (MooN votings including 1oo2D and 2oo4, failures found and repaired or
 replaced, partial tests, demands, device and SIF bypasses open and closed, records
 before service and after the evaluation date, naive and aware dates), to 1e-9 relative.
 
@@ -39,11 +39,12 @@ from calcs.engine.observed import (
     observed_unavailability,
     observed_windows,
 )
+from calcs.engine.voting import parse_voting
 
 REL = 1e-9
 T0 = dt.datetime(2015, 1, 1)
 YEAR = 8760.0
-VOTINGS = ("1oo1", "1oo2", "2oo2", "2oo3", "1oo3")
+VOTINGS = ("1oo1", "1oo2", "2oo2", "2oo3", "1oo3", "1oo2D", "2oo4")
 ZONES = (None, dt.UTC, ZoneInfo("Europe/Berlin"), ZoneInfo("America/New_York"))
 
 
@@ -108,7 +109,7 @@ def random_sif(seed: int) -> tuple[SifHistory, dt.datetime, str]:
     groups = []
     for gi in range(rng.randint(1, 3)):
         voting = rng.choice(VOTINGS)
-        n = int(voting[-1])
+        n = parse_voting(voting).n
         if rng.random() < 0.25:  # identical channels (one object), as a planned history
             channels = (random_channel(rng, as_of_h, zone),) * n
         else:
