@@ -81,6 +81,13 @@ def read_anchors() -> list[tuple[int, dict | None]]:
     return out
 
 
+def latest_anchor() -> dict | None:
+    """The newest anchor of this chain in the anchors file (None: not anchored yet)."""
+    mine = chain_id()
+    lines = [line for _, line in read_anchors() if line and line["chain"] == mine]
+    return max(lines, key=lambda a: a["seq"]) if lines else None
+
+
 def anchor_break(head_seq: int) -> Break | None:
     """The first way the chain departs from its anchors, or None."""
     mine = chain_id()

@@ -149,3 +149,23 @@ def test_evidence_pack_command(two_sites, tmp_path, capsys):
     with pytest.raises(CommandError):
         call_command("evidence_pack", site="alpha", start="2025-01-01", end="2025-06-01",
                      user="tech_a")
+
+
+def test_the_pack_prints_the_chain_anchor_kept_outside_the_database(two_sites, tmp_path):
+    from register.audit.anchors import write_anchor
+
+    a, _, _sif, people, _ = two_sites
+    result = audit.verify_chain()
+    anchor = write_anchor(result.head_seq, result.head_hash)
+    today = timezone.localdate()
+    pack = EvidencePack.objects.create(scope="site", site=a, requested_by=people["auditor_a"],
+                                       period_start=today - dt.timedelta(days=30),
+                                       period_end=today)
+    evidence.run(pack.pk)
+    pack.refresh_from_db()
+    assert pack.status == "done", pack.error
+    files = _unzip(evidence.pack_file(pack).read_bytes())
+    cover = json.loads(files["pack.json"])["chain"]
+    assert (cover["anchor"]["seq"], cover["anchor"]["hash"]) == (anchor["seq"], anchor["hash"])
+    text = _pdf_text(files["report.pdf"], tmp_path)
+    assert f"Chain anchored outside the database entry #{anchor['seq']}" in text

@@ -99,6 +99,14 @@ def csv_files(col: Collected) -> dict[str, bytes]:
     }
 
 
+def _anchor() -> dict | None:
+    from register.audit.anchors import anchor_path, latest_anchor
+
+    a = latest_anchor()
+    return None if a is None else {"seq": a["seq"], "hash": a["hash"], "at": a["at"],
+                                   "file": str(anchor_path())}
+
+
 def cover_facts(pack: EvidencePack, chain) -> dict:
     return {
         "pack_id": pack.pk, "site": pack.site.name, "site_code": pack.site.code,
@@ -108,7 +116,11 @@ def cover_facts(pack: EvidencePack, chain) -> dict:
         "generated_at": _iso(pack.started_at or timezone.now()),
         "chain": {"head_seq": chain.head_seq, "head_hash": chain.head_hash,
                   "verified_ok": chain.ok, "entries": chain.entries,
-                  "first_break": str(chain.first_break) if chain.first_break else None},
+                  "first_break": str(chain.first_break) if chain.first_break else None,
+                  # recomputed from this entry on (1: every entry), and the newest anchor
+                  # of the head kept outside the database
+                  "verified_from_seq": chain.from_seq or 1,
+                  "anchor": _anchor()},
         "caution": CAUTION,
         "methods": {"design": DESIGN_FORMULA, "achieved": ACHIEVED_FORMULA,
                     "observed": OBSERVED_METHOD},
