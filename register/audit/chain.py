@@ -53,7 +53,7 @@ from django.conf import settings
 from django.db import DEFAULT_DB_ALIAS, connection, connections, transaction
 from django.utils import timezone
 
-from register.dbwrap import PENDING, ChainOnCommit
+from register.dbwrap import PENDING, ChainOnCommit, note_flushed, set_flush
 from register.models import GENESIS_HASH, ChainCheckpoint, ChainEntry, ChainHead
 from register.people import person_name
 
@@ -290,12 +290,16 @@ def flush(using: str = DEFAULT_DB_ALIAS) -> list[ChainEntry]:
     pending = conn.__dict__.get(PENDING)
     if not pending:
         return []
-    items = list(pending.values())
+    taken = dict(pending)
     pending.clear()
     if conn.get_autocommit():
         with transaction.atomic(using=using):
-            return _append_rows(items)
-    return _append_rows(items)
+            return _append_rows(list(taken.values()))
+    note_flushed(conn, taken)
+    return _append_rows(list(taken.values()))
+
+
+set_flush(flush)
 
 
 def on_history(sender, history_instance=None, **kwargs):

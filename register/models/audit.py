@@ -12,6 +12,7 @@ from django.conf import settings
 from django.db import models
 from django.utils.translation import gettext_lazy as _
 
+from register.dbwrap import flush_pending
 from register.models.base import SiteScopedQuerySet
 from register.models.design import SafetyFunction
 from register.models.site import PlantUnit, Site
@@ -39,9 +40,7 @@ class _AppendOnlyQuerySet(models.QuerySet):
     transaction has pending (``register.audit.chain.flush``), so it sees its own."""
 
     def _flush_pending(self):
-        from register.audit.chain import flush
-
-        flush(self.db)
+        flush_pending(self.db)
 
     def _fetch_all(self):
         if self._result_cache is None:

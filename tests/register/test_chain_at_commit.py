@@ -89,3 +89,21 @@ def test_an_open_transaction_does_not_hold_up_another_writer():
                   .order_by("-seq").values_list("object_id", flat=True)[:2])
     assert labels == [str(slow.pk), str(quick.pk)]  # in the order they committed
     assert verify_chain().ok
+
+
+def test_entries_appended_inside_a_savepoint_rolled_back_are_appended_again():
+    sif, other = f.sif(f.unit(f.site())), None
+    before = ChainEntry.objects.count()
+    with transaction.atomic():
+        _rename(sif.pk, "kept change")  # pending
+        with pytest.raises(RuntimeError), transaction.atomic():
+            other = f.sif(sif.unit)  # rows of a part that will fail
+            assert ChainEntry.objects.count() > before  # a read appends what is pending
+            raise RuntimeError
+    assert not SafetyFunction.objects.filter(pk=other.pk).exists()
+    mine = ChainEntry.objects.filter(model_label="register.HistoricalSafetyFunction",
+                                     object_id=str(sif.pk))
+    assert mine.count() == 2  # created, then renamed: the rename's entry was not lost
+    assert ChainEntry.objects.count() == before + 1
+    result = verify_chain()
+    assert result.ok, result.first_break
