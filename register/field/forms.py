@@ -13,7 +13,7 @@ from django.conf import settings
 from django.utils import timezone
 
 from register import choices, rules
-from register.models import Component, SafetyFunction, TestStep
+from register.models import MAX_TEXT, Component, MeasuredValue, SafetyFunction, TestStep
 
 FIELD_KINDS = [choices.TestKind.FULL, choices.TestKind.PARTIAL, choices.TestKind.DEMAND]
 DATETIME_FORMAT = "%Y-%m-%dT%H:%M"
@@ -38,7 +38,7 @@ class HeaderForm(forms.Form):
         widget=forms.DateTimeInput(attrs={"type": "datetime-local"}, format=DATETIME_FORMAT),
         error_messages={"invalid": "Enter the date and time, e.g. 2026-03-14 09:30."},
     )
-    remarks = forms.CharField(label="Remarks (optional)", required=False,
+    remarks = forms.CharField(label="Remarks (optional)", required=False, max_length=MAX_TEXT,
                               widget=forms.Textarea(attrs={"rows": 2}))
     form_token = forms.CharField(widget=forms.HiddenInput)
     expected_version = forms.IntegerField(widget=forms.HiddenInput, required=False)
@@ -75,12 +75,13 @@ class ComponentForm(forms.Form):
                                  widget=forms.RadioSelect)
     as_left = forms.ChoiceField(label="As left", choices=VERDICT_CHOICES, required=False,
                                 widget=forms.RadioSelect)
-    work_done = forms.CharField(label="Work done", required=False,
+    work_done = forms.CharField(label="Work done", required=False, max_length=MAX_TEXT,
                                 widget=forms.Textarea(attrs={"rows": 2}))
     failure_mode = forms.ChoiceField(label="Failure found", required=False,
                                      choices=[("", "No failure")] + FAILURE_CHOICES,
                                      widget=forms.RadioSelect)
     failure_description = forms.CharField(label="Failure description", required=False,
+                                          max_length=MAX_TEXT,
                                           widget=forms.Textarea(attrs={"rows": 3}))
 
     #: Name (after the prefix) of the hidden input listing the choices the page preselected
@@ -218,10 +219,16 @@ class ComponentForm(forms.Form):
                 if raw in ("", None):
                     continue
                 try:
-                    values[(step, phase)] = value = parse_number(raw)
+                    value = parse_number(raw)
                 except ValueError:
                     self.add_error(name, rules.not_a_number(raw).reason)
                     continue
+                try:  # the stored value's own bounds (MeasuredValue.value)
+                    MeasuredValue._meta.get_field("value").run_validators(value)
+                except forms.ValidationError as exc:
+                    self.add_error(name, exc.messages)
+                    continue
+                values[(step, phase)] = value
                 judged.append(rules.JudgedValue(
                     step, phase, value, rules.judge_measurement(step, value, sif=self.sif),
                     rules.criterion_text(step, self.sif)))
@@ -280,7 +287,7 @@ def check_upload(upload) -> tuple[str, str]:
 
 
 class CorrectionForm(forms.Form):
-    reason = forms.CharField(label="Reason for the correction",
+    reason = forms.CharField(label="Reason for the correction", max_length=MAX_TEXT,
                              widget=forms.Textarea(attrs={"rows": 2}),
                              error_messages={"required": "A correction needs a reason."})
 

@@ -8,7 +8,11 @@ back up the most important rules for writes that skip ``full_clean()``.
 from __future__ import annotations
 
 from django.core.exceptions import ValidationError
-from django.core.validators import MinValueValidator
+from django.core.validators import (
+    MaxLengthValidator,
+    MinValueValidator,
+    ProhibitNullCharactersValidator,
+)
 from django.db import models
 from django.db.models import Q
 from django.utils.deconstruct import deconstructible
@@ -18,6 +22,21 @@ from register.calculations import calculations
 #: Longest free text (reasons, remarks, descriptions) a request or an imported cell may
 #: carry, in characters.
 MAX_TEXT = 20_000
+#: Validators of such free text: no NUL (the database cannot store it), at most MAX_TEXT.
+free_text = [ProhibitNullCharactersValidator(), MaxLengthValidator(MAX_TEXT)]
+
+
+def free_text_errors(instance, *names: str) -> dict[str, list[str]]:
+    """The messages of ``free_text`` on the text fields ``names`` of ``instance``, by
+    field (for a model's ``clean()`` where a caller's text reaches it without a form)."""
+    errors = {}
+    for name in names:
+        try:
+            for check in free_text:
+                check(getattr(instance, name) or "")
+        except ValidationError as exc:
+            errors[name] = exc.messages
+    return errors
 
 
 @deconstructible

@@ -17,6 +17,7 @@ from register import choices
 from register.days import is_future
 from register.models.base import (
     SiteScopedQuerySet,
+    free_text_errors,
     plausible,
     plausible_date,
 )
@@ -255,10 +256,13 @@ class Deferral(models.Model):
         return f"{self.plan} deferral to {self.proposed_on}"
 
     def clean(self):
+        errors = free_text_errors(self, "reason", "decision_note")
         if self.due_on and self.proposed_on and self.proposed_on <= self.due_on:
-            raise ValidationError({"proposed_on": _(
+            errors["proposed_on"] = [_(
                 "The proposed date must be after the current due date (%(due)s)."
-            ) % {"due": self.due_on}})
+            ) % {"due": self.due_on}]
+        if errors:
+            raise ValidationError(errors)
 
 
 

@@ -13,7 +13,7 @@ from django.utils import timezone
 
 from register import choices
 from register.days import zone_of
-from register.models import Component, Membership, SafetyFunction
+from register.models import MAX_TEXT, Component, Membership, SafetyFunction
 
 LOCAL_FORMAT = "%Y-%m-%dT%H:%M"
 
@@ -68,8 +68,9 @@ class BypassForm(_SiteForm):
     started_at = forms.CharField(label="Put in place at")
     authorised_hours = forms.CharField(label="Expected duration (hours)")
     reason = forms.CharField(label="Reason", widget=forms.Textarea(attrs={"rows": 3}),
-                             required=False)
+                             required=False, max_length=MAX_TEXT)
     compensating_measures = forms.CharField(label="Compensating measures", required=False,
+                                            max_length=MAX_TEXT,
                                             widget=forms.Textarea(attrs={"rows": 3}))
     measures_effective = forms.BooleanField(
         label="The compensating measures give protection equivalent to the SIF",
@@ -115,7 +116,7 @@ class DemandForm(_SiteForm):
         label="Cause", choices=[("", "Choose the cause")] + [
             c for c in choices.DemandCause.choices if c[0] != choices.DemandCause.NOT_RECORDED],
         error_messages={"required": "Choose the cause (or “Not known yet”)."})
-    description = forms.CharField(label="What happened, in a few words",
+    description = forms.CharField(label="What happened, in a few words", max_length=MAX_TEXT,
                                   widget=forms.Textarea(attrs={"rows": 3}),
                                   error_messages={"required": "Describe what happened."})
 
@@ -163,6 +164,7 @@ def site_people(site_id: int, roles=(choices.Role.LEAD, choices.Role.TECHNICIAN)
 class FindingForm(forms.Form):
     owner = forms.ChoiceField(label="Owner")
     corrective_action = forms.CharField(label="Corrective work", required=False,
+                                        max_length=MAX_TEXT,
                                         widget=forms.Textarea(attrs={"rows": 3}))
     retest_due_on = forms.DateField(label="Retest due by", required=False,
                                     widget=forms.DateInput(attrs={"type": "date"}),
@@ -183,6 +185,7 @@ class FindingForm(forms.Form):
 class CloseFindingForm(forms.Form):
     retest = forms.ChoiceField(label="Signed passing retest", required=False)
     reason = forms.CharField(label="Or: why it is closed without a retest", required=False,
+                             max_length=MAX_TEXT,
                              widget=forms.Textarea(attrs={"rows": 3}))
 
     def __init__(self, *args, candidates, **kwargs):
