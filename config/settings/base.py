@@ -140,6 +140,8 @@ REQUEST_MAX_BYTES = env_int("REQUEST_MAX_BYTES", 16 * 1024 * 1024)
 # while reading (a sheet's own stated size is not trusted).
 IMPORT_MAX_BYTES = env_int("IMPORT_MAX_BYTES", 5 * 1024 * 1024)
 IMPORT_MAX_ROWS = env_int("IMPORT_MAX_ROWS", 20_000)
+# More rows than this: Confirm queues the import as a background job with a progress page.
+IMPORT_BACKGROUND_ROWS = env_int("IMPORT_BACKGROUND_ROWS", 200)
 
 EMAIL_BACKEND = env_str("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
 DEFAULT_FROM_EMAIL = env_str("DEFAULT_FROM_EMAIL", "sif-ledger@localhost")

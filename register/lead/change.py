@@ -135,10 +135,18 @@ def import_sheet(request):
             messages.error(request, "Nothing to import: check a file first.")
             return redirect("register:import")
         site = get_object_or_404(site_qs, pk=stored["site"])
-        rows = spreadsheet.read_table(stored["name"], base64.b64decode(stored["data"]))
+        data = base64.b64decode(stored["data"])
+        rows = spreadsheet.read_table(stored["name"], data)
+        background = spreadsheet.runs_in_background(rows)
         try:
-            plan = spreadsheet.apply_import(site, rows, request.user, stored["reference"],
-                                            request.POST.get("password", ""))
+            if background:  # a long file: the same checks here, the writing in a job
+                job = spreadsheet.queue_import(site, stored["name"], data, request.user,
+                                               stored["reference"],
+                                               request.POST.get("password", ""))
+            else:
+                plan = spreadsheet.apply_import(site, rows, request.user,
+                                                stored["reference"],
+                                                request.POST.get("password", ""))
         except ValidationError as exc:  # the password: the checked file stays ready
             context.update(plan=spreadsheet.plan_import(site, rows), site=site,
                            name=stored["name"], password_error=" ".join(exc.messages))
@@ -149,8 +157,9 @@ def import_sheet(request):
             form = ImportForm(sites=site_qs)
         else:
             del request.session[SESSION_KEY]
-            messages.success(request, f"Imported {stored['name']}: {plan.changes} "
-                                       "row(s) created or changed.")
+            if background:
+                return redirect("register:import_job", job.pk)
+            messages.success(request, spreadsheet.summary_text(stored["name"], plan.changes))
             return redirect(list_url(site=site.pk))
     elif request.method == "POST":
         form = ImportForm(request.POST, request.FILES, sites=site_qs)
@@ -164,7 +173,8 @@ def import_sheet(request):
                 context["file_error"] = str(exc)
             else:
                 plan = spreadsheet.plan_import(site, rows)
-                context.update(plan=plan, site=site, name=upload.name)
+                context.update(plan=plan, site=site, name=upload.name,
+                               background=spreadsheet.runs_in_background(rows))
                 if not plan.errors:
                     request.session[SESSION_KEY] = {
                         "site": site.pk, "name": upload.name,

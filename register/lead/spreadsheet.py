@@ -14,16 +14,18 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
+import logging
 import math
 import re
 import zipfile
 from collections import OrderedDict
 from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 from django.conf import settings
-from django.core.exceptions import ValidationError
-from django.db import transaction
+from django.core.exceptions import PermissionDenied, ValidationError
+from django.db import DEFAULT_DB_ALIAS, DatabaseError, connection, connections, transaction
 from django.db.models import OuterRef, Subquery
 from django.utils import timezone
 from openpyxl import load_workbook
@@ -38,6 +40,7 @@ from register.models import (
     Component,
     ComponentResult,
     DeviceType,
+    ImportJob,
     PlantUnit,
     SafetyFunction,
     Site,
@@ -49,6 +52,8 @@ from register.models import (
 from register.permissions import Action, require
 from register.rules import result_problems
 from register.schedule import followup
+
+log = logging.getLogger(__name__)
 
 COLUMNS = [
     "record", "unit", "sif_tag", "sif_name", "safe_state", "demand_mode", "target_sil",
@@ -761,24 +766,53 @@ def _row_error(number: int, exc: ValidationError, column_of: dict) -> list[CellE
     return out
 
 
-def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
-                 password) -> ImportPlan:
-    """Check again, then write everything or nothing. Raises :class:`ImportFailed`, or a
-    ValidationError keyed ``password`` when the importer's password (asked again: the
-    test history is signed in their name) is missing or wrong."""
+def _confirmed(site: Site, user, reference: str, password):
+    """The checks before anything is written, in front of the small and the background
+    path alike: the right to edit the register, the password (asked again: the test
+    history is signed in the importer's name) and the change request reference."""
     require(user, Action.EDIT_REGISTER, site.pk)
     proof = services.confirm_password(user, password, outcome="nothing was imported")
     if not reference.strip():
         raise ImportFailed([CellError(1, "", "Give the change request reference of this "
                                              "import.")])
+    return proof
+
+
+#: The background import reports its progress after every this many rows written.
+PROGRESS_CHUNK = 50
+
+
+class _Progress:
+    """Counts the file's rows as their operations are written and calls ``report(rows)``
+    after every :data:`PROGRESS_CHUNK` of them."""
+
+    def __init__(self, report):
+        self.report, self.done, self.reported = report, 0, 0
+
+    def add(self, rows: int):
+        self.done += rows
+        if self.report and self.done - self.reported >= PROGRESS_CHUNK:
+            self.reported = self.done
+            self.report(self.done)
+
+
+def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
+                 password, progress=None) -> ImportPlan:
+    """Check again, then write everything or nothing. Raises :class:`ImportFailed`, or a
+    ValidationError keyed ``password`` when the importer's password (asked again: the
+    test history is signed in their name) is missing or wrong. ``progress(rows)``, when
+    given, is called every :data:`PROGRESS_CHUNK` rows written (the background job)."""
+    proof = _confirmed(site, user, reference, password)
     reason = "spreadsheet import"
     affected: set[int] = set()
+    written = _Progress(progress)
     with transaction.atomic(), followup.suspended():
         plan = plan_import(site, rows)
         if plan.errors:
             raise ImportFailed(plan.errors)
         sifs = {}
         for number, sif, unit, tag, values, interval in plan.sif_ops:
+            written.add(1)
             try:
                 if sif is None:
                     sif = SafetyFunction(unit=unit, tag=tag, **values)
@@ -803,6 +837,7 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
             affected.add(sif.pk)
         for number, key, sub_name, sub_values, comp_tag, dtype, comp_values in \
                 plan.comp_ops:
+            written.add(1)
             sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
                                                               unit__code=key[0],
                                                               tag=key[1])
@@ -829,6 +864,7 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
             except ValidationError as exc:
                 raise ImportFailed(_row_error(number, exc, COMP_COLS)) from exc
         for number, key, at, kind, group in plan.test_ops:
+            written.add(len(group["results"]))
             sif = sifs.get(key) or SafetyFunction.objects.get(unit__site=site,
                                                               unit__code=key[0],
                                                               tag=key[1])
@@ -854,3 +890,117 @@ def apply_import(site: Site, rows: list[tuple[int, dict]], user, reference: str,
         refresh_plans(TestPlan.objects.filter(sif_id__in=affected))
         calculations().recompute_many(SafetyFunction.objects.filter(pk__in=affected), trigger="import")
     return plan
+
+
+def plan_counts(plan: ImportPlan) -> dict:
+    """What a written import did: rows created, changed and left unchanged."""
+    counts = {a: sum(1 for s in plan.steps if s.action == a)
+              for a in ("create", "change", "unchanged")}
+    return {**counts, "changes": plan.changes}
+
+
+def summary_text(name: str, changes: int) -> str:
+    """The one line that reports a written import, on either path."""
+    return f"Imported {name}: {changes} row(s) created or changed."
+
+
+# ---------------------------------------------------------------------------------------
+# Long imports: a background job
+# ---------------------------------------------------------------------------------------
+
+
+def runs_in_background(rows: list) -> bool:
+    """A file with more rows than IMPORT_BACKGROUND_ROWS is written by a background job."""
+    return len(rows) > settings.IMPORT_BACKGROUND_ROWS
+
+
+def queue_import(site: Site, name: str, data: bytes, user, reference: str,
+                 password) -> ImportJob:
+    """Confirm of a long import: the same checks as :func:`apply_import` (right, password,
+    reference) in this request, then the checked file is kept in an :class:`ImportJob`
+    and the job is queued once the request commits. A wrong password raises the same
+    ValidationError and creates no job."""
+    _confirmed(site, user, reference, password)
+    rows = read_table(name, data)
+    job = ImportJob.objects.create(site=site, user=user, reference=reference.strip(),
+                                   file_name=name, file_data=data, rows_total=len(rows))
+
+    def start():
+        from register.lead.tasks import apply_import_job
+
+        apply_import_job.delay(job.pk)
+
+    transaction.on_commit(start)
+    return job
+
+
+def _job_proof(job: ImportJob) -> services.Reauthenticated:
+    """The proof :func:`apply_import` signs the job's tests with. A job exists only
+    once :func:`queue_import` has checked its owner's password in the Confirm request,
+    so the run carries that proof on; it holds for the job's owner alone."""
+    return services.Reauthenticated(job.user_id)
+
+
+@contextmanager
+def _progress_writer(job_pk: int):
+    """``report(rows)`` writing the rows done to the job on a connection of its own, so
+    that the progress shows while the import's own transaction is still open (PostgreSQL;
+    elsewhere the job shows its progress at the end only)."""
+    if connection.vendor != "postgresql":
+        yield None
+        return
+    side = connections.create_connection(DEFAULT_DB_ALIAS)
+    sql = (f"UPDATE {side.ops.quote_name(ImportJob._meta.db_table)} "
+           "SET rows_done = LEAST(%s, rows_total) WHERE id = %s")
+
+    def report(rows: int):
+        try:
+            with side.cursor() as cur:
+                cur.execute(sql, [rows, job_pk])
+        except DatabaseError:  # progress is a courtesy: the import goes on
+            log.warning("could not record the progress of import job %s", job_pk,
+                        exc_info=True)
+
+    try:
+        yield report
+    finally:
+        side.close()
+
+
+def _finish(job: ImportJob, **fields) -> ImportJob:
+    fields["finished_at"] = timezone.now()
+    ImportJob.objects.filter(pk=job.pk).update(**fields)
+    job.refresh_from_db()
+    return job
+
+
+def run_import_job(job_id: int) -> ImportJob:
+    """Write a queued job's file with :func:`apply_import`, all or nothing, keeping its
+    progress and outcome on the row. A job not queued (already run) is left alone."""
+    if not ImportJob.objects.filter(pk=job_id, status=ImportJob.Status.QUEUED).update(
+            status=ImportJob.Status.RUNNING, started_at=timezone.now(),
+            message="Writing the rows"):
+        return ImportJob.objects.get(pk=job_id)
+    job = ImportJob.objects.select_related("site", "user").get(pk=job_id)
+    try:
+        rows = read_table(job.file_name, bytes(job.file_data))
+        with _progress_writer(job.pk) as report, transaction.atomic():
+            # One transaction around the writing and the recompute after it, as a
+            # request has: a failure anywhere leaves nothing written.
+            plan = apply_import(job.site, rows, job.user, job.reference, _job_proof(job),
+                                progress=report)
+    except ImportFailed as exc:
+        return _finish(job, status=ImportJob.Status.FAILED, rows_done=0,
+                       errors=[str(e) for e in exc.errors],
+                       message=f"{len(exc.errors)} error(s): nothing has been written.")
+    except (FileError, ValidationError, PermissionDenied) as exc:
+        text = " ".join(exc.messages) if isinstance(exc, ValidationError) else str(exc)
+        return _finish(job, status=ImportJob.Status.FAILED, rows_done=0,
+                       message=f"{text} Nothing has been written.")
+    except Exception as exc:
+        log.exception("import job %s failed", job.pk)
+        return _finish(job, status=ImportJob.Status.FAILED, rows_done=0,
+                       message=f"The import stopped: {exc}. Nothing has been written.")
+    return _finish(job, status=ImportJob.Status.DONE, rows_done=job.rows_total,
+                   result=plan_counts(plan), errors=[],
+                   message=summary_text(job.file_name, plan.changes))

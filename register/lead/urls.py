@@ -1,7 +1,7 @@
 from django.urls import path
 
 from register.lead import change as views_lead
-from register.lead import views
+from register.lead import import_jobs, views
 
 app_name = "register"
 
@@ -15,4 +15,7 @@ urlpatterns = [
     path("tests/<int:pk>/", views.test_detail, name="test_detail"),
     path("design/<str:kind>/<int:pk>/edit/", views_lead.edit_design, name="edit_design"),
     path("import/", views_lead.import_sheet, name="import"),
+    path("import/jobs/<int:pk>/", import_jobs.import_job, name="import_job"),
+    path("import/jobs/<int:pk>/status.json", import_jobs.import_job_status,
+         name="import_job_status"),
 ]

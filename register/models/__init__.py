@@ -38,6 +38,9 @@ from register.models.hazard import (
     InitiatingCause,
     ProtectionLayer,
 )
+from register.models.imports import (
+    ImportJob,
+)
 from register.models.notifications import (
     Notification,
 )
@@ -82,6 +85,7 @@ __all__ = [
     "EvidencePack",
     "Finding",
     "HazardScenario",
+    "ImportJob",
     "InitiatingCause",
     "MeasuredValue",
     "Membership",

@@ -1,0 +1,14 @@
+"""Celery task that writes a long spreadsheet import (``spreadsheet.run_import_job``)."""
+
+from __future__ import annotations
+
+from celery import shared_task
+
+
+@shared_task(name="register.import_job", acks_late=True)
+def apply_import_job(job_id: int) -> dict:
+    """Write the job's checked file; status and progress are kept on the ImportJob row."""
+    from register.lead.spreadsheet import run_import_job
+
+    job = run_import_job(job_id)
+    return {"job": job.pk, "status": job.status, "rows_done": job.rows_done}
