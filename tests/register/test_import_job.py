@@ -210,3 +210,49 @@ def test_progress_is_reported_every_chunk_of_rows(plant, monkeypatch):
     spreadsheet.apply_import(plant["west"], table, plant["lead_west"], "CR-900", f.PASSWORD,
                              progress=reported.append)
     assert reported == list(range(10, 5 * SIFS + 1, 10))
+
+
+@pytest.mark.django_db(transaction=True)
+def test_progress_shows_to_other_connections_while_the_job_runs(plant, monkeypatch):
+    """The rows done are written on a connection of their own: a reader (another thread,
+    another connection, as the status page is) sees them rise before the import commits."""
+    import threading
+
+    from django.db import connection
+
+    if connection.vendor != "postgresql":
+        pytest.skip("live progress needs PostgreSQL")
+    monkeypatch.setattr(spreadsheet, "PROGRESS_CHUNK", 10)
+    # Queued as queue_import leaves it (which, out of a transaction, would run it at once).
+    data = _csv(_rows(plant))
+    job = ImportJob.objects.create(site=plant["west"], user=plant["lead_west"],
+                                   reference="CR-900", file_name="long.csv", file_data=data,
+                                   rows_total=5 * SIFS)
+    seen: list[tuple[str, int, int]] = []
+    stop = threading.Event()
+
+    def watch():
+        try:
+            while not stop.is_set():
+                status, rows = ImportJob.objects.values_list("status", "rows_done").get(
+                    pk=job.pk)
+                sifs = SafetyFunction.objects.filter(unit__site=plant["west"]).count()
+                seen.append((status, rows, sifs))
+                stop.wait(0.02)
+        finally:
+            connection.close()
+
+    watcher = threading.Thread(target=watch)
+    watcher.start()
+    try:
+        done = spreadsheet.run_import_job(job.pk)
+    finally:
+        stop.set()
+        watcher.join()
+    assert (done.status, done.rows_done) == ("done", 5 * SIFS)
+    midway = {rows for status, rows, _ in seen if status == "running" and 0 < rows < 5 * SIFS}
+    assert midway, seen[-5:]
+    assert midway <= set(range(10, 5 * SIFS, 10))
+    # Meanwhile nothing of the import was visible to others: all or nothing.
+    assert {sifs for status, _, sifs in seen if status == "running"} == {0}
+    assert SafetyFunction.objects.filter(unit__site=plant["west"]).count() == SIFS
