@@ -31,6 +31,15 @@ def parse_number(text: str) -> float:
     return value
 
 
+def check_measured(value: float) -> None:
+    """A measured value inside the stored value's own bounds (``MeasuredValue.value``);
+    raises ValidationError saying which."""
+    try:
+        MeasuredValue._meta.get_field("value").run_validators(value)
+    except forms.ValidationError as exc:
+        raise forms.ValidationError([f"The value {m}" for m in exc.messages]) from None
+
+
 class HeaderForm(forms.Form):
     kind = forms.ChoiceField(label="Kind of test", widget=forms.RadioSelect)
     performed_at = forms.DateTimeField(
@@ -129,6 +138,11 @@ class ComponentForm(forms.Form):
             value = parse_number(str(raw))
         except ValueError:
             return None, rules.not_a_number(str(raw))
+        try:
+            check_measured(value)
+        except forms.ValidationError as exc:
+            return None, rules.Judgement(rules.NOT_JUDGED, " ".join(exc.messages),
+                                         "Not plausible")
         return value, rules.judge_measurement(step, value, sif=self.sif)
 
     def judgement(self, step: TestStep, phase: str) -> rules.Judgement | None:
@@ -223,8 +237,8 @@ class ComponentForm(forms.Form):
                 except ValueError:
                     self.add_error(name, rules.not_a_number(raw).reason)
                     continue
-                try:  # the stored value's own bounds (MeasuredValue.value)
-                    MeasuredValue._meta.get_field("value").run_validators(value)
+                try:
+                    check_measured(value)
                 except forms.ValidationError as exc:
                     self.add_error(name, exc.messages)
                     continue

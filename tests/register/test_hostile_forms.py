@@ -1,9 +1,9 @@
 """Hostile and careless input through the web forms that write.
 
 One table, like the API's (tests/api/test_hostile_input.py, whose values it reuses): each
-form that writes (test entry, bypass open and close, demand, deferral request and decision,
-design changes of a component, subsystem and plan, finding follow-up and closure) x each
-bad value (NaN, Infinity, 1e308, -1, year 1, year 9999, a NUL character, 200,000
+form that writes (test entry, correction of a signed test, bypass open and close, demand,
+deferral request and decision, design changes of a component, subsystem and plan, finding
+follow-up and closure) x each bad value (NaN, Infinity, 1e308, -1, year 1, year 9999, a NUL character, 200,000
 characters). Every case answers 400, or 200 with the form shown again, with a message
 beside the field; writes nothing (rows, history and chain counted before and after); and
 the pages that show the object still answer 200 afterwards.
@@ -77,6 +77,10 @@ FORMS = {
     "test entry": Form(
         lambda w: f"/field/plans/{w.own.plan.pk}/start/", _entry, TestRecord,
         {"number": "{measured}", "datetime": "performed_at", "text": "remarks"},
+        lambda w: ["/field/", f"/field/records/{w.own.signed.pk}/"]),
+    "correction": Form(
+        lambda w: f"/field/records/{w.own.signed.pk}/correct/",
+        lambda w: {"reason": "Wrong device tag recorded"}, TestRecord, {"text": "reason"},
         lambda w: ["/field/", f"/field/records/{w.own.signed.pk}/"]),
     "bypass": Form(
         lambda w: f"/operations/sifs/{w.second.pk}/bypass/",
@@ -280,3 +284,21 @@ def test_the_same_forms_with_good_values_are_taken(case, form):
     rows, history, chain = _counts(spec.model)
     assert rows == before[0] + spec.creates, form
     assert history > before[1] and chain > before[2], form
+
+
+@pytest.mark.parametrize("typed", [name for name, kind, _ in VALUES if kind == "number"]
+                         + ["1e400", "8O,2", "--1"])
+def test_live_judging_of_a_bad_number_answers_and_writes_nothing(case, typed):
+    """The entry page asks the server to judge each value as it is typed (nothing saved):
+    a value that is no number, or none a gauge could show, is not judged (no fail is
+    proposed for a typing error); -1 is a real reading, outside this trip criterion."""
+    sensor = case.own.components[0]
+    before = _counts(TestRecord)
+    response = _browser(case).get(
+        f"/field/plans/{case.own.plan.pk}/judge/{sensor.pk}/", {case.names["measured"]: typed})
+    assert response.status_code == 200, (typed, response.content[:300])
+    assert _counts(TestRecord) == before
+    shown = response.content.decode()
+    assert ("Outside criterion" in shown) == (typed == "-1"), (typed, shown[:600])
+    if typed == "1e308":
+        assert "The value must be between" in shown
