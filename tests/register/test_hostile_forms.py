@@ -302,3 +302,50 @@ def test_live_judging_of_a_bad_number_answers_and_writes_nothing(case, typed):
     assert ("Outside criterion" in shown) == (typed == "-1"), (typed, shown[:600])
     if typed == "1e308":
         assert "The value must be between" in shown
+
+
+def test_a_negative_measured_value_is_saved(case):
+    """-1 is a real reading (a gauge below zero): the one bad number the entry takes."""
+    spec = FORMS["test entry"]
+    before = TestRecord.objects.count()
+    sensor = f"c{case.own.components[0].pk}"
+    response = _browser(case).post(spec.url(case), {
+        **spec.body(case), case.names["measured"]: "-1", f"{sensor}-as_found": "fail",
+        f"{sensor}-failure_mode": "du", f"{sensor}-failure_description": "Reads -1 % at trip",
+        f"{sensor}-work_done": "Transmitter replaced and re-ranged"})
+    assert response.status_code == 302, _messages(response.content.decode())
+    assert TestRecord.objects.count() == before + 1
+    saved = TestRecord.objects.latest("pk")
+    assert [m.value for r in saved.results.all() for m in r.measurements.all()] == [-1.0]
+
+
+# Keys a careless or hostile client adds to a good form; each names what the register
+# decides itself (who asked, who authorised, the state of a record or a request).
+EXTRA = {
+    "bypass": (lambda w: {"authorised_by": str(w.users["verifier"].pk),
+                          "authorisation": "authorised", "requested_by":
+                          str(w.users["verifier"].pk)},
+               lambda w, b: (b.authorised_by_id, b.requested_by_id) == (
+                   None, w.users["lead"].pk)),
+    "test entry": (lambda w: {"status": "signed", "performed_by": str(w.users["verifier"].pk),
+                              "signed_by": str(w.users["verifier"].pk)},
+                   lambda w, r: (r.status, r.performed_by_id, r.signed_at) == (
+                       choices.RecordStatus.DRAFT, w.users["lead"].pk, None)),
+    "deferral request": (lambda w: {"status": "approved",
+                                    "decided_by": str(w.users["verifier"].pk)},
+                         lambda w, d: (d.status, d.decided_by_id, d.requested_by_id) == (
+                             choices.DeferralStatus.PENDING, None, w.users["lead"].pk)),
+    "demand": (lambda w: {"recorded_by": str(w.users["verifier"].pk), "spurious": "on"},
+               lambda w, d: not d.spurious),
+}
+
+
+@pytest.mark.parametrize("form", list(EXTRA))
+def test_keys_the_form_does_not_have_change_nothing(case, form):
+    spec = FORMS[form]
+    extra, kept = EXTRA[form]
+    before = spec.model.objects.count()
+    response = _browser(case).post(spec.url(case), {**spec.body(case), **extra(case)})
+    assert response.status_code == 302, _messages(response.content.decode())
+    assert spec.model.objects.count() == before + 1
+    assert kept(case, spec.model.objects.latest("pk")), form
