@@ -21,6 +21,7 @@ from register.changes import attribute
 from register.days import local_date
 from register.inbox import notices
 from register.models import Deferral, TestPlan
+from register.models.base import free_text_errors
 from register.permissions import Action, require
 from register.reauth import confirm_password
 from register.schedule import followup
@@ -163,12 +164,15 @@ def decide_deferral(deferral: Deferral, user, password=None, *, approve: bool, n
             effect = projected_effect(plan, deferral.proposed_on, as_of=moment)
         except ValidationError:
             effect = None  # a rejected date out of range has no projection to keep
+    deferral.decision_note = note
+    errors = free_text_errors(deferral, "decision_note")
+    if errors:
+        raise ValidationError(errors)
     if check_password:  # last, so that the person hears of any other problem first
         confirm_password(user, password, outcome="the deferral is not decided")
     deferral.status = Status.APPROVED if approve else Status.REJECTED
     deferral.decided_by = user
     deferral.decided_at = moment
-    deferral.decision_note = note
     deferral.projected_pfd_avg = (effect or {}).get("deferred")
     attribute(deferral, user, f"deferral {deferral.status}", at=at or decided_at).save()
     notices.deferral_decided(deferral)

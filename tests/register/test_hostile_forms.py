@@ -163,17 +163,8 @@ def _typed(form: Form, name: str, kind: str, value) -> str:
     return value
 
 
-# Refused or written as they stand, not by the forms or the models: marked strict, so
-# that each one fails loudly once it is put right.
-KNOWN = {
-    ("test entry", "NUL"): "entry.html renders the remarks box without its errors",
-    ("test entry", "200,000 characters"): "entry.html renders the remarks box without "
-                                          "its errors",
-    ("deferral decision", "NUL"): "decide_deferral saves the note without validating it "
-                                  "(the database refuses NUL: 500)",
-    ("deferral decision", "200,000 characters"): "decide_deferral saves the note without "
-                                                 "validating it",
-}
+# Cases once refused or written as they stand, put right since: none is expected to fail.
+KNOWN: dict[tuple[str, str], str] = {}
 
 
 def _marks(form: str, name: str) -> list:
