@@ -989,6 +989,10 @@ def run_import_job(job_id: int) -> ImportJob:
             # request has: a failure anywhere leaves nothing written.
             plan = apply_import(job.site, rows, job.user, job.reference, _job_proof(job),
                                 progress=report)
+            # the outcome commits with the rows: nobody sees them while the job runs
+            finished = _finish(job, status=ImportJob.Status.DONE, rows_done=job.rows_total,
+                               result=plan_counts(plan), errors=[],
+                               message=summary_text(job.file_name, plan.changes))
     except ImportFailed as exc:
         return _finish(job, status=ImportJob.Status.FAILED, rows_done=0,
                        errors=[str(e) for e in exc.errors],
@@ -1001,6 +1005,4 @@ def run_import_job(job_id: int) -> ImportJob:
         log.exception("import job %s failed", job.pk)
         return _finish(job, status=ImportJob.Status.FAILED, rows_done=0,
                        message=f"The import stopped: {exc}. Nothing has been written.")
-    return _finish(job, status=ImportJob.Status.DONE, rows_done=job.rows_total,
-                   result=plan_counts(plan), errors=[],
-                   message=summary_text(job.file_name, plan.changes))
+    return finished
