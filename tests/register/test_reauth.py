@@ -346,3 +346,24 @@ def test_a_plan_scope_naming_a_device_of_another_sif_is_refused(world):
     assert foreign.tag in exc.value.message_dict["components"][0]
     assert set(plan.components.values_list("pk", flat=True)) == set(
         TestPlan.objects.get(pk=plan.pk).components.values_list("pk", flat=True))
+
+
+def test_wrong_passwords_when_confirming_lock_confirming_like_sign_in(settings):
+    """Five wrong re-entered passwords in a row lock confirming for that person (so a
+    stolen session or token cannot guess the password by signing); the right one is then
+    refused too, a new password starts again, and other people are unaffected."""
+    from register.reauth import confirm_password
+
+    cache.clear()
+    site = f.site()
+    tech = f.user("guessed", site=site, role=choices.Role.TECHNICIAN)
+    other = f.user("other", site=site, role=choices.Role.TECHNICIAN)
+    for _ in range(settings.AXES_FAILURE_LIMIT):
+        with pytest.raises(ValidationError, match="not correct"):
+            confirm_password(tech, "not-the-password")
+    with pytest.raises(ValidationError, match="Too many wrong passwords"):
+        confirm_password(tech, f.PASSWORD)
+    assert confirm_password(other, f.PASSWORD).user_id == other.pk
+    tech.set_password("a-new-long-password-2027")
+    tech.save()
+    assert confirm_password(tech, "a-new-long-password-2027").user_id == tech.pk
