@@ -101,3 +101,19 @@ def full_test(sif, tech, when, fail_tag=None):
     rec = services.save_draft(user=tech, sif=sif, kind=choices.TestKind.FULL, results=results,
                               performed_at=when)
     return services.sign_record(rec, tech, PASSWORD)
+
+
+def trip_and_stroke_steps(plan):
+    """Two measured steps of a plan: the transmitters' trip value around a set point of
+    80 % (+/- 1) and the valves' closing time (at most 10 s)."""
+    from register.models import TestStep
+
+    trip = TestStep.objects.create(
+        plan=plan, position=1, instruction="Raise the level signal until trip.",
+        measured_quantity="Trip value", unit="%",
+        criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=80.0, tolerance=1.0)
+    closing = TestStep.objects.create(
+        plan=plan, position=2, instruction="Time the valve stroke.",
+        measured_quantity="Closing time", unit="s",
+        criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    return trip, closing

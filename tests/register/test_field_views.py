@@ -37,14 +37,7 @@ def plant():
     Component.objects.filter(pk=comps[0].pk).update(tag="LT-101A")
     Component.objects.filter(pk=comps[1].pk).update(tag="XV-101")
     plan = TestPlan.objects.get(sif=sif)
-    trip = TestStep.objects.create(
-        plan=plan, position=1, instruction="Raise the level signal until trip.",
-        measured_quantity="Trip value", unit="%",
-        criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=80.0, tolerance=1.0)
-    closing = TestStep.objects.create(
-        plan=plan, position=2, instruction="Time the valve stroke.",
-        measured_quantity="Closing time", unit="s",
-        criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    trip, closing = f.trip_and_stroke_steps(plan)
     other_unit = f.unit(f.site(), code="U9")
     other_sif = f.sif(other_unit, tag="SIF-900")
     people = {

@@ -21,7 +21,7 @@ from django.db import connection
 from django.urls import reverse
 
 from register import choices
-from register.models import Component, TestPlan, TestRecord, TestStep
+from register.models import Component, TestPlan, TestRecord
 from tests import factories as f
 
 #: The bounds reached for the non-chain queries of one save-and-sign POST (the page's
@@ -88,14 +88,7 @@ def _plant(voting: str):
     site = f.site()
     sif = f.sif(f.unit(site), voting=voting, final_voting=voting)
     plan = TestPlan.objects.get(sif=sif)
-    trip = TestStep.objects.create(
-        plan=plan, position=1, instruction="Raise the level signal until trip.",
-        measured_quantity="Trip value", unit="%",
-        criterion=choices.CriterionKind.AROUND_SETPOINT, target_value=80.0, tolerance=1.0)
-    closing = TestStep.objects.create(
-        plan=plan, position=2, instruction="Time the valve stroke.",
-        measured_quantity="Closing time", unit="s",
-        criterion=choices.CriterionKind.AT_MOST, limit=10.0)
+    trip, closing = f.trip_and_stroke_steps(plan)
     tech = f.user(site=site, role=choices.Role.TECHNICIAN)
     f.user(site=site, role=choices.Role.VERIFIER)
     f.user(site=site, role=choices.Role.LEAD)
