@@ -198,6 +198,8 @@ class EvidencePack(models.Model):
 
     class Meta:
         ordering = ["-created_at", "-id"]
+        # /api/evidence-packs/ and the auditor's list of packs in their default order
+        indexes = [models.Index(fields=["created_at", "id"], name="register_pack_list")]
         constraints = [
             models.CheckConstraint(condition=models.Q(period_end__gte=models.F("period_start")),
                                    name="register_pack_period_order"),

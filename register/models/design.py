@@ -126,6 +126,8 @@ class SafetyFunction(models.Model):
     class Meta:
         ordering = ["tag"]
         verbose_name = _("safety instrumented function")
+        # /api/sifs/ in its default order (by tag)
+        indexes = [models.Index(fields=["tag", "id"], name="register_sif_list")]
         constraints = [
             models.UniqueConstraint(fields=["unit", "tag"], name="register_sif_tag_per_unit"),
             models.CheckConstraint(
@@ -201,6 +203,9 @@ class Subsystem(models.Model):
 
     class Meta:
         ordering = ["sif", "position", "id"]
+        # /api/subsystems/ and the SIF page's subsystems in their default order
+        indexes = [models.Index(fields=["sif", "position", "id"],
+                                name="register_subsystem_list")]
         constraints = [_prob_check("beta"), _prob_check("beta_d"),
                        _nonneg_check("mttr_hours"), _nonneg_check("mrt_hours")]
 
@@ -262,6 +267,8 @@ class Component(models.Model):
 
     class Meta:
         ordering = ["subsystem", "tag"]
+        # /api/components/ and the devices of a SIF in their default order
+        indexes = [models.Index(fields=["subsystem", "tag"], name="register_component_list")]
         constraints = [
             _prob_check("proof_test_coverage"), _prob_check("partial_test_coverage"),
             _nonneg_check("lambda_du_per_hour"), _nonneg_check("lambda_dd_per_hour"),
@@ -376,6 +383,12 @@ class TestPlan(models.Model):
     class Meta:
         ordering = ["sif", "name"]
         constraints = [_prob_check("coverage")]
+        indexes = [
+            # /api/test-plans/ and the SIF page's plans in their default order
+            models.Index(fields=["sif", "name"], name="register_plan_list"),
+            # the technician's worklist /field/: next due first (ascending, empty last)
+            models.Index(fields=["next_due_on"], name="register_plan_worklist"),
+        ]
 
     def __str__(self):
         return f"{self.sif.tag}: {self.name}"
@@ -434,6 +447,8 @@ class TestStep(models.Model):
 
     class Meta:
         ordering = ["plan", "position"]
+        # the test entry form's steps of a plan, in order
+        indexes = [models.Index(fields=["plan", "position"], name="register_step_order")]
 
     def __str__(self):
         return f"{self.position}. {self.instruction[:60]}"

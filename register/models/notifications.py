@@ -48,7 +48,10 @@ class Notification(models.Model):
     class Meta:
         ordering = ["-created_at"]
         # /api/notifications/ and the inbox in their default order
-        indexes = [models.Index(fields=["created_at"], name="register_notice_list")]
+        indexes = [models.Index(fields=["created_at"], name="register_notice_list"),
+                   # one person's inbox /inbox/, newest first
+                   models.Index(fields=["recipient", "created_at", "id"],
+                                name="register_notice_inbox")]
         constraints = [
             models.UniqueConstraint(fields=["recipient", "subject_key"],
                                     name="register_notification_once"),

@@ -242,7 +242,10 @@ class Deferral(models.Model):
     class Meta:
         ordering = ["-requested_at"]
         # /api/deferrals/ and the deferral queue in their default order
-        indexes = [models.Index(fields=["requested_at"], name="register_deferral_list")]
+        indexes = [models.Index(fields=["requested_at"], name="register_deferral_list"),
+                   # the lead's deferral page: by status, newest request first
+                   models.Index(fields=["status", "requested_at"],
+                                name="register_deferral_queue")]
         constraints = [
             models.CheckConstraint(condition=Q(proposed_on__gt=models.F("due_on")),
                                    name="register_deferral_later_than_due"),
@@ -334,7 +337,9 @@ class Finding(models.Model):
                 condition=~Q(status="closed") | Q(retest__isnull=False) | ~Q(closure_note=""),
                 name="register_finding_closed_has_evidence"),
         ]
-        indexes = [models.Index(fields=["status", "found_at"])]
+        indexes = [models.Index(fields=["status", "found_at"]),
+                   # the findings page and a SIF's findings in their default order
+                   models.Index(fields=["found_at", "id"], name="register_finding_list")]
 
     def __str__(self):
         return f"{self.sif.tag} {self.component.tag} finding {self.found_at:%Y-%m-%d}"

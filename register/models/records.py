@@ -141,7 +141,10 @@ class TestRecord(ChecksReferencesInHand):
         ordering = ["-performed_at", "-id"]
         indexes = [models.Index(fields=["sif", "performed_at"]),
                    # /api/test-records/ and the record lists in their default order
-                   models.Index(fields=["performed_at", "id"], name="register_record_list")]
+                   models.Index(fields=["performed_at", "id"], name="register_record_list"),
+                   # the countersign queue /field/verify/: signed records, oldest first
+                   models.Index(fields=["signed_at", "id"], name="register_record_verify_queue",
+                                condition=Q(status="signed"))]
         constraints = [
             models.UniqueConstraint(fields=["key_site", "client_key"],
                                     condition=Q(client_key__isnull=False),
