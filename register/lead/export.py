@@ -205,11 +205,14 @@ def people_heading(f: SifFilter, count: int) -> list[str]:
     ]
 
 
-def people_csv(f: SifFilter) -> Iterator[bytes]:
-    return csv_stream(PEOPLE_HEADER, people_rows(f))
+def people_csv(f: SifFilter, wrap=None) -> Iterator[bytes]:
+    """The list as CSV chunks; ``wrap(rows)``, if given, sees the rows on their way."""
+    rows = people_rows(f)
+    return csv_stream(PEOPLE_HEADER, wrap(rows) if wrap else rows)
 
 
-def people_xlsx(f: SifFilter):
+def people_xlsx(f: SifFilter, wrap=None):
     count = f.qs.count()
-    return xlsx_file("SIF register", PEOPLE_HEADER, people_rows(f),
+    rows = people_rows(f)
+    return xlsx_file("SIF register", PEOPLE_HEADER, wrap(rows) if wrap else rows,
                      heading=people_heading(f, count), widths=PEOPLE_WIDTHS)

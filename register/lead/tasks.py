@@ -12,3 +12,12 @@ def apply_import_job(job_id: int) -> dict:
 
     job = run_import_job(job_id)
     return {"job": job.pk, "status": job.status, "rows_done": job.rows_done}
+
+
+@shared_task(name="register.export_job", acks_late=True)
+def write_export_job(job_id: int) -> dict:
+    """Write the job's export file; status and progress are kept on the ExportJob row."""
+    from register.lead.export_jobs import run_export_job
+
+    job = run_export_job(job_id)
+    return {"job": job.pk, "status": job.status, "sifs_done": job.sifs_done}

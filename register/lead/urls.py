@@ -1,7 +1,7 @@
 from django.urls import path
 
 from register.lead import change as views_lead
-from register.lead import import_jobs, views
+from register.lead import export_jobs, import_jobs, views
 
 app_name = "register"
 
@@ -10,6 +10,11 @@ urlpatterns = [
     path("sifs/", views.sif_list, name="sif_list"),
     path("sifs/export.<str:fmt>", views.sif_export, name="sif_export"),
     path("sifs/list.<str:fmt>", views.sif_list_export, name="sif_list_export"),
+    path("sifs/export-jobs/<int:pk>/", export_jobs.export_job, name="export_job"),
+    path("sifs/export-jobs/<int:pk>/status.json", export_jobs.export_job_status,
+         name="export_job_status"),
+    path("sifs/export-jobs/<int:pk>/download/", export_jobs.export_job_download,
+         name="export_job_download"),
     path("sifs/<int:pk>/", views.sif_detail, name="sif_detail"),
     path("sifs/<int:pk>/chart/<str:which>.svg", views.sif_chart, name="sif_chart"),
     path("tests/<int:pk>/", views.test_detail, name="test_detail"),

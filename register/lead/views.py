@@ -230,10 +230,11 @@ def _export_filter(request, fmt):
     unknown format, 400 for filter values the form refuses (nothing is exported)."""
     if fmt not in ("csv", "xlsx"):
         raise Http404
+    from register.lead.export_jobs import export_filter
+
     if not can_somewhere(request.user, Action.EXPORT):
         require(request.user, Action.EXPORT, -1)
-    f = SifFilter(request.GET, request=request, queryset=SafetyFunction.objects.restrict(
-        request.user, Action.EXPORT))
+    f = export_filter(request.user, request.GET)
     if not f.form.is_valid():
         return f, HttpResponseBadRequest(
             "The list's filters are not valid: " + f.form.errors.as_text(),
@@ -242,8 +243,9 @@ def _export_filter(request, fmt):
 
 
 def _file_response(fmt, name, csv_chunks=None, xlsx=None):
-    stamp = timezone.localdate().isoformat()
-    filename = f"{name}-{stamp}.{fmt}"
+    from register.lead.export_jobs import file_name
+
+    filename = file_name(name, fmt, timezone.localdate())
     if fmt == "csv":
         resp = StreamingHttpResponse(csv_chunks(), content_type=export.CSV_TYPE)
         resp["Content-Disposition"] = f'attachment; filename="{filename}"'
@@ -252,27 +254,31 @@ def _file_response(fmt, name, csv_chunks=None, xlsx=None):
                         content_type=export.XLSX_TYPE)
 
 
-@login_required
-def sif_export(request, fmt):
-    """The register table of the listed SIFs in the import's format (round trip)."""
-    from register.lead import spreadsheet
+def _export(request, fmt, kind):
+    """An export of the list's SIFs: streamed, or above EXPORT_BACKGROUND_SIFS a page that
+    offers a background job (its POST starts one: ``register.lead.export_jobs``)."""
+    from register.lead import export_jobs
 
     f, refused = _export_filter(request, fmt)
     if refused:
         return refused
-    rows = spreadsheet.iter_export_rows(f.qs)
-    return _file_response(fmt, "sif-register", lambda: spreadsheet.csv_chunks(rows),
-                          lambda: spreadsheet.xlsx_file(rows))
+    if request.method == "POST":
+        return export_jobs.start(request, kind, fmt)
+    if export_jobs.in_background(f):
+        return export_jobs.offer(request, f, kind, fmt)
+    return _file_response(fmt, kind, *export_jobs.writers(kind, f))
+
+
+@login_required
+def sif_export(request, fmt):
+    """The register table of the listed SIFs in the import's format (round trip)."""
+    return _export(request, fmt, "register")
 
 
 @login_required
 def sif_list_export(request, fmt):
     """The register list as the page shows it, for people to read (same filter, order)."""
-    f, refused = _export_filter(request, fmt)
-    if refused:
-        return refused
-    return _file_response(fmt, "sif-list", lambda: export.people_csv(f),
-                          lambda: export.people_xlsx(f))
+    return _export(request, fmt, "list")
 
 
 # ---------------------------------------------------------------------------------------

@@ -32,6 +32,9 @@ from register.models.design import (
     TestStep,
     not_decommissioned,
 )
+from register.models.exports import (
+    ExportJob,
+)
 from register.models.hazard import (
     ConditionalModifier,
     HazardScenario,
@@ -83,6 +86,7 @@ __all__ = [
     "Demand",
     "DeviceType",
     "EvidencePack",
+    "ExportJob",
     "Finding",
     "HazardScenario",
     "ImportJob",
