@@ -142,6 +142,9 @@ IMPORT_MAX_BYTES = env_int("IMPORT_MAX_BYTES", 5 * 1024 * 1024)
 IMPORT_MAX_ROWS = env_int("IMPORT_MAX_ROWS", 20_000)
 # More rows than this: Confirm queues the import as a background job with a progress page.
 IMPORT_BACKGROUND_ROWS = env_int("IMPORT_BACKGROUND_ROWS", 200)
+# Register exports of more SIFs than this are written by a background job with a progress
+# page and offered for download to the person who asked (README, "Exports").
+EXPORT_BACKGROUND_SIFS = env_int("EXPORT_BACKGROUND_SIFS", 2000)
 
 EMAIL_BACKEND = env_str("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
 DEFAULT_FROM_EMAIL = env_str("DEFAULT_FROM_EMAIL", "sif-ledger@localhost")
