@@ -7,7 +7,9 @@ Generates the plant once (``make_scale_plant``), refreshes the plans' due dates 
 one synthetic assessment per SIF (bulk insert, mixed verdicts), then requests each export
 through the Django test client as a superuser, consuming the whole (streamed) body, and
 reports the time, the SQL queries and the size. Beside each: a bare psycopg read of the
-same SQL the export ran (fetch all rows, nothing else), and the ratio of the two.
+same SQL the export ran (fetch all rows, nothing else), and the ratio of the two, and the
+process's peak resident memory by the end of the export (run one export per process to read it for each).
+Set EXPORT_BACKGROUND_SIFS above the plant's size to time the direct exports.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from __future__ import annotations
 import argparse
 import os
 import re
+import resource
 import statistics
 import sys
 import time
@@ -76,6 +79,8 @@ def main():
     parser.add_argument("--years", type=int, default=20)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--urls", nargs="*", default=URLS)
+    parser.add_argument("--code", default=None,
+                        help="site code of an existing plant (default xscale<sifs>)")
     args = parser.parse_args()
     import django
 
@@ -88,7 +93,7 @@ def main():
 
     setup_test_environment()
     call_command("migrate", verbosity=0)
-    code = f"xscale{args.sifs}"
+    code = args.code or f"xscale{args.sifs}"
     t = time.perf_counter()
     _prepare(code, args.sifs, args.years)
     print(f"prepare: {time.perf_counter() - t:.1f} s")
@@ -96,7 +101,8 @@ def main():
         username="bench-exports-admin", defaults={"is_superuser": True, "is_staff": True})
     client = Client()
     client.force_login(admin)
-    print(f"{'export':46} {'median s':>9} {'queries':>8} {'MB':>6} {'bare s':>7} {'ratio':>6}")
+    print(f"{'export':46} {'median s':>9} {'queries':>8} {'MB':>6} {'bare s':>7} {'ratio':>6} "
+          f"{'peak RSS MB':>11}")
     for url in args.urls:
         full = url
         times, size, sqls = [], 0, []
@@ -105,17 +111,20 @@ def main():
                 start = time.perf_counter()
                 resp = client.get(full)
                 assert resp.status_code == 200, (url, resp.status_code)
-                body = b"".join(resp.streaming_content) if resp.streaming else resp.content
+                # consumed chunk by chunk, not kept: the peak memory is the export's own
+                size = sum(len(c) for c in resp.streaming_content) if resp.streaming \
+                    else len(resp.content)
                 times.append(time.perf_counter() - start)
-            size = len(body)
-            # a server-side cursor's statement is "DECLARE ... CURSOR WITH HOLD FOR SELECT"
-            sqls = [re.sub(r"^DECLARE .*? CURSOR WITH HOLD FOR ", "", q["sql"])
+            # a server-side cursor's statement is "DECLARE ... CURSOR [WITH[OUT] HOLD] FOR SELECT"
+            sqls = [re.sub(r"^DECLARE .*? CURSOR (?:WITH(?:OUT)? HOLD )?FOR ", "", q["sql"])
                     for q in ctx.captured_queries]
             sqls = [q for q in sqls if q.lstrip().upper().startswith("SELECT")]
+            peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
         bare = min(_bare(sqls) for _ in range(args.repeat))
         med = statistics.median(times)
         print(f"{url:46} {med:9.2f} {len(ctx.captured_queries):8d} {size / 1e6:6.1f} "
-              f"{bare:7.2f} {med / bare if bare else 0:6.1f}")
+              f"{bare:7.2f} {med / bare if bare else 0:6.1f} "
+              f"{peak:11.0f}")
 
 
 if __name__ == "__main__":

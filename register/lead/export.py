@@ -5,7 +5,7 @@
   in front). Every export calls it, the evidence pack's CSV files included; numbers, dates
   and empty cells are left as they are.
 * :func:`csv_stream` / :func:`xlsx_file`: a header and rows into CSV chunks (for a
-  streaming response) or into a workbook written in openpyxl's write-only mode.
+  streaming response) or into a workbook whose sheet is written row by row into the zip.
 * :func:`people_rows`: the register list exactly as ``/sifs/`` shows it (the same
   ``SifFilter``, the same order), one row per SIF, read as plain values in one query
   whatever the number of SIFs.
@@ -15,7 +15,9 @@ from __future__ import annotations
 
 import csv
 import datetime as dt
+import html
 import tempfile
+import zipfile
 from collections.abc import Iterable, Iterator
 from types import SimpleNamespace
 
@@ -24,10 +26,7 @@ from django.db.models.functions import Coalesce
 from django.template.loader import render_to_string
 from django.utils import timezone
 from django.utils.html import strip_tags
-from openpyxl import Workbook
-from openpyxl.cell import WriteOnlyCell
 from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
-from openpyxl.styles import Font
 from openpyxl.utils import get_column_letter
 
 from register import choices, presenters
@@ -83,32 +82,128 @@ def _cell_value(value):
     return value
 
 
+_BOLD, _DATE = 1, 2  # the styles the workbook defines (besides the default, 0)
+_XML = '<?xml version="1.0" encoding="UTF-8" standalone="yes"?>\n'
+_MAIN = "http://schemas.openxmlformats.org/spreadsheetml/2006/main"
+_REL = "http://schemas.openxmlformats.org/officeDocument/2006/relationships"
+_PARTS = {
+    "[Content_Types].xml": (
+        '<Types xmlns="http://schemas.openxmlformats.org/package/2006/content-types">'
+        '<Default Extension="rels" ContentType="application/vnd.openxmlformats-package.'
+        'relationships+xml"/><Default Extension="xml" ContentType="application/xml"/>'
+        '<Override PartName="/xl/workbook.xml" ContentType="application/vnd.openxmlformats-'
+        'officedocument.spreadsheetml.sheet.main+xml"/><Override PartName="/xl/worksheets/'
+        'sheet1.xml" ContentType="application/vnd.openxmlformats-officedocument.'
+        'spreadsheetml.worksheet+xml"/><Override PartName="/xl/styles.xml" ContentType='
+        '"application/vnd.openxmlformats-officedocument.spreadsheetml.styles+xml"/></Types>'),
+    "_rels/.rels": (
+        '<Relationships xmlns="http://schemas.openxmlformats.org/package/2006/relationships">'
+        f'<Relationship Id="rId1" Type="{_REL}/officeDocument" Target="xl/workbook.xml"/>'
+        '</Relationships>'),
+    "xl/_rels/workbook.xml.rels": (
+        '<Relationships xmlns="http://schemas.openxmlformats.org/package/2006/relationships">'
+        f'<Relationship Id="rId1" Type="{_REL}/worksheet" Target="worksheets/sheet1.xml"/>'
+        f'<Relationship Id="rId2" Type="{_REL}/styles" Target="styles.xml"/>'
+        '</Relationships>'),
+    "xl/styles.xml": (
+        f'<styleSheet xmlns="{_MAIN}"><numFmts count="1"><numFmt numFmtId="164" '
+        'formatCode="yyyy-mm-dd"/></numFmts><fonts count="2"><font><sz val="11"/>'
+        '<name val="Calibri"/></font><font><b/><sz val="11"/><name val="Calibri"/></font>'
+        '</fonts><fills count="2"><fill><patternFill patternType="none"/></fill><fill>'
+        '<patternFill patternType="gray125"/></fill></fills><borders count="1"><border>'
+        '<left/><right/><top/><bottom/><diagonal/></border></borders><cellStyleXfs count="1">'
+        '<xf numFmtId="0" fontId="0" fillId="0" borderId="0"/></cellStyleXfs><cellXfs '
+        'count="3"><xf numFmtId="0" fontId="0" fillId="0" borderId="0" xfId="0"/><xf '
+        'numFmtId="0" fontId="1" fillId="0" borderId="0" xfId="0" applyFont="1"/><xf '
+        'numFmtId="164" fontId="0" fillId="0" borderId="0" xfId="0" applyNumberFormat="1"/>'
+        '</cellXfs><cellStyles count="1"><cellStyle name="Normal" xfId="0" builtinId="0"/>'
+        '</cellStyles></styleSheet>'),
+}
+_EPOCH = dt.date(1899, 12, 30)  # day 0 of a workbook's date serial numbers (1900 system)
+_INFINITE = (float("inf"), float("-inf"))
+#: Distinct texts whose cell XML a workbook keeps while writing (then it starts again).
+TEXTS_KEPT = 20_000
+_ESCAPES = str.maketrans({"&": "&amp;", "<": "&lt;", ">": "&gt;"})
+
+
+def _xml_cell(ref: str, value, style: int = 0) -> str:
+    """One cell of a sheet's XML: text inline (neutralised, characters a workbook cannot
+    hold removed), numbers, truth values and dates; '' for an empty cell."""
+    value = _cell_value(value)
+    s = f' s="{style}"' if style else ""
+    if value is None or value == "":
+        return ""
+    if isinstance(value, str):
+        text = value.translate(_ESCAPES)
+        space = ' xml:space="preserve"' if text[:1].isspace() or text[-1:].isspace() else ""
+        return f'<c r="{ref}" t="inlineStr"{s}><is><t{space}>{text}</t></is></c>'
+    if isinstance(value, bool):
+        return f'<c r="{ref}" t="b"{s}><v>{int(value)}</v></c>'
+    if isinstance(value, int | float):
+        return "" if value != value else f'<c r="{ref}"{s}><v>{value!r}</v></c>'
+    if isinstance(value, dt.datetime):
+        value = value.date() if value.tzinfo is None else value.astimezone(dt.UTC).date()
+    if isinstance(value, dt.date):
+        return f'<c r="{ref}" s="{_DATE}"><v>{(value - _EPOCH).days}</v></c>'
+    return _xml_cell(ref, str(value), style)
+
+
 def xlsx_file(title: str, header: list[str], rows: Iterable[Iterable], *,
               heading: list[str] = (), widths: list[int] | None = None):
-    """A workbook of one sheet in write-only mode (rows go to disk as they come) in an
-    open temporary file, at its start: the ``heading`` lines, a blank row, the header
-    row (bold), then the rows."""
-    wb = Workbook(write_only=True)
-    ws = wb.create_sheet(title)
-    for i, width in enumerate(widths or [max(12, len(h) + 2) for h in header], start=1):
-        ws.column_dimensions[get_column_letter(i)].width = width
-    bold = Font(bold=True)
-    for line in heading:
-        ws.append([_cell_value(line)])
-    if heading:
-        ws.append([])
+    """A workbook of one sheet, its XML written row by row straight into the zip (nothing
+    but the current rows in memory), in an open temporary file at its start: the
+    ``heading`` lines, a blank row, the header row (bold, frozen), then the rows. Text is
+    written inline (no table of shared strings that would grow with the file)."""
+    letters = [get_column_letter(i) for i in range(1, len(header) + 1)]
+    widths = widths or [max(12, len(h) + 2) for h in header]
     row_of_header = len(heading) + (1 if heading else 0) + 1
-    ws.freeze_panes = f"A{row_of_header + 1}"
-    head = []
-    for h in header:
-        cell = WriteOnlyCell(ws, value=_cell_value(h))
-        cell.font = bold
-        head.append(cell)
-    ws.append(head)
-    for row in rows:
-        ws.append([_cell_value(v) for v in row])
     out = tempfile.TemporaryFile()  # noqa: SIM115 (handed open to the response)
-    wb.save(out)
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED, compresslevel=3) as archive:
+        for name, xml in _PARTS.items():
+            archive.writestr(name, _XML + xml)
+        archive.writestr("xl/workbook.xml", _XML + (
+            f'<workbook xmlns="{_MAIN}" xmlns:r="{_REL}"><sheets><sheet name='
+            f'"{html.escape(title[:31])}" sheetId="1" r:id="rId1"/></sheets></workbook>'))
+        with archive.open("xl/worksheets/sheet1.xml", "w", force_zip64=True) as sheet:
+            cols = "".join(f'<col min="{i}" max="{i}" width="{w}" customWidth="1"/>'
+                           for i, w in enumerate(widths, start=1))
+            sheet.write((
+                f'{_XML}<worksheet xmlns="{_MAIN}"><sheetViews><sheetView workbookViewId='
+                f'"0"><pane ySplit="{row_of_header}" topLeftCell="A{row_of_header + 1}" '
+                f'activePane="bottomLeft" state="frozen"/></sheetView></sheetViews>'
+                f'<cols>{cols}</cols><sheetData>').encode())
+            lines = [f'<row r="{n}">{_xml_cell(f"A{n}", line)}</row>'
+                     for n, line in enumerate(heading, start=1)]
+            n = row_of_header
+            lines.append(f'<row r="{n}">' + "".join(
+                _xml_cell(f"{c}{n}", h, _BOLD) for c, h in zip(letters, header)) + "</row>")
+            texts: dict[str, str] = {}  # a text's inline XML, for the texts that repeat
+            for n, row in enumerate(rows, start=row_of_header + 1):
+                parts = [f'<row r="{n}">']
+                for c, v in zip(letters, row):
+                    if v is None:
+                        continue
+                    kind = type(v)
+                    if kind is str:
+                        inline = texts.get(v)
+                        if inline is None:
+                            if len(texts) > TEXTS_KEPT:
+                                texts.clear()  # memory stays bounded, whatever the file
+                            cell = _xml_cell("", v)
+                            inline = texts[v] = cell[cell.find(">") + 1:-4] if cell else ""
+                        if inline:
+                            parts.append(f'<c r="{c}{n}" t="inlineStr">{inline}</c>')
+                    elif kind is float or kind is int:
+                        parts.append(_xml_cell(f"{c}{n}", v) if v != v or v in _INFINITE
+                                     else f'<c r="{c}{n}"><v>{v!r}</v></c>')
+                    else:
+                        parts.append(_xml_cell(f"{c}{n}", v))
+                parts.append("</row>")
+                lines.append("".join(parts))
+                if len(lines) >= 500:
+                    sheet.write("".join(lines).encode())
+                    lines = []
+            sheet.write(("".join(lines) + "</sheetData></worksheet>").encode())
     out.seek(0)
     return out
 

@@ -25,7 +25,7 @@ from django.utils import timezone
 from openpyxl import load_workbook
 
 from register import choices
-from register.lead import export_jobs
+from register.lead import export, export_jobs
 from register.models import ExportJob, Membership
 from tests import factories as f
 from tests.conftest import need
@@ -274,3 +274,20 @@ def test_a_job_whose_owner_left_fails_without_a_file(world, limit,
     assert export_jobs.job_file(job) is None and not job.result_path
     # A job is run once: running it again leaves it as it is.
     assert export_jobs.run_export_job(job.pk).status == ExportJob.Status.FAILED
+
+
+def test_the_workbook_writer_keeps_each_kind_of_value():
+    """The sheet written row by row reads back as written: text (escaped, blanks kept,
+    control characters removed, formulas neutralised), numbers, truth values, dates."""
+    day = dt.date(2026, 3, 1)
+    rows = [[" a & <b> ", 1.5e-3, 7, True, day, None, "=1+1", "x\x01y", ""]] * 3
+    header = [f"h{i}" for i in range(9)]
+    with export.xlsx_file("Sheet & more", header, rows, heading=["Line one"]) as out:
+        ws = load_workbook(io.BytesIO(out.read())).worksheets[0]
+    assert ws.title == "Sheet & more" and ws.freeze_panes == "A4"
+    got = [list(r) for r in ws.iter_rows(values_only=True)]
+    assert got[0][0] == "Line one" and got[2] == header and ws["A3"].font.b
+    for row in got[3:]:
+        assert row[:5] == [" a & <b> ", 1.5e-3, 7, True, dt.datetime(2026, 3, 1)]
+        assert row[5:] == [None, "'=1+1", "xy", None]
+    assert len(got) == 6
