@@ -64,8 +64,10 @@ def csv_stream(header: list[str], rows: Iterable[Iterable], *, bom: bool = True
     about a hundred rows, every text cell neutralised."""
     writer = csv.writer(_Line(), lineterminator="\n")
     lines = [("\ufeff" if bom else "") + writer.writerow([neutralise(h) for h in header])]
+    starts = frozenset(FORMULA_STARTS)  # neutralise's rule, inlined: it runs per cell
     for row in rows:
-        lines.append(writer.writerow([neutralise(v) for v in row]))
+        lines.append(writer.writerow([
+            "'" + v if v.__class__ is str and v and v[0] in starts else v for v in row]))
         if len(lines) >= 100:
             yield "".join(lines).encode("utf-8")
             lines = []
