@@ -79,10 +79,10 @@ def writers(kind: str, f: SifFilter, report=None) -> tuple[Callable, Callable]:
         from register.lead import spreadsheet
 
         def rows():
-            return _counted(spreadsheet.iter_export_rows(f.qs), report,
-                            lambda row: row["record"] == "sif")
+            return _counted(spreadsheet.iter_export_table(f.qs), report,
+                            lambda row: row[0] == "sif")
 
-        return (lambda: spreadsheet.csv_chunks(rows()), lambda: spreadsheet.xlsx_file(rows()))
+        return (lambda: spreadsheet.table_csv(rows()), lambda: spreadsheet.table_xlsx(rows()))
     if kind == ExportJob.Kind.LIST:
         return (lambda: export.people_csv(f, lambda rows: _counted(rows, report)),
                 lambda: export.people_xlsx(f, lambda rows: _counted(rows, report)))

@@ -104,8 +104,9 @@ def _peekable(rows):
     return [next(it, None), it]
 
 
-def iter_export_rows(sif_queryset) -> Iterator[dict]:
-    """The rows for these SIFs: each SIF, its components, its current signed tests.
+def iter_export_table(sif_queryset) -> Iterator[list]:
+    """The rows for these SIFs, each a list in the order of :data:`COLUMNS` ("" for an
+    empty cell): each SIF, its components, its current signed tests.
 
     Three queries whatever the number of SIFs, read as plain values in chunks (a
     server-side cursor on PostgreSQL) and merged by SIF: no model object is built."""
@@ -132,29 +133,49 @@ def iter_export_rows(sif_queryset) -> Iterator[dict]:
                             "failure_description", "work_done", "record__remarks"))
     comp_stream = _peekable((r[0], r) for r in comps.iterator(chunk_size=writers.CHUNK))
     test_stream = _peekable((r[0], r) for r in results.iterator(chunk_size=writers.CHUNK))
-    blank = dict.fromkeys(COLUMNS, "")
+    blank = [""] * len(COLUMNS)
+    col = {name: i for i, name in enumerate(COLUMNS)}
+    unit_, tag_ = col["unit"], col["sif_tag"]
+    sif_cols = [col[c] for c in ("sif_name", "safe_state", "demand_mode", "target_sil",
+                                 "target_pfd_avg", "life_stage", "in_service_on",
+                                 "proof_test_interval_months")]
+    comp_cols = [col[c] for c in ("subsystem", "role", "voting", "beta", "beta_d",
+                                  "component_tag", "device_type", "in_service_on",
+                                  "lambda_du", "lambda_dd", "lambda_s", "rate_unit",
+                                  "proof_test_coverage", "partial_test_coverage")]
+    test_cols = [col[c] for c in ("component_tag", "test_performed_at", "test_kind",
+                                  "as_found", "as_left", "failure_mode",
+                                  "failure_description", "work_done", "remarks")]
+
+    def row(kind, unit, tag, columns, values):
+        out = blank.copy()
+        out[0], out[unit_], out[tag_] = kind, unit, tag
+        for i, value in zip(columns, values):
+            out[i] = value
+        return out
+
+    utc = dt.UTC
     for (pk, unit, tag, name, safe_state, mode, sil, target, stage, in_service,
          months) in sifs.iterator(chunk_size=writers.CHUNK):
-        base = {"unit": unit, "sif_tag": tag}
-        yield {**blank, **base, "record": "sif", "sif_name": name, "safe_state": safe_state,
-               "demand_mode": mode, "target_sil": sil, "target_pfd_avg": _num(target),
-               "life_stage": stage, "in_service_on": _iso(in_service),
-               "proof_test_interval_months": _num(months)}
+        yield row("sif", unit, tag, sif_cols, (
+            name, safe_state, mode, sil, _num(target), stage, _iso(in_service),
+            _num(months)))
         for (_, sub, role, voting, beta, beta_d, comp_tag, dtype, since, du, dd, ls, ptc,
              partial) in _same_sif(comp_stream, pk):
-            yield {**blank, **base, "record": "component", "subsystem": sub, "role": role,
-                   "voting": voting, "beta": beta, "beta_d": beta_d,
-                   "component_tag": comp_tag, "device_type": dtype,
-                   "in_service_on": _iso(since), "lambda_du": _num(du),
-                   "lambda_dd": _num(dd), "lambda_s": _num(ls), "rate_unit": "per hour",
-                   "proof_test_coverage": ptc, "partial_test_coverage": partial}
+            yield row("component", unit, tag, comp_cols, (
+                sub, role, voting, beta, beta_d, comp_tag, dtype, _iso(since), _num(du),
+                _num(dd), _num(ls), "per hour", ptc, partial))
         for (_, comp_tag, at, kind, found, left, mode_, description, work,
              remarks) in _same_sif(test_stream, pk):
-            yield {**blank, **base, "record": "test", "component_tag": comp_tag,
-                   "test_performed_at": at.astimezone(dt.UTC).isoformat(), "test_kind": kind,
-                   "as_found": found, "as_left": left, "failure_mode": mode_,
-                   "failure_description": description, "work_done": work,
-                   "remarks": remarks}
+            yield row("test", unit, tag, test_cols, (
+                comp_tag, at.astimezone(utc).isoformat(), kind, found, left, mode_,
+                description, work, remarks))
+
+
+def iter_export_rows(sif_queryset) -> Iterator[dict]:
+    """:func:`iter_export_table`'s rows as {column: value}."""
+    for values in iter_export_table(sif_queryset):
+        yield dict(zip(COLUMNS, values))
 
 
 def export_rows(sif_queryset) -> list[dict]:
@@ -169,12 +190,22 @@ def _cells(rows: Iterable[dict], empty=""):
 
 def csv_chunks(rows: Iterable[dict]) -> Iterator[bytes]:
     """The table as CSV (UTF-8 with a byte-order mark), in chunks for streaming."""
-    return writers.csv_stream(COLUMNS, _cells(rows))
+    return table_csv(_cells(rows))
 
 
 def xlsx_file(rows: Iterable[dict]):
     """The table as a workbook (sheet ``Register``) in an open temporary file."""
-    return writers.xlsx_file(SHEET_NAME, COLUMNS, _cells(rows, None))
+    return table_xlsx(_cells(rows, None))
+
+
+def table_csv(lists: Iterable[list]) -> Iterator[bytes]:
+    """:func:`csv_chunks` of rows given as lists (:func:`iter_export_table`)."""
+    return writers.csv_stream(COLUMNS, lists)
+
+
+def table_xlsx(lists: Iterable[list]):
+    """:func:`xlsx_file` of rows given as lists (an empty text is an empty cell)."""
+    return writers.xlsx_file(SHEET_NAME, COLUMNS, lists)
 
 
 def to_csv(rows: Iterable[dict]) -> bytes:
