@@ -179,27 +179,27 @@ def xlsx_file(title: str, header: list[str], rows: Iterable[Iterable], *,
             n = row_of_header
             lines.append(f'<row r="{n}">' + "".join(
                 _xml_cell(f"{c}{n}", h, _BOLD) for c, h in zip(letters, header)) + "</row>")
-            texts: dict[str, str] = {}  # a text's inline XML, for the texts that repeat
+            # Cells of the rows below the header carry no reference (they follow each
+            # other; an empty one is <c/>), so a repeated text's whole cell is kept.
+            texts: dict[str, str] = {"": "<c/>"}
             for n, row in enumerate(rows, start=row_of_header + 1):
                 parts = [f'<row r="{n}">']
-                for c, v in zip(letters, row):
-                    if v is None:
-                        continue
+                for v in row:
                     kind = type(v)
                     if kind is str:
-                        inline = texts.get(v)
-                        if inline is None:
+                        cell = texts.get(v)
+                        if cell is None:
                             if len(texts) > TEXTS_KEPT:
                                 texts.clear()  # memory stays bounded, whatever the file
-                            cell = _xml_cell("", v)
-                            inline = texts[v] = cell[cell.find(">") + 1:-4] if cell else ""
-                        if inline:
-                            parts.append(f'<c r="{c}{n}" t="inlineStr">{inline}</c>')
-                    elif kind is float or kind is int:
-                        parts.append(_xml_cell(f"{c}{n}", v) if v != v or v in _INFINITE
-                                     else f'<c r="{c}{n}"><v>{v!r}</v></c>')
+                                texts[""] = "<c/>"
+                            cell = texts[v] = _xml_cell("", v).replace(' r=""', "", 1) or "<c/>"
+                        parts.append(cell)
+                    elif v is None:
+                        parts.append("<c/>")
+                    elif (kind is float or kind is int) and v == v and v not in _INFINITE:
+                        parts.append(f"<c><v>{v!r}</v></c>")
                     else:
-                        parts.append(_xml_cell(f"{c}{n}", v))
+                        parts.append(_xml_cell("", v).replace(' r=""', "", 1) or "<c/>")
                 parts.append("</row>")
                 lines.append("".join(parts))
                 if len(lines) >= 500:

@@ -131,8 +131,9 @@ def iter_export_table(sif_queryset) -> Iterator[list]:
                .values_list("record__sif_id", "component__tag", "record__performed_at",
                             "record__kind", "as_found", "as_left", "failure_mode",
                             "failure_description", "work_done", "record__remarks"))
-    comp_stream = _peekable((r[0], r) for r in comps.iterator(chunk_size=writers.CHUNK))
-    test_stream = _peekable((r[0], r) for r in results.iterator(chunk_size=writers.CHUNK))
+    chunk = 5 * writers.CHUNK  # short rows: fewer round trips, still a bounded memory
+    comp_stream = _peekable((r[0], r) for r in comps.iterator(chunk_size=chunk))
+    test_stream = _peekable((r[0], r) for r in results.iterator(chunk_size=chunk))
     blank = [""] * len(COLUMNS)
     col = {name: i for i, name in enumerate(COLUMNS)}
     unit_, tag_ = col["unit"], col["sif_tag"]
@@ -154,7 +155,7 @@ def iter_export_table(sif_queryset) -> Iterator[list]:
             out[i] = value
         return out
 
-    utc = dt.UTC
+    utc, last_at, last_iso = dt.UTC, None, ""
     for (pk, unit, tag, name, safe_state, mode, sil, target, stage, in_service,
          months) in sifs.iterator(chunk_size=writers.CHUNK):
         yield row("sif", unit, tag, sif_cols, (
@@ -167,8 +168,10 @@ def iter_export_table(sif_queryset) -> Iterator[list]:
                 _num(dd), _num(ls), "per hour", ptc, partial))
         for (_, comp_tag, at, kind, found, left, mode_, description, work,
              remarks) in _same_sif(test_stream, pk):
+            if at != last_at:  # the results of one record follow each other
+                last_at, last_iso = at, at.astimezone(utc).isoformat()
             yield row("test", unit, tag, test_cols, (
-                comp_tag, at.astimezone(utc).isoformat(), kind, found, left, mode_,
+                comp_tag, last_iso, kind, found, left, mode_,
                 description, work, remarks))
 
 
