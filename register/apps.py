@@ -23,3 +23,11 @@ class RegisterConfig(AppConfig):
                          dispatch_uid="register.accounts.tokens.note")
         post_save.connect(tokens.revoke_on_password_change, sender=user_model,
                           dispatch_uid="register.accounts.tokens.revoke")
+
+        from django.db.models.signals import post_migrate
+
+        from config.cache_router import create_cache_table
+
+        # wherever migrate runs, the shared cache's table is made (config/settings/base.py)
+        post_migrate.connect(create_cache_table, sender=self,
+                             dispatch_uid="config.cache_router.create_cache_table")

@@ -199,6 +199,8 @@ PACKS_QUEUE = env_str("PACKS_QUEUE", "packs")
 PACK_TIME_LIMIT_SECONDS = env_int("PACK_TIME_LIMIT_SECONDS", 900)
 PACK_HARD_TIME_LIMIT_SECONDS = env_int("PACK_HARD_TIME_LIMIT_SECONDS",
                                        PACK_TIME_LIMIT_SECONDS + 60)
+# A pack is built in sections of this many SIFs, in parallel on the packs workers.
+PACK_SECTION_SIFS = env_int("PACK_SECTION_SIFS", 50)
 CELERY_TASK_ROUTES = {"register.evidence_pack": {"queue": PACKS_QUEUE}}
 CELERY_BEAT_SCHEDULE = {
     "due-date-scan": {
@@ -273,12 +275,29 @@ LOGGING = {
 # the scan compares with each plan's last row before writing on every database.
 SILENCED_SYSTEM_CHECKS = ["models.W047"]
 
-# The cache (field statistics, API throttles): shared by every process on Redis when
-# CACHE_URL is set (production sets it); the demo keeps a per-process memory cache.
-CACHES = {"default": (
-    {"BACKEND": "django.core.cache.backends.redis.RedisCache",
-     "LOCATION": env_str("CACHE_URL"), "KEY_PREFIX": "sif-ledger"} if env_str("CACHE_URL")
-    else {"BACKEND": "django.core.cache.backends.locmem.LocMemCache"})}
+# The cache (field statistics, charts, API throttles, the wrong-password lock when
+# confirming): shared by every process. On Redis when CACHE_URL is set (production sets
+# it); otherwise Django's database cache (table CACHE_TABLE, made by ``createcachetable
+# --database cache`` wherever migrate runs) on a connection of its own, alias "cache",
+# outside the request's transaction: a count written while a request fails (a wrong
+# password refused inside the signing's transaction) must stay. Its database is the
+# register's on PostgreSQL; beside it, a file of its own, on SQLite (one writer per file:
+# a request holding the register's write lock must not wait for its own cache).
+CACHE_TABLE = env_str("CACHE_TABLE", "sif_ledger_cache")
+if env_str("CACHE_URL"):
+    CACHES = {"default": {"BACKEND": "django.core.cache.backends.redis.RedisCache",
+                          "LOCATION": env_str("CACHE_URL"), "KEY_PREFIX": "sif-ledger"}}
+else:
+    CACHES = {"default": {"BACKEND": "django.core.cache.backends.db.DatabaseCache",
+                          "LOCATION": CACHE_TABLE, "KEY_PREFIX": "sif-ledger"}}
+    if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
+        DATABASES["cache"] = {"ENGINE": "django.db.backends.sqlite3",
+                              "NAME": str(VAR_DIR / "cache.sqlite3"),
+                              "OPTIONS": {"timeout": 20}}
+    else:
+        DATABASES["cache"] = {**DATABASES["default"], "ENGINE": "django.db.backends.postgresql",
+                              "ATOMIC_REQUESTS": False, "TEST": {"MIRROR": "default"}}
+    DATABASE_ROUTERS = ["config.cache_router.CacheRouter"]
 
 # --- Browser hardening ---------------------------------------------------------------
 # Content-Security-Policy (django-csp 4): scripts and styles only from this site's own

@@ -34,3 +34,9 @@ STORAGES = {
     "staticfiles": {"BACKEND": "django.contrib.staticfiles.storage.StaticFilesStorage"},
 }
 
+# Each test process keeps its cache in memory (cleared before every test,
+# tests/conftest.py): the database cache's own connection would write outside the
+# transaction each test is rolled back in.
+CACHES = {"default": {"BACKEND": "django.core.cache.backends.locmem.LocMemCache"}}
+DATABASES.pop("cache", None)  # noqa: F405
+DATABASE_ROUTERS = []
