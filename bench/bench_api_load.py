@@ -76,16 +76,23 @@ def serve(database_url: str, workers: int = 4, threads: int = 8,
                 time.sleep(0.2)
         yield base
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        stop(proc)
         log.close()
 
 
-def build_plant(n_sifs: int = 20, n_users: int = 10):
-    """An invented site with SIFs and technicians holding API tokens (Django configured)."""
+def stop(proc: subprocess.Popen, timeout: float = 10) -> None:
+    """Stop a server or worker this bench started: terminate, then kill if it lingers."""
+    proc.terminate()
+    try:
+        proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
+
+
+def build_plant(n_sifs: int = 20, n_users: int = 10, code: str = "lakeside"):
+    """An invented site with SIFs and technicians holding API tokens (Django configured);
+    reused when a site with ``code`` is there already."""
     from django.contrib.auth import get_user_model
     from rest_framework.authtoken.models import Token
 
@@ -93,13 +100,21 @@ def build_plant(n_sifs: int = 20, n_users: int = 10):
     from register.models import Component, Membership, PlantUnit, SafetyFunction, Site
     from tests import factories as f
 
-    site = Site.objects.create(code="lakeside", name="Lakeside gas plant (invented)")
+    site = Site.objects.filter(code=code).first()
+    if site is not None:
+        unit = PlantUnit.objects.get(site=site, code="C1")
+        tokens = list(Token.objects.filter(user__memberships__site=site)
+                      .order_by("user__username").values_list("key", flat=True))
+        return tokens, [(s.pk, [c.pk for c in Component.objects.filter(subsystem__sif=s)])
+                        for s in SafetyFunction.objects.filter(unit=unit)]
+    site = Site.objects.create(code=code, name="Lakeside gas plant (invented)")
     unit = PlantUnit.objects.create(site=site, code="C1", name="Compression")
     for i in range(n_sifs):
         f.sif(unit, tag=f"SIF-C1-{i:03d}")
     tokens = []
     for i in range(n_users):
-        u = get_user_model().objects.create_user(f"cmms{i}", password=BENCH_PASSWORD)
+        u = get_user_model().objects.create_user(f"{code}-cmms{i}" if code != "lakeside"
+                                                 else f"cmms{i}", password=BENCH_PASSWORD)
         Membership.objects.create(user=u, site=site, role=choices.Role.TECHNICIAN)
         tokens.append(Token.objects.create(user=u).key)
     targets = [(s.pk, [c.pk for c in Component.objects.filter(subsystem__sif=s)])
@@ -107,9 +122,12 @@ def build_plant(n_sifs: int = 20, n_users: int = 10):
     return tokens, targets
 
 
-def drive(base: str, tokens: list[str], targets: list, seconds: float, clients: int = 50):
+def drive(base: str, tokens: list[str], targets: list, seconds: float, clients: int = 50,
+          prefix: str = ""):
     """Clients alternate: post two results (sometimes re-sending the last batch), read the
-    test-record list, read the SIF list. Returns latencies, accepted keys and failures."""
+    test-record list, read the SIF list. Returns latencies, accepted keys and failures.
+    ``prefix`` starts every client key (a new one per run keeps runs apart); a client that
+    dies, or is still running a minute and a half after the end, counts as a failure."""
     stop = time.time() + seconds
     lock = threading.Lock()
     lat = {"bulk": [], "records": [], "sifs": []}
@@ -130,7 +148,7 @@ def drive(base: str, tokens: list[str], targets: list, seconds: float, clients: 
                     batch = []
                     for _ in range(2):
                         sif, comps = rng.choice(targets)
-                        key = f"c{n}-{next(counter)}"
+                        key = f"{prefix}c{n}-{next(counter)}"
                         when = dt.datetime.now(dt.UTC) - dt.timedelta(
                             minutes=rng.randint(10, 100000))
                         batch.append({"client_key": key, "sif": sif, "kind": "full",
@@ -176,7 +194,10 @@ def drive(base: str, tokens: list[str], targets: list, seconds: float, clients: 
     for t in threads:
         t.start()
     for t in threads:
-        t.join()
+        t.join(timeout=max(0.0, stop + 90 - time.time()))
+    with lock:
+        failures.extend(("client", "hung", "still running after the end")
+                        for t in threads if t.is_alive())
     return {"latency": lat, "accepted": accepted, "failures": failures,
             "elapsed": time.time() - t0}
 

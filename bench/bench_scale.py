@@ -1,5 +1,8 @@
 """Benchmark: the project against the floor on a scale plant, interleaved in one run.
 
+The plant and the floors' SQL live here; the measuring is bench/bench_all.py's (this
+script runs its in-process rows: recompute, one SIF after a signed test, scan, pages).
+
 For each step the project's time and query count stand beside the floor: a bare psycopg
 read of the same rows (no ORM, no engine, no templates), and their ratio. Run by hand
 against PostgreSQL; the database is its own (created if missing, kept for the next run):
@@ -10,7 +13,6 @@ nightly runs) so the overview and the SIF page are measured against a long histo
 """
 
 import argparse
-import datetime as dt
 import os
 import sys
 import time
@@ -48,30 +50,20 @@ PLANS = ("SELECT p.id, p.sif_id, p.next_due_on, p.due_soon_on, p.escalated_on "
          "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs}")
 
 
-def main():
-    parser = argparse.ArgumentParser()
-    parser.add_argument("--sifs", type=int, default=5000)
-    parser.add_argument("--history-days", type=int, default=365)
-    parser.add_argument("--repeat", type=int, default=3)
-    args = parser.parse_args()
-    import django
-
-    django.setup()
-    import psycopg
+def prepare_plant(sifs: int, history_days: int) -> dict:
+    """Build (or reuse) the scale plant ``scale<sifs>`` in the database of DATABASE_URL
+    (Django set up), with ``history_days`` older assessments per SIF; returns the site, its
+    SIFs, the first SIF, a lead and the technician, and the floor's newest-assessment SQL."""
     from django.conf import settings
     from django.contrib.auth import get_user_model
     from django.core.management import call_command
     from django.db import connection
-    from django.test import Client
-    from django.test.utils import CaptureQueriesContext
-    from django.utils import timezone
 
     from calcs.adapter import recompute_many
-    from register import choices, services
-    from register.models import Component, Membership, SafetyFunction, Site
-    from register.schedule import followup
-    from register.schedule.scan import scan
+    from register import choices
+    from register.models import Membership, SafetyFunction, Site
 
+    args = argparse.Namespace(sifs=sifs, history_days=history_days)
     settings.ALLOWED_HOSTS = ["*"]
     call_command("migrate", verbosity=0)
     code = f"scale{args.sifs}"
@@ -112,93 +104,32 @@ def main():
             cur.execute("ANALYZE calcs_assessment")
             print(f"history: {args.history_days} older assessments per SIF added in "
                   f"{time.perf_counter() - t:.0f} s")
-    dsn = settings.DATABASES["default"]
-    bare = psycopg.connect(host=dsn["HOST"] or "127.0.0.1", port=dsn["PORT"] or 5432,
-                           user=dsn["USER"], password=dsn["PASSWORD"], dbname=dsn["NAME"])
     with connection.cursor() as cur:  # the newest per SIF: by its flag where there is one
         cur.execute("SELECT 1 FROM information_schema.columns WHERE "
                     "table_name = 'calcs_assessment' AND column_name = 'latest'")
         latest = (LATEST.replace("{sifs}", "{sifs} AND a.latest") if cur.fetchall()
                   else LATEST)
-    plant = f"u.site_id = {site.pk}"
-    one = f"s.id = {sif.pk}"
+    return {"site": site, "qs": qs, "sif": sif, "lead": lead, "tech": tech,
+            "latest": latest}
 
-    def floor(*sqls, where):
-        with bare.cursor() as cur:
-            for sql in sqls:
-                cur.execute(sql.format(sifs=where))
-                cur.fetchall()
-        return len(sqls)
 
-    lead_client, tech_client = Client(), Client()
-    lead_client.force_login(lead)
-    tech_client.force_login(tech)
+def bare_connection():
+    """A bare psycopg 3 connection to the database Django uses (the floor's)."""
+    import psycopg
+    from django.conf import settings
 
-    def page(client, url):
-        def run():
-            resp = client.get(url)
-            assert resp.status_code == 200, (url, resp.status_code)
-        return run
+    dsn = settings.DATABASES["default"]
+    return psycopg.connect(host=dsn["HOST"] or "127.0.0.1", port=dsn["PORT"] or 5432,
+                           user=dsn["USER"], password=dsn["PASSWORD"], dbname=dsn["NAME"])
 
-    def after_signed_test():
-        with followup.suspended():
-            rec = services.save_draft(
-                user=tech, sif=sif, kind=choices.TestKind.PARTIAL,
-                performed_at=timezone.now() - dt.timedelta(minutes=5),
-                results=[services.ResultInput(component=c, as_found="pass", as_left="pass")
-                         for c in Component.objects.filter(subsystem__sif=sif)])
-            services.sign_record(rec, tech, None, check_password=False)
 
-    as_of = [timezone.now()]
+def main():
+    """The in-process rows of bench/bench_all.py (its flags pass through)."""
+    from bench.bench_all import main as bench_all
 
-    def recompute_all():
-        as_of[0] += dt.timedelta(days=1)  # a new night: every SIF is evaluated again
-        recompute_many(qs, trigger="bench", as_of=as_of[0])
-
-    steps = [
-        ("recompute all", recompute_all, None, lambda: floor(*INPUT_ROWS, where=plant)),
-        ("one SIF after a signed test",
-         lambda: recompute_many(SafetyFunction.objects.filter(pk=sif.pk), trigger="bench"),
-         after_signed_test, lambda: floor(*INPUT_ROWS, where=one)),
-        ("due-date scan", lambda: scan(timezone.localdate(), notify=False), None,
-         lambda: floor(PLANS, where=plant)),
-        ("plant overview", page(lead_client, "/"), None,
-         lambda: floor(latest, PLANS, where=plant)),
-        ("filtered register list", page(lead_client, "/sifs/?target_sil=2"), None,
-         lambda: floor(latest + " LIMIT 50", where=plant + " AND s.target_sil = 2")),
-        ("SIF page, long history", page(lead_client, f"/sifs/{sif.pk}/"), None,
-         lambda: floor(*INPUT_ROWS, latest, where=one)),
-        ("trend chart, long history", page(lead_client, f"/sifs/{sif.pk}/chart/trend.svg"),
-         None, lambda: floor("SELECT computed_at, achieved_pfd_avg, design_pfd_avg FROM "
-                             "calcs_assessment a JOIN register_safetyfunction s ON "
-                             "s.id = a.sif_id WHERE {sifs} ORDER BY computed_at DESC "
-                             "LIMIT 500", where=one)),
-        ("technician worklist", page(tech_client, "/field/"), None,
-         lambda: floor(PLANS, where=plant)),
-    ]
-    best: dict[str, list] = {}
-    for _ in range(args.repeat):
-        for name, run, prepare, bare_read in steps:
-            if prepare:
-                prepare()
-            with CaptureQueriesContext(connection) as q:
-                t = time.perf_counter()
-                run()
-                took = time.perf_counter() - t
-            t = time.perf_counter()
-            n_floor = bare_read()
-            fl = time.perf_counter() - t
-            prev = best.get(name)
-            if prev is None or took < prev[0]:
-                best[name] = [took, len(q), min(fl, prev[2]) if prev else fl, n_floor]
-            else:
-                prev[2] = min(prev[2], fl)
-    print(f"{'step':30} {'project':>10} {'queries':>8} {'floor':>10} {'queries':>8} {'ratio':>7}")
-    for name, (took, n, fl, nf) in best.items():
-        print(f"{name:30} {took * 1000:8.0f} ms {n:8d} {fl * 1000:8.0f} ms {nf:8d} "
-              f"{took / fl if fl else float('inf'):6.1f}x")
-    bare.close()
+    return bench_all(["--only", "recompute", "after-sign", "scan", "overview", "list",
+                      "sif-page", "trend", "worklist", *sys.argv[1:]])
 
 
 if __name__ == "__main__":
-    main()
+    raise SystemExit(main())
