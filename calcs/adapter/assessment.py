@@ -455,7 +455,29 @@ def _store(fresh: list[Assessment], previous: dict[int, Assessment]) -> None:
         if replaced:
             Assessment.objects.filter(pk__in=replaced).delete()
         Assessment.objects.filter(sif_id__in=ids, latest=True).update(latest=False)
+        _insert(fresh)
+
+
+def _insert(fresh: list[Assessment]) -> None:
+    """Write the fresh snapshots: one COPY on PostgreSQL (each value adapted by its field,
+    as an INSERT would), then one read of their ids; a bulk insert elsewhere."""
+    conn = transaction.get_connection()
+    if conn.vendor != "postgresql":
         Assessment.objects.bulk_create(fresh, batch_size=500)
+        return
+    fields = [f for f in Assessment._meta.concrete_fields if not f.primary_key]
+    table = conn.ops.quote_name(Assessment._meta.db_table)
+    columns = ", ".join(conn.ops.quote_name(f.column) for f in fields)
+    with conn.cursor() as cur:
+        with cur.cursor.copy(f"COPY {table} ({columns}) FROM STDIN") as copy:
+            for a in fresh:
+                copy.write_row([f.get_db_prep_save(f.pre_save(a, True), conn) for f in fields])
+        cur.execute(f"SELECT id, sif_id FROM {table} WHERE latest AND sif_id = ANY(%s)",
+                    [[a.sif_id for a in fresh]])
+        ids = {sif_id: pk for pk, sif_id in cur.fetchall()}
+    for a in fresh:
+        a.pk = ids[a.sif_id]
+        a._state.adding, a._state.db = False, conn.alias
 
 
 def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:

@@ -25,6 +25,7 @@ from register.models import (
     SafetyFunction,
     Subsystem,
     TestPlan,
+    TestRecord,
     in_force,
 )
 from register.schedule.due import Version, plan_versions, version_on
@@ -42,7 +43,7 @@ SIGNIFICANCE = 0.05
 # ---------------------------------------------------------------------------------------
 
 
-@dataclass
+@dataclass(slots=True)
 class TestRow:
     at: dt.datetime
     kind: str  # engine kind: full / partial / demand
@@ -121,27 +122,34 @@ def load(sif_queryset) -> list[SifData]:
             for comp_id in demand_ok[demand.pk] - demand_failed[demand.pk]:
                 if comp_id in comp_of:
                     comp_of[comp_id].events.append(TestRow(demand.occurred_at, "demand", False))
-    # Test results: one streamed query, the largest table.
+    # Test records (their time, kind and plan read once each), then their results: one
+    # streamed query over the largest table, plain values.
+    signed = (TestRecord.objects.filter(in_force(), sif__in=sif_queryset.values("pk"))
+              .exclude(kind=choices.TestKind.SIGN_OFF))
+    records = {pk: (at, kind, plan_id) for pk, at, kind, plan_id in
+               signed.values_list("pk", "performed_at", "kind", "plan_id").iterator(
+                   chunk_size=5000)}
     rows = (
         ComponentResult.objects.filter(in_force("record__"),
                                        record__sif__in=sif_queryset.values("pk"))
         .exclude(record__kind=choices.TestKind.SIGN_OFF)
-        .values_list("component_id", "record__performed_at", "record__kind", "failure_mode",
-                     "as_found", "record_id", "record__plan_id")
+        .values_list("component_id", "record_id", "failure_mode", "as_found")
         .order_by("record__performed_at")
     )
     kind_map = {choices.TestKind.FULL: "full", choices.TestKind.VALIDATION: "full",
                 choices.TestKind.PARTIAL: "partial", choices.TestKind.DEMAND: "demand"}
     credits_demands = {sif_id: any(p.demand_counts_as_test for p in d.plans)
                        for sif_id, d in data.items()}
-    for comp_id, at, kind, mode, as_found, record_id, plan_id in rows.iterator(chunk_size=5000):
+    failing = (choices.Verdict.FAIL, choices.FailureMode.DANGEROUS_UNDETECTED)
+    for comp_id, record_id, mode, as_found in rows.iterator(chunk_size=5000):
         cd = comp_of.get(comp_id)
-        if cd is None:
+        if cd is None or record_id not in records:
             continue
-        failed = as_found == choices.Verdict.FAIL and mode == choices.FailureMode.DANGEROUS_UNDETECTED
+        at, kind, plan_id = records[record_id]
         credited = kind != choices.TestKind.DEMAND or credits_demands[
             sub_sif[cd.obj.subsystem_id]]
-        cd.events.append(TestRow(at, kind_map[kind], failed, record_id, credited, plan_id))
+        cd.events.append(TestRow(at, kind_map[kind], (as_found, mode) == failing, record_id,
+                                 credited, plan_id))
     _plan_coverage(data, comp_of, sub_sif)
     for cd in comp_of.values():
         cd.events.sort(key=lambda e: e.at)
@@ -160,21 +168,29 @@ def _plan_coverage(data: dict[int, SifData], comp_of: dict[int, ComponentData],
     for plan_id, plan in live.items():
         versions.setdefault(plan_id, [Version(None, plan.interval_months, frozenset(
             data[plan.sif_id].plan_components.get(plan_id, ())), plan.coverage)])
+    days: dict[tuple, dt.date] = {}  # (time, site): the site's calendar day
+    by_plan: dict[tuple, float | None] = {}  # (plan, day): coverage of its version then
     for cd in comp_of.values():
         d = data[sub_sif[cd.obj.subsystem_id]]
+        site, site_id, comp_id = d.sif.unit.site, d.sif.unit.site_id, cd.obj.pk
         for e in cd.events:
             if e.kind == "demand":
                 continue
-            day = local_date(e.at, d.sif.unit.site)
+            day = days.get((e.at, site_id))
+            if day is None:
+                day = days[e.at, site_id] = local_date(e.at, site)
             if e.plan_id in live:
-                v = version_on(versions[e.plan_id], day)
-                e.plan_coverage = v.coverage if v else None
+                key = (e.plan_id, day)
+                if key not in by_plan:
+                    v = version_on(versions[e.plan_id], day)
+                    by_plan[key] = v.coverage if v else None
+                e.plan_coverage = by_plan[key]
                 continue
             kind = choices.TestKind.PARTIAL if e.kind == "partial" else choices.TestKind.FULL
             covs = []
             for plan in d.plans:
                 v = version_on(versions[plan.pk], day) if plan.kind == kind else None
-                if v and (not v.components or cd.obj.pk in v.components):
+                if v and (not v.components or comp_id in v.components):
                     covs.append(v.coverage)
             e.plan_coverage = min(covs) if covs else None
 
