@@ -24,9 +24,18 @@ class CacheRouter:
 
 def create_cache_table(sender, using="default", **kwargs):
     """After ``migrate`` (post_migrate, once: for the register app on the default
-    database): the database cache's table on its alias, when the settings have one."""
+    database): the database cache's table on its alias, when the settings have one; else
+    on the database just migrated, so a process started on the default settings against
+    the same database (a Celery worker beside the test suite) finds its cache table."""
     from django.conf import settings
     from django.core.management import call_command
+    from django.core.management.commands.createcachetable import Command
 
-    if sender.name == "register" and using == "default" and CACHE_ALIAS in settings.DATABASES:
+    if sender.name != "register" or using != "default":
+        return
+    if CACHE_ALIAS in settings.DATABASES:
         call_command("createcachetable", database=CACHE_ALIAS, verbosity=0)
+    else:
+        cmd = Command()
+        cmd.verbosity = 0
+        cmd.create_table(using, settings.CACHE_TABLE, dry_run=False)
