@@ -11,7 +11,7 @@ from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.core.paginator import Paginator
 from django.db import transaction
-from django.db.models import Count, F, Q, Value
+from django.db.models import Count, Exists, F, OuterRef, Q, Value
 from django.db.models.functions import Replace, Upper
 from django.http import FileResponse, Http404
 from django.shortcuts import get_object_or_404, redirect, render
@@ -77,15 +77,17 @@ def _stored_plan_status(plan: TestPlan | None):
 
 
 def _components(plan: TestPlan | None, sif) -> list[Component]:
-    qs = None
+    """The devices of the test: the ones the plan names, or every device of the SIF (one
+    query: the SIF's devices, each marked when the plan names it)."""
+    qs = Component.objects.filter(subsystem__sif=sif)
     if plan is not None:
-        named = plan.components.all()
-        if named.exists():
-            qs = named
-    if qs is None:
-        qs = Component.objects.filter(subsystem__sif=sif)
-    return list(qs.select_related("subsystem", "device_type")
-                .order_by("subsystem__position", "subsystem_id", "tag"))
+        qs = qs | Component.objects.filter(plans=plan)
+        qs = qs.annotate(named=Exists(TestPlan.components.through.objects.filter(
+            testplan_id=plan.pk, component_id=OuterRef("pk"))))
+    devices = list(qs.select_related("subsystem", "device_type").distinct()
+                   .order_by("subsystem__position", "subsystem_id", "tag"))
+    named = [c for c in devices if getattr(c, "named", False)]
+    return named or devices
 
 
 def _steps(plan: TestPlan | None):
