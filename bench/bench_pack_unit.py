@@ -3,7 +3,9 @@
 Needs a database that holds the plant already (``manage.py load_demo``). The pack covers
 the longest period a request may ask for (from the unit's first in-service date, at most
 ``MAX_PACK_YEARS``, to today). Builds it ``--runs`` times and reports each stage's median,
-the PDF size and the chart format inside the PDF.
+the PDF size, its pages and its raster images (none: the charts are vector graphics). The
+build runs in this process, section after section (``evidence.build``); for the pack on
+worker processes see ``bench_evidence.py --workers``.
 
 Run:
     DATABASE_URL=postgres://postgres@127.0.0.1:5432/<db> SIF_LEDGER_VAR_DIR=/tmp/<dir> \\
@@ -62,7 +64,7 @@ def main() -> int:
 
         def progress(percent, text, run=run, last=last):
             now = time.perf_counter()
-            key = "Charts" if text.startswith("Charts") else text
+            key = "Sections" if text.startswith("Sections") else text
             run[key] = run.get(key, 0.0) + now - last[0]
             last[0] = now
 
@@ -81,11 +83,12 @@ def main() -> int:
         pdf = zf.read("report.pdf")
         names = zf.namelist()
     images = pdf.count(b"/Subtype /Image")
-    forms = pdf.count(b"/Subtype /Form")
+    pages = pdf.count(b"/Type /Page") - pdf.count(b"/Type /Pages")
     print(f"pack build: median {statistics.median(totals):.2f} s, fastest {min(totals):.2f} s "
           f"of {args.runs} "
           f"({', '.join(f'{t:.2f}' for t in totals)}); {len(names)} files, PDF "
-          f"{len(pdf) / 1e6:.2f} MB, {images} raster images, {forms} vector forms in the PDF")
+          f"{len(pdf) / 1e6:.2f} MB, {pages} pages, {images} raster images in the PDF (the charts "
+          "are drawn as vector graphics)")
     return 0
 
 

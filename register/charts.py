@@ -29,8 +29,8 @@ BAND_HATCH = {1: "////", 2: "\\\\\\\\", 3: "xxx", 4: "...."}
 BAND_GREY = {1: "#f2f2f2", 2: "#e4e4e4", 3: "#d6d6d6", 4: "#c8c8c8"}
 WIDTH_IN, HEIGHT_IN = 9.0, 3.6
 CHART_SIZE = (WIDTH_IN, HEIGHT_IN)
-#: The pack's charts: sized for an A4 page, rasterised at print resolution.
-PACK_WIDTH_IN, PACK_HEIGHT_IN, PACK_DPI = 7.2, 2.8, 200
+#: The pack's charts (``register.audit.evidence.chart``): sized for an A4 page.
+PACK_WIDTH_IN, PACK_HEIGHT_IN = 7.2, 2.8
 #: Observed episodes: vertical bands, hatched unlike any SIL band.
 EPISODE_HATCH = "||"
 EPISODE_FACE = "#f6d8d8"
@@ -163,17 +163,6 @@ def pfd_chart(times: list[dt.datetime], values, target: float | None, tag: str,
     fig, ax = _figure(f"{tag}: probability of failure on demand over time")
     _draw_pfd(ax, times, list(values), target, episodes=episodes)
     return _svg(fig)
-
-
-def pack_pfd_chart(tag: str, times, values, target: float | None, start: dt.datetime,
-                   end: dt.datetime, episodes=()) -> bytes:
-    """The evidence pack's PFD(t) chart over the pack's period: the page's drawing (same
-    scale, SIL bands, target and episodes) as a PNG at ``PACK_DPI`` for the PDF."""
-    fig, ax = _figure(f"{tag}: PFD(t) over the period", size=(PACK_WIDTH_IN, PACK_HEIGHT_IN),
-                      dpi=PACK_DPI, fontsize=9)
-    ax.tick_params(labelsize=7)
-    _draw_pfd(ax, times, list(values), target, start, end, episodes)
-    return _save(fig, "png")
 
 
 def trend_chart(points: list[tuple[dt.datetime, float | None, float | None]],

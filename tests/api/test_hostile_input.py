@@ -343,7 +343,7 @@ def test_pack_period_longest_span(case):
 def test_a_tag_with_dollar_signs_draws_as_text(case, tag):
     """matplotlib reads $...$ as math; a tag like these once broke every chart of its SIF
     (page and evidence pack)."""
-    from register.charts import pack_pfd_chart
+    from register.audit.evidence import chart
 
     SafetyFunction.objects.filter(pk=case.own.sif.pk).update(tag=tag)
     browser = Client()
@@ -353,6 +353,9 @@ def test_a_tag_with_dollar_signs_draws_as_text(case, tag):
         assert response.status_code == 200, which
         assert response.content.lstrip().startswith(b"<?xml")
     start = timezone.now() - dt.timedelta(days=200)
-    png = pack_pfd_chart(tag, [start, timezone.now()], [1e-3, 2e-3], 5e-3, start,
-                         timezone.now())
-    assert png.startswith(b"\x89PNG")
+    series = chart.series(tag, [start, timezone.now()], [1e-3, 2e-3], 5e-3, start,
+                          timezone.now(), [])
+    drawing = chart.drawing(series, 500)
+    assert any(getattr(s, "text", None) == f"{tag}: PFD(t) over the period"
+               for s in drawing.getContents())
+    assert chart.png(drawing).startswith(b"\x89PNG")

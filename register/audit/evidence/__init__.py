@@ -9,6 +9,7 @@ Data are loaded in bulk for the whole scope (a fixed number of queries, plus a f
 month-end for the overdue history); the per-SIF cost is the chart and the PDF pages.
 """
 
+from register.audit.evidence import build as _build_module
 from register.audit.evidence.build import (
     build,
     run,
@@ -44,6 +45,10 @@ from register.audit.evidence.tables import (
 )
 from register.presenters import CAUTION
 
+#: The steps of a build (``begin``, ``section``, ``assemble``, ...) for the pack tasks; the
+#: module's name is taken by ``build`` the function.
+build_steps = _build_module
+
 __all__ = [
     "ACHIEVED_FORMULA",
     "CAUTION",
@@ -56,6 +61,7 @@ __all__ = [
     "OVERDUE_STATES",
     "Collected",
     "build",
+    "build_steps",
     "collect",
     "cover_facts",
     "csv_files",

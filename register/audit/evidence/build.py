@@ -1,11 +1,22 @@
 """Building a pack's zip (report.pdf, CSV tables, pack.json, charts, manifest.json) and
-running a requested pack as a job."""
+running a requested pack as a job.
+
+A pack is built in sections of SIFs (``begin``: chain verified, cover facts and the plan
+written; ``section``: one share of the SIFs, its facts, figures, charts and PDF pages;
+``assemble``: everything joined in a fixed order). ``build`` runs them one after the other
+in this process; the pack task (``register.audit.tasks``) runs the sections as parallel
+tasks on the packs queue and the last one to finish starts the assembly. The sections wait
+in ``work_dir(pack)`` under ``VAR_DIR`` (shared by the workers, as the finished packs are).
+"""
 
 from __future__ import annotations
 
+import base64
+import datetime as dt
 import hashlib
 import json
-import time
+import os
+import shutil
 import zipfile
 from pathlib import Path
 
@@ -14,58 +25,179 @@ from django.conf import settings
 from django.utils import timezone
 
 from register.audit.chain import verify_chain
+from register.audit.evidence import chart
 from register.audit.evidence.collect import (
+    Collected,
     collect,
     packs_dir,
+    scope_queryset,
+    tables_of,
 )
 from register.audit.evidence.figures import (
     figures,
 )
 from register.audit.evidence.pdf import (
-    render_pdf,
+    cover_part,
+    join,
+    sif_part,
 )
 from register.audit.evidence.tables import (
     cover_facts,
     csv_files,
 )
+from register.charts import PACK_WIDTH_IN
 from register.models import (
     EvidencePack,
 )
 
 
-def build(pack: EvidencePack, progress=None) -> Path:
-    """Build the zip for ``pack``; return its path. ``progress(percent, text)`` is called
-    along the way."""
-    progress = progress or (lambda p, s: None)
+def section_size() -> int:
+    """SIFs per section when none is given (``settings.PACK_SECTION_SIFS``)."""
+    return max(1, settings.PACK_SECTION_SIFS)
+
+
+def work_dir(pack: EvidencePack | int) -> Path:
+    """Where the sections of a pack being built wait for the assembly (removed after)."""
+    pk = pack if isinstance(pack, int) else pack.pk
+    return packs_dir() / f"evidence-pack-{pk}.parts"
+
+
+def _write(path: Path, data: bytes):
+    tmp = path.with_name(path.name + ".part")
+    tmp.write_bytes(data)
+    tmp.replace(path)
+
+
+def _json(value) -> bytes:
+    return json.dumps(value, ensure_ascii=False, default=str).encode("utf-8")
+
+
+def begin(pack: EvidencePack, size: int | None = None) -> list[list[int]]:
+    """Verify the change chain (incrementally, from the last checkpoint), write the facts
+    of the cover and the plan of the sections; return the SIF ids of each section, in the
+    order of the report (by tag)."""
     chain = verify_chain(incremental=True)
-    progress(5, "Change chain verified")
-    col = collect(pack, progress)
-    charts = figures(pack, col, progress)
-    cover = cover_facts(pack, chain)
+    pack.chain_head_hash, pack.chain_head_seq, pack.chain_ok = (chain.head_hash,
+                                                                chain.head_seq, chain.ok)
+    ids = list(scope_queryset(pack).values_list("pk", flat=True))
+    size = size or section_size()
+    sections = [ids[i:i + size] for i in range(0, len(ids), size)] or [[]]
+    folder = work_dir(pack)
+    if folder.exists():
+        shutil.rmtree(folder)
+    folder.mkdir(parents=True)
+    _write(folder / "cover.json", _json(cover_facts(pack, chain)))
+    _write(folder / "plan.json", _json({"sections": sections}))
+    return sections
+
+
+def _section_path(folder: Path, index: int) -> Path:
+    return folder / f"section-{index:05d}.json"
+
+
+def section(pack: EvidencePack, index: int, sif_ids: list[int], check=None) -> Path:
+    """Build one section: the facts, figures, chart and PDF pages of ``sif_ids``.
+    ``check()`` is called every few SIFs (it may stop the build by raising)."""
+    check = check or (lambda: None)
+    folder = work_dir(pack)
+    cover = json.loads((folder / "cover.json").read_bytes())
+    col = collect(pack, lambda p, s: check(), sif_ids=sif_ids)
+    series = figures(pack, col, lambda p, s: check())
+    parts, pngs = {}, {}
+    for e in col.sifs:
+        data = series.get(e["id"])
+        parts[str(e["id"])] = base64.b64encode(sif_part(cover, e, data)).decode("ascii")
+        if data:
+            pngs[str(e["id"])] = base64.b64encode(
+                chart.png(chart.drawing(data, PNG_WIDTH_PT))).decode("ascii")
+    path = _section_path(folder, index)
+    _write(path, _json({"index": index, "sifs": col.sifs, "parts": parts, "charts": pngs}))
+    return path
+
+
+def sections_done(pack: EvidencePack | int) -> tuple[int, int]:
+    """(sections written, sections planned) of a pack being built."""
+    folder = work_dir(pack)
+    planned = len(json.loads((folder / "plan.json").read_bytes())["sections"])
+    return len(list(folder.glob("section-*.json"))), planned
+
+
+def claim_assembly(pack: EvidencePack | int) -> bool:
+    """True once, for the caller that finds every section written: it assembles."""
+    done, planned = sections_done(pack)
+    if done < planned:
+        return False
+    try:
+        os.close(os.open(work_dir(pack) / "assembly", os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+    except FileExistsError:
+        return False
+    return True
+
+
+#: Width of the zip's PNG charts in points (the PDF's drawing is as wide as its text).
+PNG_WIDTH_PT = PACK_WIDTH_IN * 72
+
+
+def assemble(pack: EvidencePack, progress=None) -> Path:
+    """Join the sections in their order: report.pdf (cover, then each SIF's pages), the
+    CSV tables, pack.json, the charts and manifest.json, in one zip. The same sections give
+    the same bytes however they were shared out."""
+    progress = progress or (lambda p, s: None)
+    folder = work_dir(pack)
+    cover = json.loads((folder / "cover.json").read_bytes())
+    planned = json.loads((folder / "plan.json").read_bytes())["sections"]
+    sifs, parts, pngs = [], [], {}
+    for index in range(len(planned)):
+        sec = json.loads(_section_path(folder, index).read_bytes())
+        sifs += sec["sifs"]
+        parts += [base64.b64decode(sec["parts"][str(e["id"])]) for e in sec["sifs"]]
+        pngs.update({int(k): base64.b64decode(v) for k, v in sec["charts"].items()})
+    progress(90, "Writing the report")
     files: dict[str, bytes] = {}
-    files.update(csv_files(col))
-    files["pack.json"] = json.dumps({**cover, "sifs": col.sifs}, indent=1, ensure_ascii=False,
+    files.update(csv_files(Collected(sifs=sifs, tables=tables_of(sifs))))
+    files["pack.json"] = json.dumps({**cover, "sifs": sifs}, indent=1, ensure_ascii=False,
                                     default=str).encode("utf-8")
-    for sif_id, png in charts.items():
-        tag = next(e["tag"] for e in col.sifs if e["id"] == sif_id)
-        files[f"charts/{_safe(tag)}-pfd.png"] = png
-    progress(70, "Writing the report")
-    files["report.pdf"] = render_pdf(cover, col.sifs, charts,
-                                     lambda f: progress(70 + int(25 * f), "Writing the report"))
+    for e in sifs:
+        if e["id"] in pngs:
+            files[f"charts/{_safe(e['tag'])}-pfd.png"] = pngs[e["id"]]
+    files["report.pdf"] = join(cover, [cover_part(cover, sifs)] + parts)
+    progress(96, "Writing the zip")
     manifest = {"pack_id": pack.pk, "generated_at": cover["generated_at"],
-                "chain_head_hash": chain.head_hash,
+                "chain_head_hash": cover["chain"]["head_hash"],
                 "files": [{"name": name, "sha256": hashlib.sha256(data).hexdigest(),
                            "size": len(data)} for name, data in sorted(files.items())]}
     files["manifest.json"] = json.dumps(manifest, indent=1).encode("utf-8")
     path = packs_dir() / f"evidence-pack-{pack.pk}.zip"
     tmp = path.with_suffix(".part")
-    with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+    # Fixed entry times (the pack's start): the same files give the same zip.
+    when = (pack.started_at or timezone.now()).astimezone(dt.UTC).timetuple()[:6]
+    with zipfile.ZipFile(tmp, "w") as zf:
         for name in ["manifest.json"] + sorted(n for n in files if n != "manifest.json"):
-            zf.writestr(name, files[name])
+            info = zipfile.ZipInfo(name, date_time=max(when, (1980, 1, 1, 0, 0, 0)))
+            # PNG and PDF streams are compressed already: stored as they are.
+            info.compress_type = (zipfile.ZIP_STORED if name.endswith((".png", ".pdf"))
+                                  else zipfile.ZIP_DEFLATED)
+            info.external_attr = 0o644 << 16
+            zf.writestr(info, files[name])
     tmp.replace(path)
-    pack.chain_head_hash, pack.chain_head_seq, pack.chain_ok = (chain.head_hash,
-                                                                chain.head_seq, chain.ok)
+    chain = cover["chain"]
+    pack.chain_head_hash, pack.chain_head_seq, pack.chain_ok = (
+        chain["head_hash"], chain["head_seq"], chain["verified_ok"])
+    shutil.rmtree(folder, ignore_errors=True)
     return path
+
+
+def build(pack: EvidencePack, progress=None, size: int | None = None) -> Path:
+    """Build the zip for ``pack`` in this process, section by section (``size`` SIFs
+    each); return its path. ``progress(percent, text)`` is called along the way."""
+    progress = progress or (lambda p, s: None)
+    plan = begin(pack, size)
+    progress(5, "Change chain verified")
+    for index, ids in enumerate(plan):
+        section(pack, index, ids, lambda i=index: progress(5 + int(85 * i / len(plan)),
+                                                           f"Sections {i} of {len(plan)}"))
+        progress(5 + int(85 * (index + 1) / len(plan)), f"Sections {index + 1} of {len(plan)}")
+    return assemble(pack, progress)
 
 
 def _safe(text: str) -> str:
@@ -104,37 +236,54 @@ def mark_failed(pack_id: int, error: str, stage: str = "Failed") -> int:
     return 0
 
 
-def run(pack_id: int, time_limit: int | None = None) -> EvidencePack:
-    """Build one pack, recording status and progress on the row as it goes.
-
-    ``time_limit`` (seconds): the build also stops itself at its next step past the limit,
-    should the worker's interruption at the soft time limit have been lost (an exception
-    raised inside a finaliser is only printed)."""
-    began = time.monotonic()
+def start(pack_id: int) -> EvidencePack | None:
+    """Mark the pack running from now (None: it is done already)."""
     pack = EvidencePack.objects.select_related("site", "unit", "sif", "requested_by").get(
         pk=pack_id)
     if pack.status == EvidencePack.Status.DONE:
-        return pack
+        return None
     pack.status, pack.started_at, pack.progress, pack.error = (
         EvidencePack.Status.RUNNING, timezone.now(), 1, "")
     EvidencePack.objects.filter(pk=pack.pk).update(status=pack.status, started_at=pack.started_at,
                                                    progress=1, error="", stage="Started")
+    return pack
+
+
+def running(pack_id: int) -> EvidencePack | None:
+    """The pack, while it is being built (None once done, failed or stopped)."""
+    return EvidencePack.objects.select_related("site", "unit", "sif", "requested_by").filter(
+        pk=pack_id, status=EvidencePack.Status.RUNNING).first()
+
+
+def progress_of(pack: EvidencePack, time_limit: int | None):
+    """``progress(percent, text)`` for ``pack``: writes the step on the row (the percentage
+    never goes back, as sections finish in any order) and raises SoftTimeLimitExceeded
+    once the build has run past ``time_limit`` seconds from its start (``text`` None: that
+    check only)."""
+    began = pack.started_at or timezone.now()
 
     def progress(percent: int, text: str):
-        if time_limit and time.monotonic() - began > time_limit:
+        if time_limit and (timezone.now() - began).total_seconds() > time_limit:
             raise SoftTimeLimitExceeded(f"past the time limit of {time_limit} s")
-        EvidencePack.objects.filter(pk=pack.pk).update(progress=min(99, percent),
-                                                       stage=text[:200])
+        if text is None:
+            return
+        EvidencePack.objects.filter(pk=pack.pk, progress__lte=min(99, percent)).update(
+            progress=min(99, percent), stage=text[:200])
 
-    try:
-        path = build(pack, progress)
-    except Exception as exc:
-        if isinstance(exc, SoftTimeLimitExceeded):
-            mark_failed(pack.pk, time_limit_message(
-                time_limit or settings.PACK_TIME_LIMIT_SECONDS), STOPPED_STAGE)
-        else:
-            mark_failed(pack.pk, f"{type(exc).__name__}: {exc}")
-        raise
+    return progress
+
+
+def failed(pack_id: int, exc: Exception, time_limit: int | None = None):
+    """Record why the build of the pack stopped (the pack page shows it)."""
+    if isinstance(exc, SoftTimeLimitExceeded):
+        mark_failed(pack_id, time_limit_message(time_limit or settings.PACK_TIME_LIMIT_SECONDS),
+                    STOPPED_STAGE)
+    else:
+        mark_failed(pack_id, f"{type(exc).__name__}: {exc}")
+
+
+def finish(pack: EvidencePack, path: Path) -> EvidencePack:
+    """Mark the pack done with its zip at ``path``."""
     data = path.read_bytes()
     EvidencePack.objects.filter(pk=pack.pk).update(
         status=EvidencePack.Status.DONE, progress=100, stage="Ready",
@@ -146,3 +295,18 @@ def run(pack_id: int, time_limit: int | None = None) -> EvidencePack:
     return pack
 
 
+def run(pack_id: int, time_limit: int | None = None) -> EvidencePack:
+    """Build one pack in this process, recording status and progress on the row as it goes.
+
+    ``time_limit`` (seconds): the build also stops itself at its next step past the limit,
+    should the worker's interruption at the soft time limit have been lost (an exception
+    raised inside a finaliser is only printed)."""
+    pack = start(pack_id)
+    if pack is None:
+        return EvidencePack.objects.get(pk=pack_id)
+    try:
+        path = build(pack, progress_of(pack, time_limit))
+    except Exception as exc:
+        failed(pack.pk, exc, time_limit)
+        raise
+    return finish(pack, path)

@@ -84,6 +84,12 @@ def _g(value, fmt=".2e") -> str:
     return str(value)
 
 
+def as_of(pack: EvidencePack) -> dt.datetime:
+    """The moment a pack's facts are taken at: when its build started (every section of
+    it, whenever it runs, reads the same moment)."""
+    return pack.started_at or timezone.now()
+
+
 def scope_queryset(pack: EvidencePack):
     qs = SafetyFunction.objects.filter(unit__site_id=pack.site_id)
     if pack.scope == EvidencePack.Scope.UNIT:
@@ -105,10 +111,13 @@ class Collected:
     loaded: dict[int, calculations().SifData] = field(default_factory=dict)
 
 
-def collect(pack: EvidencePack, progress=None) -> Collected:
+def collect(pack: EvidencePack, progress=None, sif_ids=None) -> Collected:
+    """The facts of ``pack`` (of its SIFs ``sif_ids`` only, when given: one section)."""
     start, end = pack.period_start, pack.period_end
     t0, t1 = _utc(start), _utc(end, end=True)
     qs = scope_queryset(pack)
+    if sif_ids is not None:
+        qs = qs.filter(pk__in=list(sif_ids))
     out = Collected()
     loaded = calculations().load(qs)
     out.loaded = {d.sif.pk: d for d in loaded}
@@ -261,7 +270,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
                 "as_found": "fail", "as_left": "", "work_done": "", "closed": None})
 
     # Bypasses overlapping the period.
-    now = timezone.now()
+    now = as_of(pack)
     for b in Bypass.objects.filter(sif_id__in=ids, started_at__lte=t1).filter(
             Q(ended_at__isnull=True) | Q(ended_at__gte=t0)).select_related(
             "authorised_by", "requested_by", "closed_by").order_by("started_at"):
@@ -299,7 +308,7 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
                        f"{_iso(fd.retest.performed_at)}" if fd.retest_id else ""),
             "closed_at": _iso(fd.closed_at), "closed_by": person_name(fd.closed_by),
             "closure_note": fd.closure_note,
-            "age_days": findings_rules.age_days(fd, min(end, timezone.localdate()))})
+            "age_days": findings_rules.age_days(fd, min(end, timezone.localdate(now)))})
 
     # Deferrals requested, decided or due in the period.
     plan_sif = {p.pk: d.sif.pk for d in loaded for p in d.plans}
@@ -321,12 +330,19 @@ def collect(pack: EvidencePack, progress=None) -> Collected:
     if progress:
         progress(25, "Overdue periods and design changes loaded")
 
-    for entry in out.sifs:
+    out.tables = tables_of(out.sifs)
+    return out
+
+
+def tables_of(sifs: list[dict]) -> dict[str, list[dict]]:
+    """The rows of the CSV tables, SIF by SIF in the order of ``sifs``."""
+    tables: dict[str, list[dict]] = defaultdict(list)
+    for entry in sifs:
         for key in ("tests", "failures", "demands", "bypasses", "deferrals", "overdue",
                     "changes", "findings"):
             for row in entry[key]:
-                out.tables[key].append({"sif": entry["tag"], **row})
-    return out
+                tables[key].append({"sif": entry["tag"], **row})
+    return tables
 
 
 def _overdue(out, per_sif, ids, plan_sif, start, end):
