@@ -142,6 +142,11 @@ def _kit() -> SimpleNamespace:
                            Paragraph=Paragraph, Spacer=Spacer)
 
 
+def load_fonts_and_styles() -> None:
+    """Register the fonts and make the styles now (else on the first pack of a process)."""
+    _kit()
+
+
 def _cover_story(cover: dict, sifs: list[dict]) -> list:
     """The cover: the pack's facts, the caution, how to read it, the summary."""
     k = _kit()
