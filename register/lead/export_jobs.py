@@ -177,18 +177,43 @@ def job_file(job: ExportJob) -> Path | None:
 # ---------------------------------------------------------------------------------------
 
 
+def _for_a_page(request) -> bool:
+    """True when the asker reads pages (a browser names text/html in its Accept header); a
+    script (no Accept, ``*/*``, ``text/csv``...) is answered in JSON with a status that is
+    not 200, so the offer page is never saved as if it were the file."""
+    return "text/html" in request.headers.get("Accept", "")
+
+
 def offer(request, f: SifFilter, kind: str, fmt: str):
-    """The answer of an export address above the limit: a page offering the job."""
+    """The answer of an export address above the limit: a page offering the job; to a
+    script, 409 with what to do (POST the same address to start the job)."""
+    count, limit = sif_count(f), settings.EXPORT_BACKGROUND_SIFS
+    if not _for_a_page(request):
+        return JsonResponse({
+            "detail": f"This export holds {count} SIFs, more than the {limit} written in "
+                      "one request. POST to the same address to have the file written by "
+                      "a background job; the answer gives the job's status and download "
+                      "addresses.",
+            "sifs": count, "limit": limit, "start": request.get_full_path()}, status=409)
     return render(request, "register/lead/export_offer.html", {
-        "count": sif_count(f), "limit": settings.EXPORT_BACKGROUND_SIFS,
-        "kind": ExportJob.Kind(kind).label, "fmt": fmt, "action": request.get_full_path()})
+        "count": count, "limit": limit, "kind": ExportJob.Kind(kind).label, "fmt": fmt,
+        "action": request.get_full_path()})
 
 
 def start(request, kind: str, fmt: str):
-    """The offer's POST: the job, and on to its page."""
+    """The offer's POST: the job, and on to its page (a script: 202 with its addresses)."""
     from django.shortcuts import redirect
 
     job = queue_export(request.user, kind, fmt, request.GET.urlencode())
+    if not _for_a_page(request):
+        page = reverse("register:export_job", args=[job.pk])
+        resp = JsonResponse({
+            "job": job.pk, "status": job.status, "page": page,
+            "status_url": reverse("register:export_job_status", args=[job.pk]),
+            "download_url": reverse("register:export_job_download", args=[job.pk])},
+            status=202)
+        resp["Location"] = page
+        return resp
     return redirect("register:export_job", job.pk)
 
 

@@ -35,6 +35,7 @@ pytestmark = pytest.mark.django_db
 EXPORTS = [("/sifs/export.csv", "register"), ("/sifs/export.xlsx", "register"),
            ("/sifs/list.csv", "list"), ("/sifs/list.xlsx", "list")]
 QUERY = "q=J-&sort=-tag"
+BROWSER = "text/html,application/xhtml+xml,application/xml;q=0.9,*/*;q=0.8"
 
 
 def _client(user) -> Client:
@@ -58,11 +59,11 @@ def _cells(data: bytes, fmt: str) -> list[list]:
 
 def _ask(client, url, django_capture_on_commit_callbacks):
     """The offer page, then its POST (the job runs in-process once the request commits)."""
-    offer = client.get(url)
+    offer = client.get(url, HTTP_ACCEPT=BROWSER)
     assert offer.status_code == 200 and b"Prepare the file" in offer.content
     before = ExportJob.objects.count()
     with django_capture_on_commit_callbacks(execute=True) as queued:
-        resp = client.post(url)
+        resp = client.post(url, HTTP_ACCEPT=BROWSER)
     assert len(queued) == 1 and ExportJob.objects.count() == before + 1
     job = ExportJob.objects.latest("id")
     assert resp.status_code == 302 and resp.url == f"/sifs/export-jobs/{job.pk}/"
@@ -115,8 +116,8 @@ def test_a_worker_writes_the_file_with_progress_seen_meanwhile(tmp_path, setting
     try:
         c = _client(lead)
         url = "/sifs/export.xlsx"
-        assert b"Prepare the file" in c.get(url).content
-        resp = c.post(url)
+        assert b"Prepare the file" in c.get(url, HTTP_ACCEPT=BROWSER).content
+        resp = c.post(url, HTTP_ACCEPT=BROWSER)
         job = ExportJob.objects.latest("id")
         assert resp.status_code == 302 and job.user == lead
         seen = []
@@ -209,6 +210,28 @@ def test_the_jobs_file_equals_the_direct_export(world, limit, settings, url, kin
     tags = {row[0] if kind == "list" else row[2] for row in _cells(from_job, fmt)
             if len(row) > 2}
     assert {s.tag for s in world["sifs"][:7]} <= tags and "OTHER-1" not in tags
+
+
+@pytest.mark.parametrize("accept", [None, "*/*", "text/csv"])
+def test_a_script_above_the_limit_gets_409_then_202_with_the_jobs_addresses(
+        world, limit, accept, django_capture_on_commit_callbacks):
+    """A script is never handed the offer page as if it were the file."""
+    c = _client(world["lead"])
+    extra = {"HTTP_ACCEPT": accept} if accept else {}
+    url = f"/sifs/export.csv?{QUERY}"
+    refused = c.get(url, **extra)
+    assert refused.status_code == 409 and refused["Content-Type"] == "application/json"
+    body = refused.json()
+    assert (body["sifs"], body["limit"], body["start"]) == (7, 3, url)
+    assert "POST to the same address" in body["detail"]
+    with django_capture_on_commit_callbacks(execute=True):
+        started = c.post(url, **extra)
+    job = ExportJob.objects.latest("id")
+    assert started.status_code == 202 and started["Location"] == f"/sifs/export-jobs/{job.pk}/"
+    assert started.json()["download_url"] == f"/sifs/export-jobs/{job.pk}/download/"
+    status = c.get(started.json()["status_url"]).json()
+    assert status["status"] == "done" and status["sifs_done"] == 7
+    assert b"J-06" in _body(c.get(started.json()["download_url"]))
 
 
 def test_at_the_limit_the_export_is_direct(world, settings):
