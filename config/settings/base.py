@@ -352,6 +352,9 @@ REST_FRAMEWORK["DEFAULT_THROTTLE_RATES"]["password_reset"] = env_str(
     "PASSWORD_RESET_RATE", "5/hour")
 # An API token lasts API_TOKEN_DAYS from its issue; a password change revokes the user's.
 API_TOKEN_DAYS = env_int("API_TOKEN_DAYS", 30)
+# A signing grant (POST /api/signing-grant/ with the password) lets the bulk API sign for
+# SIGNING_GRANT_MINUTES without the password in each request (register/reauth.py); 0: off.
+SIGNING_GRANT_MINUTES = env_int("SIGNING_GRANT_MINUTES", 10)
 # A signed-in session ends after SESSION_IDLE_MINUTES without a request.
 SESSION_COOKIE_AGE = env_int("SESSION_IDLE_MINUTES", 60) * 60
 SESSION_SAVE_EVERY_REQUEST = True

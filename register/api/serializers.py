@@ -337,6 +337,13 @@ class PasswordSerializer(Strict):
     password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256)
 
 
+class SigningGrantSerializer(serializers.Serializer):
+    signing_grant = serializers.CharField(help_text="Send it as signing_grant in bulk "
+                                                    "requests instead of the password.")
+    expires_at = serializers.DateTimeField()
+    lifetime_seconds = serializers.IntegerField()
+
+
 class CorrectionSerializer(Strict):
     reason = serializers.CharField(max_length=5000)
 
@@ -380,12 +387,23 @@ class BulkItemSerializer(Strict):
 
 
 class BulkEnvelopeSerializer(Strict):
-    """The body of a bulk request: the performer's password (every item is signed with it)
+    """The body of a bulk request: the performer's password, or a signing grant from
+    ``POST /api/signing-grant/`` (every item is signed with it; exactly one of the two),
     and the items, each checked on its own by :class:`BulkItemSerializer`."""
 
-    password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256)
+    password = serializers.CharField(write_only=True, trim_whitespace=False, max_length=256,
+                                     required=False)
+    signing_grant = serializers.CharField(write_only=True, trim_whitespace=False,
+                                          max_length=512, required=False)
     results = serializers.ListField(child=serializers.DictField(), allow_empty=False,
                                     max_length=500)
+
+    def validate(self, attrs):
+        if ("password" in attrs) == ("signing_grant" in attrs):
+            raise serializers.ValidationError({"password": (
+                "Send your password or a signing grant (POST /api/signing-grant/), one of "
+                "the two: the results are signed with it.")})
+        return attrs
 
 
 class BulkRequestSerializer(BulkEnvelopeSerializer):

@@ -51,6 +51,7 @@ app_name = "api"
 urlpatterns = [
     path("token/", views.ObtainToken.as_view(), name="token"),
     path("test-results/bulk/", views.BulkTestResults.as_view(), name="bulk-results"),
+    path("signing-grant/", views.SigningGrant.as_view(), name="signing-grant"),
     path("schema/", SpectacularAPIView.as_view(), name="schema"),
     path("docs/", docs, name="docs"),
     path("docs/assets/<path:path>", static_asset(serve), {"document_root": SWAGGER_ASSETS},

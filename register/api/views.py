@@ -32,7 +32,7 @@ from rest_framework.throttling import ScopedRateThrottle
 from rest_framework.views import APIView
 from rest_framework.views import exception_handler as drf_exception_handler
 
-from register import services
+from register import reauth, services
 from register.accounts import tokens
 from register.api import filters
 from register.api import serializers as s
@@ -541,12 +541,50 @@ def _flatten(index: int, detail, prefix="") -> list[dict]:
     return out
 
 
+def _credential(request) -> str:
+    """What a signing grant is bound to: the request's API token, or its session."""
+    if request.auth is not None and getattr(request.auth, "key", None):
+        return f"token:{request.auth.key}"
+    return f"session:{request.session.session_key or ''}"
+
+
+class SigningGrant(APIView):
+    """Re-enter the password once to sign for ``SIGNING_GRANT_MINUTES``.
+
+    ``POST {"password": ...}`` answers ``{"signing_grant", "expires_at",
+    "lifetime_seconds"}``. The grant signs bulk results (``signing_grant`` instead of
+    ``password``) for this user with this token (or session) only, until it expires or the
+    password changes. A wrong password counts towards the same lock as any other
+    re-entered password (400 keyed ``password``)."""
+
+    permission_classes = [LedgerPermission]
+    write_rights = {"post": Action.RECORD_TEST}
+
+    def initial(self, request, *args, **kwargs):
+        self.action = request.method.lower()
+        super().initial(request, *args, **kwargs)
+
+    @extend_schema(request=s.PasswordSerializer, responses={
+        200: s.SigningGrantSerializer,
+        400: OpenApiResponse(description="Missing or wrong password, or too many wrong "
+                                         "ones in a row.")})
+    def post(self, request):
+        ser = s.PasswordSerializer(data=request.data)
+        ser.is_valid(raise_exception=True)
+        grant, expires = reauth.issue_grant(request.user, ser.validated_data["password"],
+                                            _credential(request))
+        return Response({"signing_grant": grant, "expires_at": expires,
+                         "lifetime_seconds": int(reauth.grant_lifetime().total_seconds())})
+
+
 class BulkTestResults(APIView):
     """Signed test results from a maintenance system, all or nothing.
 
-    The body is ``{"password": ..., "results": [items]}``. The token's user is the
+    The body is ``{"password": ..., "results": [items]}``, or ``{"signing_grant": ...,
+    "results": [items]}`` with a grant from :class:`SigningGrant`. The token's user is the
     performer of every item and signs each with the password, checked once per request
-    (a missing or wrong one: 400 keyed ``password``, nothing written). Each item carries
+    (a missing or wrong one: 400 keyed ``password``, nothing written), or with the grant
+    (an expired, revoked or foreign one: 400 keyed ``signing_grant``). Each item carries
     a ``client_key``; sending the same key again with the same content returns the stored
     record (200, nothing written), with other content 409. One bad item rejects the whole
     request; the errors name the item index and the field.
@@ -568,7 +606,12 @@ class BulkTestResults(APIView):
                 "password."]})
         envelope = s.BulkEnvelopeSerializer(data=request.data)
         envelope.is_valid(raise_exception=True)
-        proof = services.confirm_password(request.user, envelope.validated_data["password"])
+        data = envelope.validated_data
+        if "signing_grant" in data:
+            proof = reauth.redeem_grant(request.user, data["signing_grant"],
+                                        _credential(request))
+        else:
+            proof = services.confirm_password(request.user, data["password"])
         items, errors = [], []
         for index, raw in enumerate(envelope.validated_data["results"]):
             ser = s.BulkItemSerializer(data=raw)
@@ -663,10 +706,11 @@ class BulkTestResults(APIView):
             .prefetch_related("results__component", "results__measurements") \
             .in_bulk([pk for *_, pk in outcome])
         created = sum(1 for o in outcome if o[2])
+        # one serializer for all the records: its fields are built once, not per record
+        shown = s.TestRecordSerializer([records[pk] for *_, pk in outcome], many=True).data
         body = {
             "created": created, "existing": len(outcome) - created,
-            "items": [{"index": i, "client_key": k, "created": c,
-                       "record": s.TestRecordSerializer(records[pk]).data}
-                      for i, k, c, pk in outcome],
+            "items": [{"index": i, "client_key": k, "created": c, "record": record}
+                      for (i, k, c, _), record in zip(outcome, shown, strict=True)],
         }
         return Response(body, status=status.HTTP_201_CREATED if created else status.HTTP_200_OK)

@@ -40,6 +40,8 @@ OWN_ONLY = ((200, 200, 200, 200, 200, 401), (404, 404, 404, 404, 404, 401))
 # Evidence packs: the export right (lead, verifier, auditor) at the pack's site.
 EXPORT_READ = ((200, 404, 200, 200, 404, 401), (404, 404, 404, 404, 200, 401))
 EXPORT_CREATES = ((201, 403, 201, 201, 400, 401), (400, 403, 400, 400, 201, 401))
+# A signing grant: whoever may record tests somewhere (it signs nothing by itself).
+GRANTS = ((200, 200, 403, 403, 200, 401),) * 2
 # The lead decides a deferral (and authorises a bypass); at the other site the outsider
 # asked for it himself, and the decider is never the requester.
 DECIDES = ((200, 403, 403, 403, 404, 401), (404, 403, 403, 403, 400, 401))
@@ -148,6 +150,8 @@ TABLE = [
             "kind": "full", "performed_at": _ago(hours=2),
             "results": [{"component_tag": c.tag, "as_found": "pass", "as_left": "pass"}
                         for c in p.components]}]}, FIELD_CREATES),
+    ("signing grant", "post", lambda p, w, r: "/api/signing-grant/",
+     lambda p: {"password": f.PASSWORD}, GRANTS),
     ("demands list", "get", lambda p, w, r: "/api/demands/", None, LIST),
     ("demands detail", "get", lambda p, w, r: f"/api/demands/{p.demand.pk}/", None, READ),
     ("demands create", "post", lambda p, w, r: "/api/demands/", lambda p: {
