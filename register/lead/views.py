@@ -114,24 +114,28 @@ def plant_overview(user, today: dt.date):
     now = timezone.now()
     units = list(PlantUnit.objects.restrict(user).select_related("site"))
     rows = {u.pk: UnitRow(u, u.site) for u in units}
-    sifs = list(not_decommissioned(SafetyFunction.objects.restrict(user))
-                .values_list("pk", "unit_id"))
-    unit_of = dict(sifs)
-    latest = calculations().latest_assessments(list(unit_of))
+    in_view = not_decommissioned(SafetyFunction.objects.restrict(user))
+    sifs = list(in_view.values_list("pk", "unit_id"))
+    # The newest assessment of each SIF as values, with only the part of its detail the
+    # overview reads (the rates, for repeat offenders): decoding every detail whole and
+    # building 5,000 model instances was a third of the page.
+    latest = {sif_id: (meets, flags, rates) for sif_id, meets, flags, rates in
+              calculations().Assessment.objects.latest_of(in_view.values("pk"))
+              .values_list("sif_id", "meets_target", "flags", "detail__rates")}
     for sif_id, unit_id in sifs:
         row = rows[unit_id]
         row.sifs += 1
-        a = latest.get(sif_id)
-        meets = a.meets_target if a else None  # the stored verdict, never recomputed here
+        meets, flags, rates = latest.get(sif_id, (None, [], None))
+        # meets: the stored verdict, never recomputed here
         if meets is None:
             row.unknown += 1
         elif meets:
             row.meets += 1
         else:
             row.fails += 1
-        if a and any(DEMAND_FLAG_TEXT in f for f in a.flags):
+        if any(DEMAND_FLAG_TEXT in f for f in flags or []):
             row.demand_flags += 1
-        offenders = presenters.repeat_offenders(a.detail) if a else []
+        offenders = presenters.repeat_offenders({"rates": rates})
         row.repeat_offenders += len(offenders)
         row.repeat_sifs += bool(offenders)
     plans = TestPlan.objects.restrict(user).filter(sif__life_stage=choices.LifeStage.IN_SERVICE)
