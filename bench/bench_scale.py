@@ -83,27 +83,8 @@ def prepare_plant(sifs: int, history_days: int) -> dict:
     with connection.cursor() as cur:
         cur.execute("SELECT count(*) FROM calcs_assessment a WHERE a.sif_id = %s", [sif.pk])
         have = cur.fetchone()[0]
-        if args.history_days and have < args.history_days:
-            cur.execute("SELECT column_name FROM information_schema.columns WHERE "
-                        "table_name = 'calcs_assessment' AND column_name = 'latest'")
-            flag = bool(cur.fetchall())
-            t = time.perf_counter()
-            cur.execute(
-                "INSERT INTO calcs_assessment (sif_id, computed_at, as_of, inputs_digest, "
-                "trigger, target_pfd_avg, design_pfd_avg, achieved_pfd_avg, verdict, "
-                "meets_target, rate_basis, flags, detail, error"
-                + (", latest" if flag else "") + ") "
-                "SELECT a.sif_id, a.computed_at - g * interval '1 day', "
-                "a.as_of - g * interval '1 day', a.inputs_digest, 'history', "
-                "a.target_pfd_avg, a.design_pfd_avg, a.achieved_pfd_avg, a.verdict, "
-                "a.meets_target, a.rate_basis, a.flags, a.detail, ''"
-                + (", false" if flag else "") + " "
-                "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
-                "JOIN register_plantunit u ON u.id = s.unit_id, generate_series(1, %s) g "
-                "WHERE u.site_id = %s", [args.history_days, site.pk])
-            cur.execute("ANALYZE calcs_assessment")
-            print(f"history: {args.history_days} older assessments per SIF added in "
-                  f"{time.perf_counter() - t:.0f} s")
+    if args.history_days and have < args.history_days:
+        age_plant(site, args.history_days)
     with connection.cursor() as cur:  # the newest per SIF: by its flag where there is one
         cur.execute("SELECT 1 FROM information_schema.columns WHERE "
                     "table_name = 'calcs_assessment' AND column_name = 'latest'")
@@ -111,6 +92,42 @@ def prepare_plant(sifs: int, history_days: int) -> dict:
                   else LATEST)
     return {"site": site, "qs": qs, "sif": sif, "lead": lead, "tech": tech,
             "latest": latest}
+
+
+def age_plant(site, days: int) -> None:
+    """Add ``days`` daily assessments to every SIF of ``site``, older than any it has (a
+    copy of its newest, a day apart): the stored history of that many nightly runs, each
+    of which found the inputs changed (the worst case: an unchanged SIF stores only a
+    weekly heartbeat)."""
+    from django.db import connection
+
+    with connection.cursor() as cur:
+        cur.execute("SELECT column_name FROM information_schema.columns WHERE "
+                    "table_name = 'calcs_assessment' AND column_name = 'latest'")
+        flag = bool(cur.fetchall())
+        t = time.perf_counter()
+        cur.execute(
+            "WITH span AS (SELECT a.sif_id, max(a.computed_at) - min(a.computed_at) AS back "
+            "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
+            "JOIN register_plantunit u ON u.id = s.unit_id WHERE u.site_id = %s "
+            "GROUP BY a.sif_id), "
+            "newest AS (SELECT DISTINCT ON (a.sif_id) a.* FROM calcs_assessment a "
+            "JOIN span ON span.sif_id = a.sif_id ORDER BY a.sif_id, a.computed_at DESC, "
+            "a.id DESC) "
+            "INSERT INTO calcs_assessment (sif_id, computed_at, as_of, inputs_digest, "
+            "trigger, target_pfd_avg, design_pfd_avg, achieved_pfd_avg, verdict, "
+            "meets_target, rate_basis, flags, detail, error"
+            + (", latest" if flag else "") + ") "
+            "SELECT a.sif_id, a.computed_at - span.back - g * interval '1 day', "
+            "a.as_of - span.back - g * interval '1 day', a.inputs_digest, 'history', "
+            "a.target_pfd_avg, a.design_pfd_avg, a.achieved_pfd_avg, a.verdict, "
+            "a.meets_target, a.rate_basis, a.flags, a.detail, ''"
+            + (", false" if flag else "") + " "
+            "FROM newest a JOIN span ON span.sif_id = a.sif_id, generate_series(1, %s) g",
+            [site.pk, days])
+        cur.execute("ANALYZE calcs_assessment")
+    print(f"history: {days} older assessments per SIF added in "
+          f"{time.perf_counter() - t:.0f} s")
 
 
 def bare_connection():
