@@ -32,9 +32,12 @@ GRANT_SALT = "register.reauth.signing-grant"
 class Reauthenticated:
     """Proof that ``user_id`` re-entered the password in this request. A batch (the bulk
     API, a spreadsheet import) checks the password once and signs each record with the
-    proof, instead of hashing the password once per record."""
+    proof, instead of hashing the password once per record. ``how`` says how the person
+    proved it: the password in this request, or a signing grant and when it was issued
+    (for a signature's record in the audit trail)."""
 
     user_id: int
+    how: str = "password"
 
 
 def confirm_password(user, password, *, outcome: str = "nothing was written") -> Reauthenticated:
@@ -99,8 +102,8 @@ def issue_grant(user, password, credential: str) -> tuple[str, dt.datetime]:
                                            "the password with each signature."})
     confirm_password(user, password, outcome="no signing grant was issued")
     issued = timezone.now()
-    grant = signing.dumps({"u": user.pk, "c": _binding(credential), "p": password_stamp(user)},
-                          salt=GRANT_SALT)
+    grant = signing.dumps({"u": user.pk, "c": _binding(credential), "p": password_stamp(user),
+                           "t": issued.isoformat(timespec="seconds")}, salt=GRANT_SALT)
     expires = issued + grant_lifetime()
     log.info("signing grant issued to user %s until %s", user.pk, expires.isoformat())
     return grant, expires
@@ -130,4 +133,4 @@ def redeem_grant(user, grant: str, credential: str, *,
         raise refused("This signing grant was issued to another user or credential")
     if claims.get("p") != password_stamp(user):
         raise refused("The password has changed since this signing grant was issued")
-    return Reauthenticated(user.pk)
+    return Reauthenticated(user.pk, how=f"signing grant issued {claims.get('t')}")

@@ -162,7 +162,10 @@ def test_a_password_change_ends_the_grant(world):
     client = world.client("technician")
     grant = _grant(client)["signing_grant"]
     credential = f"token:{Token.objects.get(user=tech).key}"
-    assert reauth.redeem_grant(tech, grant, credential).user_id == tech.pk
+    proof = reauth.redeem_grant(tech, grant, credential)
+    assert proof.user_id == tech.pk and proof.how.startswith("signing grant issued ")
+    issued = dt.datetime.fromisoformat(proof.how.rsplit(" ", 1)[1])
+    assert abs(timezone.now() - issued) < dt.timedelta(minutes=1)
     tech.set_password("a-new-long-password-2027")
     tech.save()
     # the token went with the old password; so does the grant, whatever carries it
