@@ -30,6 +30,8 @@ def main():
     parser.add_argument("--profile", action="store_true")
     parser.add_argument("--phases", action="store_true")
     parser.add_argument("--top", type=int, default=30)
+    parser.add_argument("--chunk", type=int, default=None,
+                        help="SIFs per engine batch (default: the recompute's own)")
     args = parser.parse_args()
     import django
 
@@ -37,8 +39,13 @@ def main():
     from django.core.management import call_command
     from django.utils import timezone
 
-    from calcs.adapter import recompute_many
+    from calcs.adapter import assessment
     from register.models import SafetyFunction, Site
+
+    def recompute_many(*a, **k):
+        if args.chunk:
+            k["chunk"] = args.chunk
+        return assessment.recompute_many(*a, **k)
 
     call_command("migrate", verbosity=0)
     code = f"scale{args.sifs}"
@@ -83,14 +90,17 @@ def phases(run) -> list[tuple[str, float]]:
         (assessment, "latest_assessments", "newest assessments"),
         (assessment, "_full_due_dates", "due dates"),
         (assessment, "inputs_digest", "inputs digest"),
-        (assessment, "assess", "assess (per SIF, summed)"),
+        (assessment, "_begin", "assessments up to the averages (per SIF)"),
         (assessment, "design_input", "  design input"),
         (assessment.eng_design, "evaluate_sif", "  design figures"),
         (assessment, "_schedule_check", "  schedule self-check"),
         (assessment, "history_input", "  history input"),
         (history, "prepare", "  history prepared"),
-        (observed, "achieved_and_observed_windows", "  achieved and observed windows"),
-        (history.PreparedHistory, "projection", "  projection"),
+        (history.PreparedHistory, "windows_request", "  windows compiled, nodes laid out"),
+        (observed, "observed_windows", "  observed windows"),
+        (history.PreparedHistory, "projection_request", "  projection compiled"),
+        (assessment, "_evaluate", "averages, one batch per chunk"),
+        (assessment._Started, "finish", "assessments completed (per SIF)"),
         (assessment, "_store", "store"),
     ]
     took: dict[str, float] = {}

@@ -60,6 +60,10 @@ def _digest(payload) -> str:
 #: snapshot is this old; then a new one is stored (a point of the trend).
 HEARTBEAT = dt.timedelta(days=7)
 
+#: SIFs a recompute evaluates in one batch of the engine (memory grows with it; the
+#: results do not depend on it).
+CHUNK = 250
+
 
 @functools.cache
 def _attnames(model, skip: frozenset) -> tuple[str, ...]:
@@ -111,6 +115,54 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
            digest: str | None = None) -> Assessment:
     """Run design, achieved and projected calculations for one SIF. Never raises for bad
     records: problems become flags, and an engine error is kept on the assessment."""
+    return assess_many([(d, rates, type_stats, due_on, digest)], as_of, trigger=trigger)[0]
+
+
+def assess_many(jobs, as_of: dt.datetime, *, trigger: str = "") -> list[Assessment]:
+    """:func:`assess` for each (SifData, rates, type_stats, due_on, digest) job, the
+    history model of all of them evaluated together (one batch of the engine). A job that
+    raises something other than an engine error raises here (after none is stored)."""
+    started = [_begin(d, as_of, rates, stats, due_on, trigger, digest)
+               for d, rates, stats, due_on, digest in jobs]
+    return [st.finish(res) for st, res in zip(started, _evaluate(started))]
+
+
+def _evaluate(started: list[_Started]) -> list:
+    """The results of each started assessment's requests, all evaluated in one batch."""
+    requests = [r for st in started if st.requests for r in st.requests]
+    results = iter(eng_hist.evaluate_requests(requests))
+    return [[next(results) for _ in st.requests] if st.requests else None for st in started]
+
+
+class _Started:
+    """One SIF's assessment up to the history model's averages (:func:`_begin`); ``finish``
+    completes it with the results of its requests (windows, then the projection)."""
+
+    def __init__(self, a, flags, detail, requests=None, finish=None, digest=None):
+        self.a, self.flags, self.detail, self.requests = a, flags, detail, requests
+        self._finish, self._digest = finish, digest
+
+    def finish(self, results) -> Assessment:
+        if self._finish is not None:
+            try:
+                self._finish(results)
+            except EngineError as exc:
+                _failed(self.a, self.flags, exc, self._digest)
+        self.a.flags = self.flags
+        self.a.detail = self.detail
+        return self.a
+
+
+def _failed(a: Assessment, flags: list[str], exc: EngineError, digest: str | None) -> None:
+    a.error = str(exc)
+    a.verdict = eng_verdict.judge(target_sil=a.sif.target_sil, error=str(exc)).as_dict()
+    a.meets_target = None
+    flags.append(f"Could not be calculated: {exc}")
+    a.inputs_digest = digest or _digest({"error": str(exc), "sif": a.sif.pk})
+
+
+def _begin(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats,
+           due_on: dt.date | None, trigger: str, digest: str | None) -> _Started:
     sif = d.sif
     a = Assessment(sif=sif, computed_at=timezone.now(), as_of=as_of, trigger=trigger[:40],
                    rate_basis=rates.basis, target_sil=sif.target_sil)
@@ -172,8 +224,25 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         if in_service and _aware(in_service) < end:
             windows.append((_aware(in_service), end))
         prepared = eng_hist.prepare(hist, end)  # once: every window and the projection
-        results, observed = eng_obs.achieved_and_observed_windows(hist, windows, as_of=end,
-                                                                  prepared=prepared)
+        requests = [prepared.windows_request(windows)]
+        observed = eng_obs.observed_windows(hist, windows, as_of=end, prepared=prepared)
+        projection_error = None
+        if due_on:
+            try:
+                due_at = max(_aware(due_on), end)
+                full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
+                if any(b.ended_at is None for b in d.bypasses):
+                    prepared = eng_hist.prepare(
+                        history_input(d, rates, assume_closed_after=end), end)
+                requests.append(prepared.projection_request(due_at, interval_hours=full_t1))
+            except EngineError as exc:  # raised where the projection's figures are used
+                projection_error = exc
+    except EngineError as exc:
+        _failed(a, flags, exc, digest)
+        return _Started(a, flags, detail)
+
+    def finish(evaluated):
+        results = evaluated[0]
         last12, obs12 = results[0], observed[0]
         a.achieved_pfd_avg = last12.pfd_avg
         a.observed_unavailability = obs12.unavailability
@@ -191,12 +260,9 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         flags.extend(last12.flags)
         projection_missing = None
         if due_on:
-            due_at = max(_aware(due_on), end)
-            full_t1 = min(s.proof_test_interval_hours for s in design.subsystems)
-            if any(b.ended_at is None for b in d.bypasses):
-                prepared = eng_hist.prepare(history_input(d, rates, assume_closed_after=end),
-                                            end)
-            proj = prepared.projection(due_at, interval_hours=full_t1)
+            if projection_error is not None:
+                raise projection_error
+            proj = evaluated[1][0]
             a.projected_pfd_avg = proj.pfd_avg
             detail["projection"] = {"next_test_on": due_on.isoformat(),
                                     "horizon_end": proj.window_end.isoformat()}
@@ -230,15 +296,8 @@ def assess(d: SifData, as_of: dt.datetime, rates: RateTable, type_stats, *,
         a.verdict = verdict.as_dict()
         a.meets_target = verdict.meets
         a.inputs_digest = digest or inputs_digest(d, rates, type_stats, due_on)
-    except EngineError as exc:
-        a.error = str(exc)
-        a.verdict = eng_verdict.judge(target_sil=sif.target_sil, error=str(exc)).as_dict()
-        a.meets_target = None
-        flags.append(f"Could not be calculated: {exc}")
-        a.inputs_digest = digest or _digest({"error": str(exc), "sif": sif.pk})
-    a.flags = flags
-    a.detail = detail
-    return a
+
+    return _Started(a, flags, detail, requests, finish, digest)
 
 
 def _episodes_detail(d: SifData, since: eng_obs.ObservedResult,
@@ -374,8 +433,8 @@ def observed_demand_flag(d: SifData, as_of: dt.datetime) -> str | None:
     return None
 
 
-def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = None
-                   ) -> list[Assessment]:
+def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = None,
+                   chunk: int = CHUNK) -> list[Assessment]:
     """Recompute every SIF in the queryset and store what changed; return the newest
     assessment of each.
 
@@ -383,9 +442,10 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     recomputed (that assessment is returned). Otherwise a new snapshot is stored when the
     inputs or the verdict changed or the newest is older than ``HEARTBEAT``; else the
     newest is replaced (see ``_store``). One bad SIF never stops the others: its assessment
-    carries the error instead.
+    carries the error instead. The engine evaluates ``chunk`` SIFs at a time in one batch.
     """
     as_of = as_of or timezone.now()
+    chunk = max(1, int(chunk))
     loaded = load(sif_queryset)
     if not loaded:
         return []
@@ -396,28 +456,51 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     rates = {sid: rate_table(sites[sid], stats_by_site[sid], as_of.date()) for sid in site_ids}
     dues = _full_due_dates(sif_queryset, as_of.date())
     previous = latest_assessments([d.sif.pk for d in loaded])
-    out, fresh = [], []
-    for d in loaded:
-        sid, prev = d.sif.unit.site_id, previous.get(d.sif.pk)
+    out: list = []
+    fresh: list[Assessment] = []
+    for lo in range(0, len(loaded), chunk):
+        started: list[tuple[int, SifData, _Started | Exception]] = []
+        for d in loaded[lo:lo + chunk]:
+            sid, prev = d.sif.unit.site_id, previous.get(d.sif.pk)
+            try:
+                digest = inputs_digest(d, rates[sid], stats_by_site[sid], dues.get(d.sif.pk))
+            except Exception:
+                digest = None
+            if prev is not None and digest and prev.inputs_digest == digest and (
+                    prev.as_of.date() == as_of.date()):
+                out.append(prev)
+                continue
+            try:
+                st = _begin(d, as_of, rates[sid], stats_by_site[sid], dues.get(d.sif.pk),
+                            trigger, digest)
+            except Exception as exc:
+                st = exc
+            started.append((len(out), d, st))
+            out.append(None)
+        ok = [st for _, _, st in started if isinstance(st, _Started)]
         try:
-            digest = inputs_digest(d, rates[sid], stats_by_site[sid], dues.get(d.sif.pk))
-        except Exception:
-            digest = None
-        if prev is not None and digest and prev.inputs_digest == digest and (
-                prev.as_of.date() == as_of.date()):
-            out.append(prev)
-            continue
-        try:
-            a = assess(d, as_of, rates[sid], stats_by_site[sid],
-                       due_on=dues.get(d.sif.pk), trigger=trigger, digest=digest)
-        except Exception as exc:
-            log.exception("assessment of %s failed", d.sif.tag)
-            a = Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
-                           trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
-                           flags=[f"Could not be calculated: {exc}"],
-                           inputs_digest=_digest({"error": str(exc)}))
-        out.append(a)
-        fresh.append(a)
+            evaluated = dict(zip(map(id, ok), _evaluate(ok)))
+        except Exception:  # one SIF fails the batch: each on its own, to find it
+            evaluated = {}
+            for st in ok:
+                try:
+                    evaluated[id(st)] = _evaluate([st])[0]
+                except Exception as exc:
+                    evaluated[id(st)] = exc
+        for k, d, st in started:
+            try:
+                res = evaluated.get(id(st)) if isinstance(st, _Started) else st
+                if isinstance(res, Exception):
+                    raise res
+                a = st.finish(res)
+            except Exception as exc:
+                log.exception("assessment of %s failed", d.sif.tag)
+                a = Assessment(sif=d.sif, computed_at=timezone.now(), as_of=as_of,
+                               trigger=trigger[:40], error=f"{type(exc).__name__}: {exc}",
+                               flags=[f"Could not be calculated: {exc}"],
+                               inputs_digest=_digest({"error": str(exc)}))
+            out[k] = a
+            fresh.append(a)
     _store(fresh, previous)
     from register.inbox.notices import notify_verdict_changes
 

@@ -120,21 +120,21 @@ class RateTable:
         return rate if rate and rate > 0 else comp.lambda_du
 
     def device(self, comp: Component, events: list) -> eng_field.DeviceRate:
-        """The component's own rate (computed once per component, history and figures)."""
+        """The component's own rate: a function of its type's rate, its failures and its
+        hours in service, computed once for each such triple (components installed
+        together share it)."""
         failures = sum(1 for e in events if e.failed)
-        key = (comp.pk, failures)
-        if key not in self._devices:
-            self._devices[key] = self._device(comp, failures)
-        return self._devices[key]
-
-    def _device(self, comp: Component, failures: int) -> eng_field.DeviceRate:
         hours = 0.0
         if self.as_of is not None and comp.in_service_on:
             hours = max(0.0, (self.as_of - comp.in_service_on).days * 24.0)
         base = self.type_rate(comp)
         if base <= 0:
             base = 1e-12  # a rate of zero cannot serve as a prior; effectively zero
-        return eng_field.device_rate(base, failures, hours)
+        key = (base, failures, hours)
+        found = self._devices.get(key)
+        if found is None:
+            found = self._devices[key] = eng_field.device_rate(base, failures, hours)
+        return found
 
 
 def _mean(values):

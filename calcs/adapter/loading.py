@@ -126,9 +126,10 @@ def load(sif_queryset) -> list[SifData]:
     # streamed query over the largest table, plain values.
     signed = (TestRecord.objects.filter(in_force(), sif__in=sif_queryset.values("pk"))
               .exclude(kind=choices.TestKind.SIGN_OFF))
+    # a few SIFs (a recompute after a record was signed): one round trip each, no cursor
+    stream = len(data) > 50
     records = {pk: (at, kind, plan_id) for pk, at, kind, plan_id in
-               signed.values_list("pk", "performed_at", "kind", "plan_id").iterator(
-                   chunk_size=5000)}
+               _rows(signed.values_list("pk", "performed_at", "kind", "plan_id"), stream)}
     rows = (
         ComponentResult.objects.filter(in_force("record__"),
                                        record__sif__in=sif_queryset.values("pk"))
@@ -141,7 +142,7 @@ def load(sif_queryset) -> list[SifData]:
     credits_demands = {sif_id: any(p.demand_counts_as_test for p in d.plans)
                        for sif_id, d in data.items()}
     failing = (choices.Verdict.FAIL, choices.FailureMode.DANGEROUS_UNDETECTED)
-    for comp_id, record_id, mode, as_found in rows.iterator(chunk_size=5000):
+    for comp_id, record_id, mode, as_found in _rows(rows, stream):
         cd = comp_of.get(comp_id)
         if cd is None or record_id not in records:
             continue
@@ -154,6 +155,12 @@ def load(sif_queryset) -> list[SifData]:
     for cd in comp_of.values():
         cd.events.sort(key=lambda e: e.at)
     return [data[s.pk] for s in sifs]
+
+
+def _rows(queryset, stream: bool):
+    """The rows of ``queryset``: streamed in chunks through a server-side cursor, or
+    fetched at once."""
+    return queryset.iterator(chunk_size=5000) if stream else queryset
 
 
 def _plan_coverage(data: dict[int, SifData], comp_of: dict[int, ComponentData],

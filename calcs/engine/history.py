@@ -65,6 +65,7 @@ from typing import Any
 
 import numpy as np
 
+from calcs.engine.batch import evaluate_many
 from calcs.engine.errors import InputError
 from calcs.engine.units import check_rate
 from calcs.engine.voting import parse_voting
@@ -194,6 +195,12 @@ class TestEvent:
     replaced: bool = False
 
     def __post_init__(self) -> None:
+        cov = self.coverage
+        if (type(self.at) is datetime and self.kind in TEST_KINDS
+                and self.failed.__class__ is bool and self.replaced.__class__ is bool
+                and self.restore_hours is None
+                and (cov is None or (type(cov) is float and 0.0 <= cov <= 1.0))):
+            return  # the common case, valid (the checks below would pass)
         _check_date(self.at, "at")
         if self.kind not in TEST_KINDS:
             raise InputError("kind", f"must be one of {', '.join(TEST_KINDS)}, got {self.kind!r}")
@@ -392,6 +399,18 @@ class _Compiled:
     flags: list[str] = field(default_factory=list)
 
 
+def sorted_unique(values: np.ndarray) -> np.ndarray:
+    """``np.unique`` of a 1-D float array (sorted, each value once), without its overhead
+    (most arrays here have a handful of values)."""
+    x = np.sort(values)
+    if x.size < 2:
+        return x
+    keep = np.empty(x.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(x[1:], x[:-1], out=keep[1:])
+    return x[keep]
+
+
 def _merge(starts: np.ndarray, ends: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
     """Merge intervals; return merged starts, ends and how many overlaps were joined."""
     if starts.size == 0:
@@ -577,7 +596,7 @@ def _segments(lam: float, bounds, renew_all: np.ndarray, kept_t: np.ndarray,
         rate = lam * (hi - lo)
         if rate <= 0.0:
             continue
-        r = np.unique(np.concatenate([renew_all, kept_t[kept_c >= hi - 1e-12]]))
+        r = sorted_unique(np.concatenate([renew_all, kept_t[kept_c >= hi - 1e-12]]))
         segs.append((rate, r))
         events.append(r)
     return segs
@@ -631,7 +650,7 @@ def _finish(p: _Prepared, end_h: float | None,
         flags.append(f"{overlaps} overlapping bypass record(s) merged; "
                      "the overlapping time is counted once")
     events.extend((ms, me))
-    return _Compiled(cgroups, ms, me, np.unique(np.concatenate(events)), p.start_h,
+    return _Compiled(cgroups, ms, me, sorted_unique(np.concatenate(events)), p.start_h,
                      list(dict.fromkeys(flags)))
 
 
@@ -831,16 +850,11 @@ def _evaluate(c: _Compiled, t: np.ndarray, left: bool = False, *,
               n_right: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Return (Q_sif(t), Q_group(t) as (G, P) array): the value just after each point
     (right limit), or just before it with ``left``; with ``n_right``, just after the
-    first ``n_right`` points and just before the rest (one pass for both)."""
+    first ``n_right`` points and just before the rest (one pass for both). A batch of one
+    (:func:`calcs.engine.batch.evaluate_many`)."""
     if n_right is None:
         n_right = 0 if left else t.size
-    with np.errstate(divide="ignore", invalid="ignore"):
-        logs = np.array([_log_group_survival(g, t, n_right) for g in c.groups])
-        q_groups = -np.expm1(logs)
-        q_sif = -np.expm1(logs.sum(axis=0))
-    if c.byp_s.size:
-        q_sif[_in_intervals(t, c.byp_s, c.byp_e, n_right)] = 1.0
-    return q_sif, q_groups
+    return evaluate_many([(c, t, n_right)])[0]
 
 
 def _gauss(order: int) -> tuple[np.ndarray, np.ndarray]:
@@ -851,11 +865,12 @@ def _gauss(order: int) -> tuple[np.ndarray, np.ndarray]:
 
 def _nodes(events: np.ndarray, a: float, b: float, order: int,
            max_piece: float) -> tuple[np.ndarray, np.ndarray]:
-    inner = events[(events > a) & (events < b)]
+    inner = events[events.searchsorted(a, "right"):events.searchsorted(b, "left")]  # sorted
     edges = np.concatenate([[a], inner, [b]])
-    lengths = np.diff(edges)
-    nsub = np.maximum(1, np.ceil(lengths / max_piece).astype(int))
-    if np.any(nsub > 1):
+    lengths = edges[1:] - edges[:-1]
+    nsub = np.ceil(lengths / max_piece).astype(int)
+    np.maximum(nsub, 1, out=nsub)
+    if nsub.max() > 1:
         starts = np.repeat(edges[:-1], nsub)
         sub = np.repeat(lengths / nsub, nsub)
         k = np.arange(nsub.sum()) - np.repeat(np.cumsum(nsub) - nsub, nsub)
@@ -898,17 +913,41 @@ def _average(c: _Compiled, a: float, b: float, order: int, max_piece: float,
 
 def _averages(c: _Compiled, windows: Sequence[tuple[float, float, bool, list[str]]],
               order: int, max_piece: float) -> list[HistoryResult]:
-    """The average over each (start, end, aware, flags) window, every window's nodes
-    evaluated in one pass and every distinct end in another."""
-    spans = [_window(c, a, b, flags) for a, b, _, flags in windows]
-    nodes = [_nodes(c.events, a, b, order, max_piece) for a, b in spans]
-    cuts = np.cumsum([0] + [t.size for t, _ in nodes])
-    ends = sorted({b for _, b in spans})
-    q_sif, q_groups = _evaluate(c, np.concatenate([t for t, _ in nodes] + [np.array(ends)]),
-                                n_right=int(cuts[-1]))  # the nodes, then just before each end
+    """The average over each (start, end, aware, flags) window (see :class:`Request`)."""
+    return evaluate_requests([Request(c, windows, order, max_piece)])[0]
+
+
+class Request:
+    """Averages of one compiled SIF over (start, end, aware, flags) windows, ready to be
+    evaluated with others (:func:`evaluate_requests`): the windows are checked (an
+    InputError is raised here, not in the batch) and their quadrature nodes laid out,
+    every window's nodes first and then every distinct end (the value just before it)."""
+
+    __slots__ = ("c", "cuts", "ends", "meta", "order", "spans", "t", "weights")
+
+    def __init__(self, c: _Compiled, windows: Sequence[tuple[float, float, bool, list[str]]],
+                 order: int = 8, max_piece: float = 2190.0):
+        self.c, self.order = c, int(order)
+        self.spans = [_window(c, a, b, flags) for a, b, _, flags in windows]
+        self.meta = [(aware, flags) for _, _, aware, flags in windows]
+        nodes = [_nodes(c.events, a, b, int(order), float(max_piece)) for a, b in self.spans]
+        self.weights = [w for _, w in nodes]
+        self.cuts = np.cumsum([0] + [t.size for t, _ in nodes])
+        self.ends = sorted({b for _, b in self.spans})
+        self.t = np.concatenate([t for t, _ in nodes] + [np.array(self.ends)])
+
+
+def evaluate_requests(requests: Sequence[Request]) -> list[list[HistoryResult]]:
+    """The results of each request, every node of every request evaluated together."""
+    values = evaluate_many([(r.c, r.t, int(r.cuts[-1]), r.order) for r in requests])
+    return [_results(r, q_sif, q_groups) for r, (q_sif, q_groups) in zip(requests, values)]
+
+
+def _results(r: Request, q_sif: np.ndarray, q_groups: np.ndarray) -> list[HistoryResult]:
+    c, cuts = r.c, r.cuts
     end_q = q_sif[cuts[-1]:]
     out = []
-    for k, ((a, b), (_, w), (_, _, aware, flags)) in enumerate(zip(spans, nodes, windows)):
+    for k, ((a, b), w, (aware, flags)) in enumerate(zip(r.spans, r.weights, r.meta)):
         lo, hi = cuts[k], cuts[k + 1]
         span = b - a
         out.append(HistoryResult(
@@ -919,7 +958,7 @@ def _averages(c: _Compiled, windows: Sequence[tuple[float, float, bool, list[str
             groups={g.name: float(np.dot(w, q_groups[i, lo:hi]) / span)
                     for i, g in enumerate(c.groups)},
             bypass_hours=_bypass_hours(c, a, b),
-            pfd_at_end=float(end_q[ends.index(b)]),
+            pfd_at_end=float(end_q[r.ends.index(b)]),
             flags=tuple(flags),
         ))
     return out
@@ -986,6 +1025,13 @@ class PreparedHistory:
     def windows(self, windows: Sequence[tuple[Any, Any]], *, order: int = 8,
                 max_piece_hours: float = 2190.0) -> list[HistoryResult]:
         """:meth:`achieved` for each (start, end) window (evaluated together)."""
+        return evaluate_requests([self.windows_request(windows, order=order,
+                                                       max_piece_hours=max_piece_hours)])[0]
+
+    def windows_request(self, windows: Sequence[tuple[Any, Any]], *, order: int = 8,
+                        max_piece_hours: float = 2190.0) -> Request:
+        """:meth:`windows` as a :class:`Request`, to be evaluated with other SIFs'
+        (:func:`evaluate_requests`)."""
         c = self.compiled()
         spans = []
         for start, end in windows:
@@ -993,12 +1039,20 @@ class PreparedHistory:
             b = _hours(end, "window_end")
             a = _resolve_start(c, start, _as_utc_naive(end, "window_end"))
             spans.append((a, b, _is_aware(end), list(c.flags)))
-        return _averages(c, spans, int(order), float(max_piece_hours))
+        return Request(c, spans, int(order), float(max_piece_hours))
 
     def projection(self, next_test_at: Any, horizon_end: Any = None, *,
                    interval_hours: float | None = None, coverage: float | None = None,
                    order: int = 8, max_piece_hours: float = 2190.0) -> HistoryResult:
         """See :func:`projection` (from the evaluation date)."""
+        return evaluate_requests([self.projection_request(
+            next_test_at, horizon_end, interval_hours=interval_hours, coverage=coverage,
+            order=order, max_piece_hours=max_piece_hours)])[0][0]
+
+    def projection_request(self, next_test_at: Any, horizon_end: Any = None, *,
+                           interval_hours: float | None = None, coverage: float | None = None,
+                           order: int = 8, max_piece_hours: float = 2190.0) -> Request:
+        """:meth:`projection` as a :class:`Request` (one window)."""
         as_h = self.as_of_h
         nt_h = _hours(next_test_at, "next_test_at")
         if nt_h < as_h:
@@ -1033,7 +1087,7 @@ class PreparedHistory:
         if nt_h >= hz_h:
             flags.append(f"the next test ({_fmt(nt_h)}) falls after the horizon end; "
                          "it does not affect this projection")
-        return _average(c, as_h, hz_h, int(order), float(max_piece_hours), aware, flags)
+        return Request(c, [(as_h, hz_h, aware, flags)], int(order), float(max_piece_hours))
 
 
 def prepare(sif: SifHistory, as_of: Any) -> PreparedHistory:

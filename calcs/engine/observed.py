@@ -252,7 +252,8 @@ def _evaluate_many(sif: _h.SifHistory, prepared, windows, order: int = 8,
         bounds = [a, b]
         for ep in eps:
             bounds += [ep.a, ep.b, *ep.restored.values()]
-        events = np.unique(np.concatenate([np.array(bounds, dtype=float), c.byp_s, c.byp_e]))
+        events = _h.sorted_unique(np.concatenate([np.array(bounds, dtype=float), c.byp_s,
+                                                  c.byp_e]))
         t, w = _h._nodes(events, a, b, int(order), float(max_piece_hours))
         spans.append((a, b, t, w, flags, _h._is_aware(window_end)))
     t = np.concatenate([x[2] for x in spans])
