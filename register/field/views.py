@@ -4,6 +4,7 @@ countersigning, corrections, attachments. Every write goes through ``register.se
 
 from __future__ import annotations
 
+import contextlib
 import re
 
 from django.contrib import messages
@@ -22,6 +23,7 @@ from django.views.decorators.http import require_GET, require_POST
 from register import choices, services
 from register.audit.chain import attachment_altered
 from register.calculations import calculations
+from register.days import today
 from register.field.forms import (
     ComponentForm,
     CorrectionForm,
@@ -32,7 +34,7 @@ from register.field.forms import (
 from register.models import Attachment, Component, TestPlan, TestRecord
 from register.permissions import Action, can, can_somewhere, require
 from register.rules import steps_for
-from register.schedule.due import live_statuses
+from register.schedule.due import live_statuses, with_state
 
 PER_PAGE = 20
 TOKEN_RE = re.compile(r"^[0-9a-f]{32}$")
@@ -48,22 +50,11 @@ def _state_badge(state: str) -> dict:
             "style": choices.PLAN_STATE_STYLE[choices.PlanState(state)]}
 
 
-def _loaded(obj, path: str) -> bool:
-    """Each object along ``path`` ("sif__unit__site") is already loaded with ``obj``."""
-    for name in path.split("__"):
-        if not obj._meta.get_field(name).is_cached(obj):
-            return False
-        obj = getattr(obj, name)
-    return True
-
-
 def _plan_status(plan: TestPlan | None):
-    """The plan's live status (the rule's, ``live_statuses``); the plan in hand is used
-    when its site is loaded with it, else it is read again."""
+    """The plan's live status (the rule's, ``live_statuses``: one query)."""
     if plan is None:
         return None
-    plans = [plan] if _loaded(plan, "sif__unit__site") else TestPlan.objects.filter(pk=plan.pk)
-    st = live_statuses(plans)[plan.pk]
+    st = live_statuses(TestPlan.objects.filter(pk=plan.pk))[plan.pk]
     return {"due_on": st.due_on, "days_overdue": st.days_overdue, **_state_badge(st.state)}
 
 
@@ -181,13 +172,24 @@ def _apply_service_errors(exc: ValidationError, header, used_forms):
             header.add_error(None, msgs)
 
 
-def _after_sign_message(record: TestRecord, before) -> str:
-    """``record``: as ``sign_record`` returned it (its plan and SIF's site loaded)."""
-    text = "Signed. The record is now read-only and waits for a verifier's countersignature."
+def _refreshed_plan_status(record: TestRecord):
+    """The plan's due date and state as the refresh after the signing's commit has just
+    written them (``followup.after_test_change``, which runs first): one read of the
+    plan's columns, no second computation from the records."""
     plan = record.plan
-    if plan is not None and plan.sif_id == record.sif_id:
-        plan.sif = record.sif  # loaded with its unit and site
-    after = _plan_status(plan)
+    if plan is None:
+        return None
+    due_on, state = with_state(TestPlan.objects.filter(pk=plan.pk),
+                               as_of=today(record.sif.unit.site)).values_list(
+        "next_due_on", "state").get()
+    return {"due_on": due_on, **_state_badge(state)}
+
+
+def _after_sign_message(record: TestRecord, before) -> str:
+    """``record``: as ``sign_record`` returned it (its plan and SIF's site loaded); called
+    once the signing has committed."""
+    text = "Signed. The record is now read-only and waits for a verifier's countersignature."
+    after = _refreshed_plan_status(record)
     if after and after["due_on"]:
         text += f" The next test of this plan is due {after['due_on']:%Y-%m-%d} ({after['label']})"
         if before and before["due_on"] and before["due_on"] != after["due_on"]:
@@ -226,7 +228,9 @@ def _entry(request, *, sif, plan, record=None):
                           "performed_at": header.cleaned_data["performed_at"],
                           "remarks": header.cleaned_data["remarks"], "results": results}
                 try:
-                    with transaction.atomic():
+                    # The draft and its files are written together. Without files the
+                    # services' own blocks suffice: a failed write leaves nothing.
+                    with transaction.atomic() if checked else contextlib.nullcontext():
                         if record is None and TOKEN_RE.match(token):
                             # A form sent twice saves once (the one rule, also the API's).
                             saved, created = services.save_draft_once(client_key=token,
@@ -270,7 +274,9 @@ def _entry(request, *, sif, plan, record=None):
                         messages.error(request, " ".join(exc.messages)
                                        + " Your entries are saved as a draft.")
                         return redirect(reverse("field:record_edit", args=[saved.pk]) + "#sign")
-                    messages.success(request, _after_sign_message(signed, before))
+                    # After the commit and the refresh of the plan it triggers.
+                    transaction.on_commit(lambda: messages.success(
+                        request, _after_sign_message(signed, before)))
                     return redirect("field:record_detail", pk=signed.pk)
     if stale:
         record.refresh_from_db()

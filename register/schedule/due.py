@@ -44,8 +44,10 @@ import math
 from collections import defaultdict
 from dataclasses import dataclass, field
 
+from django.core.exceptions import EmptyResultSet
 from django.db import connection, transaction
 from django.db.models import Case, CharField, Max, Q, Value, When
+from django.utils import timezone
 
 from register import choices
 from register.days import end_of_day, local_date, today
@@ -56,6 +58,7 @@ from register.models import (
     Demand,
     Site,
     TestPlan,
+    TestRecord,
     in_force,
 )
 
@@ -590,6 +593,29 @@ def on_time_by_timelines(plans, as_of: dt.date, days: int = 365) -> OnTime:
     return out
 
 
+def _scope_sql() -> str:
+    """Rule 1 in SQL, over a CTE ``pl`` (id, sif_id, kind, dem, tz of each plan): each
+    plan's components (plan_id, comp_id, started: its in-service date, tz) with the kinds
+    rule 2 credits for the plan (kinds); parameters: ``_scope_params()``."""
+    t = {m: connection.ops.quote_name(m._meta.db_table) for m in (
+        Component, TestPlan.components.through)}
+    return f"""  -- rule 1, with the kinds rule 2 credits for the plan
+        SELECT pl.id AS plan_id, c.id AS comp_id, c.in_service_on AS started, pl.tz,
+               CASE WHEN pl.kind = %s THEN %s::text[] ELSE %s::text[] END
+               || CASE WHEN pl.dem THEN %s::text[] ELSE '{{}}'::text[] END AS kinds
+        FROM pl JOIN register_subsystem b ON b.sif_id = pl.sif_id
+        JOIN {t[Component]} c ON c.subsystem_id = b.id
+        WHERE NOT EXISTS (SELECT 1 FROM {t[TestPlan.components.through]} n
+                          WHERE n.testplan_id = pl.id)
+           OR EXISTS (SELECT 1 FROM {t[TestPlan.components.through]} n
+                      WHERE n.testplan_id = pl.id AND n.component_id = c.id)"""
+
+
+def _scope_params() -> list:
+    return [choices.TestKind.PARTIAL.value, [k.value for k in PARTIAL_CREDIT],
+            [k.value for k in FULL_CREDIT], [choices.TestKind.DEMAND.value, REAL_DEMAND]]
+
+
 def _on_time_sql(ids: list[int], longest: int, start: dt.date, end: dt.date):
     """Rows (plan, SIF, interval, due dates counted, met on time) of every plan in ``ids``
     (``longest``: the longest of their intervals, months), computed as if it had one version and no deferral.
@@ -623,6 +649,7 @@ def _on_time_sql(ids: list[int], longest: int, start: dt.date, end: dt.date):
     dem_sql, dem_params = demands.query.sql_with_params()
     t = {m: connection.ops.quote_name(m._meta.db_table) for m in (
         TestPlan, TestPlan.components.through, Component, Site)}
+    scope_sql = _scope_sql()
     sql = f"""
     WITH pl AS (
         SELECT p.id, p.sif_id, p.kind, p.demand_counts_as_test AS dem, p.interval_months AS iv,
@@ -632,16 +659,7 @@ def _on_time_sql(ids: list[int], longest: int, start: dt.date, end: dt.date):
         JOIN register_plantunit u ON u.id = s.unit_id
         JOIN {t[Site]} st ON st.id = u.site_id
         WHERE p.id = ANY(%s)
-    ), scope AS (  -- rule 1, with what rule 2 asks of the plan
-        SELECT pl.id AS plan_id, c.id AS comp_id, c.in_service_on AS started, pl.tz,
-               CASE WHEN pl.kind = %s THEN %s::text[] ELSE %s::text[] END
-               || CASE WHEN pl.dem THEN %s::text[] ELSE '{{}}'::text[] END AS kinds
-        FROM pl JOIN register_subsystem b ON b.sif_id = pl.sif_id
-        JOIN {t[Component]} c ON c.subsystem_id = b.id
-        WHERE NOT EXISTS (SELECT 1 FROM {t[TestPlan.components.through]} n
-                          WHERE n.testplan_id = pl.id)
-           OR EXISTS (SELECT 1 FROM {t[TestPlan.components.through]} n
-                      WHERE n.testplan_id = pl.id AND n.component_id = c.id)
+    ), scope AS ({scope_sql}
     ), rec (component_id, kind, at) AS ({rec_sql}
     ), dem (component_id, at) AS ({dem_sql}
     ), ev AS (  -- rule 2: each credit event on the site's calendar, up to ``end``
@@ -688,8 +706,7 @@ def _on_time_sql(ids: list[int], longest: int, start: dt.date, end: dt.date):
     FROM pl LEFT JOIN starts s ON s.plan_id = pl.id
     GROUP BY pl.id, pl.sif_id, pl.iv
     """
-    kinds = [choices.TestKind.PARTIAL.value, [k.value for k in PARTIAL_CREDIT],
-             [k.value for k in FULL_CREDIT], [choices.TestKind.DEMAND.value, REAL_DEMAND]]
+    kinds = _scope_params()
     params = [ids, *kinds, *rec_params, *dem_params, REAL_DEMAND, start, end, start, start, start,
               start, end, start, end]
     # Its cost estimate is high enough for PostgreSQL to compile it first (JIT), which
@@ -714,26 +731,183 @@ STATE_COLUMNS = list(TestPlan.DERIVED_FIELDS)
 
 
 def _columns(f: _Facts, s: PlanStatus, as_of: dt.date) -> dict:
-    if s.due_on is None:
+    later = [v.effective_from for v in f.versions
+             if v.effective_from and v.effective_from > as_of]
+    return _state_columns(s.due_on, s.interval_months or f.plan.interval_months,
+                          f.thresholds, as_of, later)
+
+
+def _current_sql(plan_queryset, as_of: dt.date | None, many: bool = False):
+    """Rows for the plans of ``plan_queryset`` in one query, values only: (plan, SIF,
+    interval in months, time zone, day, the site's four thresholds, the last credit
+    (rule 1-3: the earliest over the plan's components of each one's last credit event
+    on or before the day, its in-service date without one, the SIF's when none has
+    either), general, and the five stored ``STATE_COLUMNS``). ``day`` is ``as_of``, or
+    today on the plan's site's calendar (``register.days.today``, in SQL). ``general``: a plan whose history holds more than
+    one version, or that has an approved deferral; its due date needs the whole rule
+    (``_load``) and the row's last credit is not used. ``many``: a large share of the
+    plant (the scan): hash joins over whole tables then beat index lookups row by row,
+    which the planner, misjudging the rows of the steps, would otherwise choose."""
+    try:
+        ids_sql, ids_params = plan_queryset.order_by().values("pk").query.sql_with_params()
+    except EmptyResultSet:  # a filter that matches nothing (``pk__in=[]``)
+        return []
+    records = TestRecord.objects.filter(in_force()).order_by().values_list(
+        "id", "sif_id", "kind", "performed_at")
+    exercised = Demand.components_exercised.through.objects.filter(
+        demand__successful=True).order_by().values_list(
+        "component_id", "demand__sif_id", "demand__occurred_at")
+    rec_sql, rec_params = records.query.sql_with_params()
+    dem_sql, dem_params = exercised.query.sql_with_params()
+    hist = TestPlan.history.model
+    t = {m: connection.ops.quote_name(m._meta.db_table) for m in (
+        TestPlan, TestPlan.components.through, Component, Site, Deferral, hist,
+        _plan_scope_rows().model, ComponentResult)}
+    scope_sql = _scope_sql()
+    # the day: ``as_of``, or today on the site's calendar
+    day = ("%s::date" if as_of else
+           "(%s::timestamptz AT TIME ZONE st.time_zone)::date")
+    sql = f"""
+    WITH pl AS (
+        SELECT p.id, p.sif_id, p.kind, p.demand_counts_as_test AS dem, p.interval_months AS iv,
+               p.coverage AS cov, st.time_zone AS tz, {day} AS day,
+               (({day} + 1)::timestamp AT TIME ZONE st.time_zone) AS cutoff,
+               s.in_service_on AS sif_start, st.due_soon_days, st.escalate_share,
+               st.escalate_days, st.second_escalation_days,
+               {", ".join("p." + connection.ops.quote_name(TestPlan._meta.get_field(c).column)
+                           for c in STATE_COLUMNS)}
+        FROM {t[TestPlan]} p
+        JOIN register_safetyfunction s ON s.id = p.sif_id
+        JOIN register_plantunit u ON u.id = s.unit_id
+        JOIN {t[Site]} st ON st.id = u.site_id
+        WHERE p.id IN ({ids_sql})
+    ), scope AS ({scope_sql}
+    ), sd AS MATERIALIZED (  -- the plans' SIFs, with the end of their site's day
+        SELECT DISTINCT sif_id, cutoff FROM pl
+    ), rec (id, sif_id, kind, at) AS ({rec_sql}
+    ), dem (component_id, sif_id, at) AS ({dem_sql}
+    ), ck AS MATERIALIZED (  -- each component's last event of each kind up to then
+        SELECT cr.component_id, r.kind, max(r.at) AS at
+        FROM rec r JOIN sd ON sd.sif_id = r.sif_id AND r.at < sd.cutoff
+        JOIN {t[ComponentResult]} cr ON cr.record_id = r.id
+        GROUP BY cr.component_id, r.kind
+        UNION ALL
+        SELECT d.component_id, %s, max(d.at)
+        FROM dem d JOIN sd ON sd.sif_id = d.sif_id AND d.at < sd.cutoff
+        GROUP BY d.component_id
+    ), lasts AS (  -- rule 2: each component's last credit event, on the site's calendar
+        SELECT sc.plan_id, sc.comp_id,
+               coalesce((max(k.at) AT TIME ZONE min(sc.tz))::date, min(sc.started)) AS last
+        FROM scope sc LEFT JOIN ck k ON k.component_id = sc.comp_id AND k.kind = ANY(sc.kinds)
+        GROUP BY sc.plan_id, sc.comp_id
+    ), firsts AS (
+        SELECT plan_id, min(last) AS last FROM lasts GROUP BY plan_id
+    ), versions AS (  -- distinct (interval, coverage, scope) in each plan's history
+        SELECT h.id AS plan_id, count(DISTINCT (h.interval_months, h.coverage,
+               coalesce((SELECT array_agg(m.component_id ORDER BY m.component_id)
+                         FROM {t[_plan_scope_rows().model]} m
+                         WHERE m.history_id = h.history_id), '{{}}'))) AS n,
+               bool_or(h.interval_months <> pl.iv) AS other_interval
+        FROM {t[hist]} h JOIN pl ON pl.id = h.id GROUP BY h.id
+    )
+    SELECT pl.id, pl.sif_id, pl.iv, pl.tz, pl.day, pl.due_soon_days, pl.escalate_share,
+           pl.escalate_days, pl.second_escalation_days,
+           coalesce(f.last, pl.sif_start),
+           coalesce(v.n > 1 OR v.other_interval, false) OR EXISTS (
+               SELECT 1 FROM {t[Deferral]} d WHERE d.plan_id = pl.id AND d.status = %s
+               AND d.decided_at IS NOT NULL),
+           {", ".join("pl." + connection.ops.quote_name(TestPlan._meta.get_field(c).column)
+                      for c in STATE_COLUMNS)}
+    FROM pl LEFT JOIN firsts f ON f.plan_id = pl.id LEFT JOIN versions v ON v.plan_id = pl.id
+    """
+    kinds = _scope_params()
+    params = [as_of or timezone.now(), as_of or timezone.now(), *ids_params, *kinds, *rec_params,
+              *dem_params, REAL_DEMAND, choices.DeferralStatus.APPROVED.value]
+    if not many:  # a few plans: small enough for no compiling (JIT) and index lookups
+        with connection.cursor() as cursor:
+            cursor.execute(sql, params)
+            return cursor.fetchall()
+    with transaction.atomic(), connection.cursor() as cursor:
+        # compiling it (JIT) costs more than running it
+        cursor.execute("SET LOCAL jit = off; SET LOCAL enable_nestloop = off")
+        cursor.execute(sql, params)
+        return cursor.fetchall()
+
+
+def _state_columns(due_on: dt.date | None, interval_months: int, th: Thresholds,
+                   as_of: dt.date, later: list[dt.date] = ()) -> dict:
+    """``STATE_COLUMNS`` for a due date seen on ``as_of``; ``later``: days after ``as_of``
+    on which a plan version takes effect (its state may turn then too)."""
+    if due_on is None:
         values = dict.fromkeys(STATE_COLUMNS)
     else:
-        d = state_dates(s.due_on, s.interval_months or f.plan.interval_months, f.thresholds)
-        values = {"next_due_on": s.due_on, "due_soon_on": d.due_soon_on,
+        d = state_dates(due_on, interval_months, th)
+        values = {"next_due_on": due_on, "due_soon_on": d.due_soon_on,
                   "escalated_on": d.escalated_on, "escalated_2_on": d.escalated_2_on}
         turns = [d.due_soon_on, d.overdue_on, d.escalated_on, d.escalated_2_on]
         ahead = [t for t in turns if t > as_of]
         values["next_change_on"] = min(ahead) if ahead else None
-    later = [v.effective_from for v in f.versions
-             if v.effective_from and v.effective_from > as_of]
     if later and (values["next_change_on"] is None or min(later) < values["next_change_on"]):
         values["next_change_on"] = min(later)
     return values
 
 
-def refresh_plans(plan_queryset, as_of: dt.date | None = None) -> dict[int, PlanStatus]:
+def current_statuses(plan_queryset, as_of: dt.date | None = None, *, write: bool = False,
+                     many: bool = False) -> dict[int, PlanStatus]:
+    """Each plan's status as of ``as_of`` (default: today on each site's calendar), from
+    the records, set-based: on PostgreSQL one query for every plan with one version and
+    no approved deferral (``_current_sql``: values, no model instances), the whole rule
+    (``_load``) for the others and on other databases. ``write``: also write the
+    ``STATE_COLUMNS`` that changed (``refresh_plans``); ``many``: see ``_current_sql``."""
+    if connection.vendor != "postgresql" or isinstance(plan_queryset, list):
+        return (_refresh_by_rule if write else _statuses_by_rule)(plan_queryset, as_of)
+    statuses: dict[int, PlanStatus] = {}
+    changed: list[tuple] = []
+    general: list[int] = []
+    for (pk, _sif, interval, _tz, day, soon, share, esc, second, last, is_general,
+         *stored) in _current_sql(plan_queryset, as_of, many):
+        if is_general:
+            general.append(pk)
+            continue
+        th = Thresholds(soon, share, esc, second)
+        due = add_months(last, interval) if last else None
+        state, late = state_for(due, day, interval, th)
+        statuses[pk] = PlanStatus(pk, due, state, late, False, last, interval)
+        if write:
+            values = _state_columns(due, interval, th, day)
+            row = tuple(values[c] for c in STATE_COLUMNS)
+            if row != tuple(stored):
+                changed.append((pk, *row))
+    if write:
+        _write_rows(changed)
+    if general:
+        rest = TestPlan.objects.filter(pk__in=general)
+        statuses.update((_refresh_by_rule if write else _statuses_by_rule)(rest, as_of))
+    return statuses
+
+
+def _statuses_by_rule(plans, as_of: dt.date | None) -> dict[int, PlanStatus]:
+    plans = _plans(plans)
+    out = {}
+    by_day: dict[dt.date, list[TestPlan]] = defaultdict(list)
+    days = {zone: as_of or today(zone) for zone in {p.sif.unit.site.time_zone for p in plans}}
+    for p in plans:
+        by_day[days[p.sif.unit.site.time_zone]].append(p)
+    for day, day_plans in by_day.items():
+        out.update(compute_statuses(day_plans, day))
+    return out
+
+
+def refresh_plans(plan_queryset, as_of: dt.date | None = None, *, many: bool = False
+                  ) -> dict[int, PlanStatus]:
     """Write each plan's current due date and state dates (``STATE_COLUMNS``) from the
     records, as of ``as_of`` (default: today on each site's calendar). Returns the
-    computed statuses."""
+    computed statuses (``current_statuses``)."""
+    return current_statuses(plan_queryset, as_of, write=True, many=many)
+
+
+def _refresh_by_rule(plan_queryset, as_of: dt.date | None = None) -> dict[int, PlanStatus]:
+    """``refresh_plans`` by the whole rule (``_load``), plan by plan."""
     plans = _plans(plan_queryset)
     statuses: dict[int, PlanStatus] = {}
     changed = []
@@ -769,15 +943,23 @@ def write_columns(plans: list[TestPlan], batch: int = 2000) -> None:
     if connection.vendor != "postgresql":
         TestPlan.objects.bulk_update(plans, STATE_COLUMNS, batch_size=1000)
         return
+    _write_rows([(p.pk, *(getattr(p, c) for c in STATE_COLUMNS)) for p in plans], batch)
+
+
+def _write_rows(rows: list[tuple], batch: int = 2000) -> None:
+    """``write_columns`` of rows (plan id, then the ``STATE_COLUMNS`` values), on
+    PostgreSQL."""
+    if not rows:
+        return
     table = connection.ops.quote_name(TestPlan._meta.db_table)
     names = [connection.ops.quote_name(TestPlan._meta.get_field(c).column)
              for c in STATE_COLUMNS]
     sets = ", ".join(f"{n} = v.{n}" for n in names)
     row = "(%s::bigint" + ", %s::date" * len(names) + ")"
     with connection.cursor() as cursor:
-        for i in range(0, len(plans), batch):
-            chunk = plans[i:i + batch]
-            params = [v for p in chunk for v in (p.pk, *(getattr(p, c) for c in STATE_COLUMNS))]
+        for i in range(0, len(rows), batch):
+            chunk = rows[i:i + batch]
+            params = [v for r in chunk for v in r]
             cursor.execute(
                 f"UPDATE {table} AS t SET {sets} FROM (VALUES {', '.join([row] * len(chunk))}) "
                 f"AS v(id, {', '.join(names)}) WHERE t.id = v.id", params)
@@ -821,20 +1003,13 @@ def with_state(plans, as_of: dt.date | None = None):
 
 def live_statuses(plans) -> dict[int, PlanStatus]:
     """Each plan's status today on its site's calendar (from the records)."""
-    plans = _plans(plans)
-    out = {}
-    by_zone: dict[str, list[TestPlan]] = defaultdict(list)
-    for p in plans:
-        by_zone[p.sif.unit.site.time_zone].append(p)
-    for zone, zone_plans in by_zone.items():
-        out.update(compute_statuses(zone_plans, today(zone)))
-    return out
+    return current_statuses(plans)
 
 
 __all__ = [
     "FULL_CREDIT", "LATE_STATES", "PARTIAL_CREDIT", "OnTime", "PlanState", "PlanStatus",
     "PlanTimeline", "Segment", "StateDates", "Thresholds", "Version", "active_plans",
-    "add_months", "compute_statuses", "due_date", "live_statuses", "on_time_by_timelines",
+    "add_months", "compute_statuses", "current_statuses", "due_date", "live_statuses", "on_time_by_timelines",
     "on_time_rate",
     "plan_timelines", "refresh_plans", "state_dates", "state_expression", "state_for",
     "status_of", "status_with_change", "with_state",

@@ -35,12 +35,15 @@ from register.models.notifications import PlanStateChange
 from register.schedule.due import (
     PlanStatus,
     active_plans,
-    compute_statuses,
+    current_statuses,
     refresh_plans,
     with_state,
 )
 
 PlanState = choices.PlanState
+#: From this many plans on, the scan reads the records of the plans it looks at as whole
+#: tables (``register.schedule.due.current_statuses``, ``many``).
+MANY_PLANS = 200
 
 
 @dataclass
@@ -170,13 +173,15 @@ def scan(as_of: dt.date | None = None, *, notify: bool = True) -> ScanResult:
     at = timezone.now() if as_of is None or as_of == timezone.localdate() else \
         end_of_day(as_of)
     if not notify:
-        result.plans = compute_statuses(active_plans(), as_of or timezone.localdate())
+        result.plans = current_statuses(active_plans(), as_of or timezone.localdate(),
+                                        many=True)
         result.counts = Counter(s.state for s in result.plans.values())
         result.bypass_states = {b.pk: bypass_state(b, at) for b in _open_bypasses(at)}
         return result
 
     with transaction.atomic():
-        result.plans = refresh_plans(plans_to_look_at(as_of), as_of)
+        plans = plans_to_look_at(as_of)
+        result.plans = refresh_plans(plans, as_of, many=plans.count() > MANY_PLANS)
         rows, result.notifications_created = _record(result.plans, at,
                                                      choices.ChangeCause.SCAN)
         result.transitions = len(rows)
