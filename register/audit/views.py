@@ -155,8 +155,10 @@ def packs(request):
             for name, msgs in exc.message_dict.items():
                 form.add_error(name if name in form.fields else None, msgs)
         else:
-            messages.success(request, "The pack is being built. You can leave this page "
-                                      "and come back; it stays listed here.")
+            pack.refresh_from_db(fields=["status"])
+            messages.success(request, "The pack is ready." if pack.status == EvidencePack.Status.DONE else (
+                "The pack was asked for; this page shows its progress. You can leave it and "
+                "come back: the pack stays listed under evidence packs."))
             return redirect("audit:pack_detail", pack.pk)
     rows = _visible_packs(user)[:100]
     return render(request, "register/audit/packs.html", {"form": form, "rows": rows})
