@@ -16,7 +16,9 @@ once the transaction that created it commits (``register.inbox.delivery``).
 
 from __future__ import annotations
 
-from django.db import transaction
+from django.db import connection, transaction
+from django.db.models.constants import OnConflict
+from django.db.models.sql import InsertQuery
 from django.urls import reverse
 
 from register import choices, presenters
@@ -60,8 +62,9 @@ def members(site_ids, role: str) -> dict[int, list]:
 
 def publish(notes: list[Notification]) -> list[int]:
     """Store the notifications not stored yet (unique per recipient and subject key) and
-    e-mail each new one after the commit. Returns the ids of the new ones. Three queries
-    whatever the number."""
+    e-mail each new one after the commit. Returns the ids of the new ones. On PostgreSQL
+    one statement per thousand (an insert that skips the stored ones and returns the new
+    ones), elsewhere three queries whatever the number."""
     seen = set()
     unique = []
     for n in notes:
@@ -70,6 +73,36 @@ def publish(notes: list[Notification]) -> list[int]:
             unique.append(n)
     if not unique:
         return []
+    if connection.vendor == "postgresql":
+        ids = [pk for i in range(0, len(unique), 1000)
+               for pk in _insert_new(unique[i:i + 1000])]
+    else:
+        ids = _store_new(unique)
+    if ids:
+        from register.inbox.delivery import enqueue_emails
+
+        transaction.on_commit(lambda: enqueue_emails(ids))
+    return ids
+
+
+def _insert_new(notes: list[Notification]) -> list[int]:
+    """``INSERT ... ON CONFLICT DO NOTHING RETURNING id``: the ids of the rows this
+    statement stored (a notification stored before, or by a concurrent transaction that
+    commits first, is skipped by the unique constraint)."""
+    opts = Notification._meta
+    query = InsertQuery(Notification, on_conflict=OnConflict.IGNORE)
+    query.insert_values([f for f in opts.local_concrete_fields if not f.primary_key], notes)
+    compiler = query.get_compiler(connection=connection)
+    compiler.returning_fields = [opts.pk]
+    ((sql, params),) = compiler.as_sql()
+    with connection.cursor() as cursor:
+        cursor.execute(sql, params)
+        return [pk for (pk,) in cursor.fetchall()]
+
+
+def _store_new(unique: list[Notification]) -> list[int]:
+    """``publish``'s store on other databases: read the stored keys, insert the others,
+    read their ids (three queries)."""
     keys = {n.subject_key for n in unique}
     existing = set(Notification.objects.filter(subject_key__in=keys).values_list(
         "recipient_id", "subject_key"))
@@ -78,14 +111,9 @@ def publish(notes: list[Notification]) -> list[int]:
         return []
     Notification.objects.bulk_create(fresh, ignore_conflicts=True, batch_size=1000)
     wanted = {(n.recipient_id, n.subject_key) for n in fresh}
-    ids = [pk for pk, user, key in Notification.objects.filter(
+    return [pk for pk, user, key in Notification.objects.filter(
         subject_key__in={k for _, k in wanted}, emailed_at__isnull=True).values_list(
         "pk", "recipient_id", "subject_key") if (user, key) in wanted]
-    if ids:
-        from register.inbox.delivery import enqueue_emails
-
-        transaction.on_commit(lambda: enqueue_emails(ids))
-    return ids
 
 
 def _note(user, site, kind, key, subject, message, link) -> Notification:

@@ -29,7 +29,7 @@ from tests import factories as f
 #: signing, its notices; the plan's new due date is computed once, after the commit, and
 #: the message reads it then: ``test_sign_post_in_all_computes_the_plan_status_once``).
 #: A failure found also opens a finding and tells the leads.
-MAX_NON_CHAIN = {"all-pass": 25, "failure-found": 43}
+MAX_NON_CHAIN = {"all-pass": 23, "failure-found": 39}
 
 CHAIN_TABLES = re.compile(r'"register_chain(entry|head)"')
 SAVEPOINT = re.compile(r"^\s*(SAVEPOINT|RELEASE SAVEPOINT|ROLLBACK TO SAVEPOINT)\b", re.I)
@@ -251,7 +251,7 @@ def test_history_rows_of_inserted_results_read_as_saved_ones():
 #: The bound reached for everything one save-and-sign POST issues, commit included: its
 #: own queries, savepoints, the chain's entries appended at the commit and the refresh of
 #: the plan after it (the recompute and the e-mails run in a worker and are left out).
-MAX_IN_ALL = 39
+MAX_IN_ALL = 37
 
 
 @dataclass
