@@ -93,11 +93,13 @@ def plant(django_db_setup, django_db_blocker):
                         _sign(sif, tech, when, some, choices.TestKind.DEMAND)
                     else:
                         last = _sign(sif, tech, when, some)
-                if seed == 3 and last is not None:  # a signed correction replaces it
+                if seed == 3:  # the newest full test, replaced by a signed correction
+                    last = _sign(sif, tech, _noon(timezone.localdate() - dt.timedelta(days=1)),
+                                 comps)
                     draft = services.start_correction(last, tech, "wrong date")
                     services.save_draft(
                         user=tech, sif=sif, plan=None, kind=choices.TestKind.FULL,
-                        performed_at=last.performed_at - dt.timedelta(days=200),
+                        performed_at=last.performed_at - dt.timedelta(days=1),
                         record=draft, supersedes=last, correction_reason="wrong date",
                         results=[services.ResultInput(component=c, as_found="pass",
                                                       as_left="pass") for c in comps])
@@ -140,6 +142,9 @@ def test_the_set_based_status_equals_the_rule_on_every_day(plant):
         assert due.current_statuses(plans, day) == _by_rule(plans, day), day
         assert due.current_statuses(plans, day, many=True) == _by_rule(plans, day), day
         compared += 1
+    corrected = plans.get(sif__tag="CS-1-3", kind=choices.TestKind.FULL)
+    assert due.current_statuses(plans, today)[corrected.pk].last_credit_on == (
+        today - dt.timedelta(days=2))  # the correction's day (noon UTC, Chicago's calendar)
     states = {st.state for st in due.current_statuses(plans, today).values()}
     assert len(states) >= 3, states  # the plant shows several states today
     assert compared == len(days)
