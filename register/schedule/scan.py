@@ -12,8 +12,10 @@ new state) and notifications per (recipient, subject key), so a second run creat
 nothing twice. Each new notification is e-mailed by its own task after the commit
 (``register.inbox.delivery``); the scan also sweeps up any whose task was lost.
 
-The query count of a scan does not depend on the size of the plant: a fixed number per
-time zone, plus one write per thousand plans refreshed.
+The query count of a scan does not depend on the size of the plant: the plans' statuses
+come from one query of values (``register.schedule.due.current_statuses``; the few plans
+with several versions or an approved deferral from the whole rule, a fixed number more),
+plus one write per two thousand plans refreshed.
 """
 
 from __future__ import annotations
