@@ -129,7 +129,14 @@ def main(argv: list[str] | None = None) -> int:
     from django.test.utils import CaptureQueriesContext
     from django.utils import timezone
 
-    from bench.bench_scale import INPUT_ROWS, PLANS, age_plant, bare_connection, prepare_plant
+    from bench.bench_scale import (
+        INPUT_ROWS,
+        LAST_CREDIT,
+        PLANS,
+        age_plant,
+        bare_connection,
+        prepare_plant,
+    )
     from calcs.adapter import recompute_many
     from register import choices, services
     from register.models import Component, SafetyFunction, TestPlan
@@ -220,7 +227,7 @@ def main(argv: list[str] | None = None) -> int:
         "web-sign": ("sign + after-commit (web)", web_sign, None,
                      lambda: floor(PLANS, *INPUT_ROWS, where=one)),
         "scan": ("due-date scan", lambda: scan(timezone.localdate(), notify=False), None,
-                 lambda: floor(PLANS, where=plant)),
+                 lambda: floor(PLANS, LAST_CREDIT, where=plant)),
         "overview": ("plant overview", page(lead_client, "/"), None,
                      lambda: floor(latest, PLANS, where=plant)),
         "list": ("register list SIL 2 overdue",

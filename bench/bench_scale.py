@@ -45,6 +45,13 @@ LATEST = ("SELECT DISTINCT ON (a.sif_id) a.sif_id, a.meets_target, a.flags, a.de
           "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
           "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs} "
           "ORDER BY a.sif_id, a.computed_at DESC, a.id DESC")
+#: The scan's floor: every device's last credit event per kind of test (what a plan's due
+#: date is computed from), one grouped read.
+LAST_CREDIT = ("SELECT r.component_id, t.kind, max(t.performed_at) FROM "
+               "register_componentresult r JOIN register_testrecord t ON t.id = r.record_id "
+               "JOIN register_safetyfunction s ON s.id = t.sif_id "
+               "JOIN register_plantunit u ON u.id = s.unit_id "
+               "WHERE {sifs} AND t.status <> 'draft' GROUP BY 1, 2")
 PLANS = ("SELECT p.id, p.sif_id, p.next_due_on, p.due_soon_on, p.escalated_on "
          "FROM register_testplan p JOIN register_safetyfunction s ON s.id = p.sif_id "
          "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs}")
@@ -70,6 +77,8 @@ def prepare_plant(sifs: int, history_days: int) -> dict:
     if not Site.objects.filter(code=code).exists():
         t = time.perf_counter()
         call_command("make_scale_plant", sifs=args.sifs, code=code)
+        with connection.cursor() as cur:  # statistics for the planner, as autovacuum would
+            cur.execute("ANALYZE")
         print(f"generated in {time.perf_counter() - t:.0f} s")
     site = Site.objects.get(code=code)
     qs = SafetyFunction.objects.filter(unit__site=site)
