@@ -454,7 +454,8 @@ def recompute_many(sif_queryset, *, trigger: str, as_of: dt.datetime | None = No
     stats_by_site = {sid: device_type_stats(sid, as_of.date(), types) for sid in site_ids}
     sites = {d.sif.unit.site_id: d.sif.unit.site for d in loaded}
     rates = {sid: rate_table(sites[sid], stats_by_site[sid], as_of.date()) for sid in site_ids}
-    dues = _full_due_dates(sif_queryset, as_of.date())
+    dues = _full_due_dates(sif_queryset, as_of.date(),
+                           {p.pk: d.sif.pk for d in loaded for p in d.plans})
     previous = latest_assessments([d.sif.pk for d in loaded])
     out: list = []
     fresh: list[Assessment] = []
@@ -563,13 +564,17 @@ def _insert(fresh: list[Assessment]) -> None:
         a._state.adding, a._state.db = False, conn.alias
 
 
-def _full_due_dates(sif_queryset, as_of: dt.date) -> dict[int, dt.date]:
+def _full_due_dates(sif_queryset, as_of: dt.date,
+                    sif_of: dict[int, int] | None = None) -> dict[int, dt.date]:
+    """The earliest due date of each SIF's full proof test plans; ``sif_of`` (plan id to
+    SIF id, from the loaded plans) saves reading it again."""
     from register.schedule.due import compute_statuses
 
     plans = TestPlan.objects.filter(sif__in=sif_queryset.values("pk"),
                                     kind=choices.TestKind.FULL)
     statuses = compute_statuses(plans, as_of)
-    sif_of = dict(plans.values_list("pk", "sif_id"))
+    if sif_of is None or not statuses.keys() <= sif_of.keys():
+        sif_of = dict(plans.values_list("pk", "sif_id"))
     out: dict[int, dt.date] = {}
     for plan_id, st in statuses.items():
         if st.due_on:

@@ -4,6 +4,7 @@ the calculations use."""
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import hashlib
 from collections import defaultdict
 from dataclasses import dataclass
@@ -44,18 +45,35 @@ def _stats_fingerprint() -> tuple:
     A passing test does not change it, so recomputing after one stays cheap. Rows
     bulk-inserted without history (synthetic benchmark data) are not seen by the history
     part, which is why the key also carries the date and entries expire after an hour."""
-    from django.db.models import Count, Max
+    from django.db import connection
+
+    sql, params = _fingerprint_sql(connection.vendor)
+    with connection.cursor() as cur:
+        cur.execute(sql, params)
+        return tuple(cur.fetchone())
+
+
+@functools.cache
+def _fingerprint_sql(vendor: str) -> tuple[str, tuple]:
+    """The fingerprint's one SELECT: each figure a scalar subquery, no FROM. Built once
+    per process and database kind (it depends on nothing else)."""
+    from django.db.models import F, Func
 
     from register.models import Site
 
-    du = (ComponentResult.objects.filter(in_force("record__"),
-                                         failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED)
-          .aggregate(n=Count("id"), last=Max("id")))
-    failed_on_demand = Demand.failed_components.through.objects.aggregate(
-        n=Count("id"), last=Max("id"))
-    return (du["n"], du["last"], failed_on_demand["n"], failed_on_demand["last"]) + tuple(
-        model.history.aggregate(m=Max("history_id"))["m"]
-        for model in (Site, SafetyFunction, Component))
+    du = ComponentResult.objects.filter(in_force("record__"),
+                                        failure_mode=choices.FailureMode.DANGEROUS_UNDETECTED)
+    failed_on_demand = Demand.failed_components.through.objects.all()
+    parts = [(du, "COUNT", "id"), (du, "MAX", "id"), (failed_on_demand, "COUNT", "id"),
+             (failed_on_demand, "MAX", "id")] + [
+        (model.history.all(), "MAX", "history_id") for model in (Site, SafetyFunction, Component)]
+    sqls, params = [], []
+    for qs, fn, col in parts:
+        sql, p = (qs.order_by().annotate(_v=Func(F(col), function=fn)).values("_v")
+                  .query.sql_with_params())
+        sqls.append(f"({sql})")
+        params.extend(p)
+    return "SELECT " + ", ".join(sqls), tuple(params)
 
 
 def device_type_stats(site_id: int | None, as_of: dt.date,
