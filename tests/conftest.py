@@ -39,6 +39,20 @@ def browser_type_launch_args(browser_type_launch_args):
     }
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _patient_browser_checks():
+    """Browser checks wait up to 20 s for what they expect (Playwright's default is 5 s):
+    the suite's processes share two cores, and a live answer through htmx can take longer
+    than 5 s to come back while the rest of the suite runs. What is expected is unchanged."""
+    try:
+        from playwright.sync_api import expect
+    except ImportError:  # pragma: no cover - playwright is a test dependency
+        yield
+        return
+    expect.set_options(timeout=20_000)
+    yield
+
+
 @pytest.fixture(autouse=True)
 def _fresh_cache():
     """Each test starts with an empty cache (cached statistics are keyed by history ids,
