@@ -236,18 +236,17 @@ def test_demo_plant_one_batch_equals_each_sif_alone(demo_plant):
     recompute_does_not_depend_on_the_chunk(qs, end + dt.timedelta(days=1))
 
 
-@pytest.fixture(scope="module")
-def scale_plant(django_db_setup, django_db_blocker):
-    """A generated plant with three years of tests, failures, demands and bypasses."""
+@pytest.fixture
+def scale_plant(db):
+    """A generated plant with three years of tests, failures, demands and bypasses (in the
+    test's own transaction: a module-wide one would still be open when the demo test of
+    this file points the connection at the demo's database, which closes it)."""
     from django.core.management import call_command
-    from django.db import transaction
 
     from register.models import SafetyFunction, Site
 
-    with django_db_blocker.unblock(), transaction.atomic():
-        call_command("make_scale_plant", sifs=24, years=3, code="bateng", verbosity=0)
-        yield SafetyFunction.objects.filter(unit__site=Site.objects.get(code="bateng"))
-        transaction.set_rollback(True)
+    call_command("make_scale_plant", sifs=24, years=3, code="bateng", verbosity=0)
+    return SafetyFunction.objects.filter(unit__site=Site.objects.get(code="bateng"))
 
 
 @pytest.mark.django_db
