@@ -465,19 +465,21 @@ def workers_row(n: int, broker: str):
         # A SIF whose inputs did not change stores no new assessment (digest skip), so the
         # end is read off the worker's log: the nightly task says how many chunks it sent,
         # and each chunk logs its success.
+        # The night's chunks as the nightly task sends them, each run on a day of its own
+        # (a SIF already evaluated on that day with the same inputs is not evaluated again).
         send = subprocess.run(
-            [sys.executable, "-c", "import django, time; django.setup(); "
-             "from calcs.tasks import recompute_all; t = time.time(); "
-             "recompute_all.delay(); print(t)"], cwd=ROOT, env=env, capture_output=True,
-            text=True, timeout=120, check=True)
-        t0 = float(send.stdout.strip().splitlines()[-1])
-        sent = re.compile(r"Task calcs\.recompute_all\[[^\]]+\] succeeded in [0-9.]+s: (\d+)")
+            [sys.executable, "-c", "import django, time, datetime as dt; django.setup(); "
+             "from django.utils import timezone; from calcs.tasks import nightly_chunks; "
+             f"g = nightly_chunks(timezone.now() + dt.timedelta(days={10 + 7 * n})); "
+             "t = time.time(); g.apply_async(); print(t, len(g.tasks))"], cwd=ROOT, env=env,
+            capture_output=True, text=True, timeout=120, check=True)
+        t0, sent = send.stdout.strip().splitlines()[-1].split()
+        t0, chunks = float(t0), [None, sent]
         chunk = re.compile(r"Task calcs\.recompute_chunk\[[^\]]+\] succeeded")
         while True:
             text = logf.read_text()
-            chunks = sent.search(text)
             done = len(chunk.findall(text))
-            if chunks and done >= int(chunks[1]):
+            if done >= int(chunks[1]):
                 took = time.time() - t0
                 break
             if proc.poll() is not None or time.time() - t0 > 3600 or "ERROR" in text:
