@@ -1,6 +1,7 @@
 import datetime as dt
 import time
 
+from django.conf import settings
 from django.core.management.base import BaseCommand
 from django.db import connection, reset_queries
 from django.utils import timezone
@@ -32,7 +33,16 @@ class Command(BaseCommand):
         started = time.perf_counter()
         queries_before = len(connection.queries) if connection.queries_logged else None
         reset_queries()
-        out = recompute_many(qs, trigger="command", as_of=as_of or timezone.now())
+        # In slices of the nightly chunk's size, all as of one moment: the result does not
+        # depend on the slicing (as the night's chunks), and memory stays that of a slice
+        # however large the plant (5,000 SIFs at once peaked at 633 MB).
+        as_of = as_of or timezone.now()
+        ids = list(qs.order_by("pk").values_list("pk", flat=True))
+        size = max(1, settings.RECOMPUTE_CHUNK_SIFS)
+        out = []
+        for i in range(0, len(ids), size):
+            out += recompute_many(SafetyFunction.objects.filter(pk__in=ids[i:i + size]),
+                                  trigger="command", as_of=as_of)
         took = time.perf_counter() - started
         failing = sum(1 for a in out if a.meets_target is False)
         errors = sum(1 for a in out if a.error)
