@@ -567,12 +567,14 @@ def _insert(fresh: list[Assessment]) -> None:
 def _full_due_dates(sif_queryset, as_of: dt.date,
                     sif_of: dict[int, int] | None = None) -> dict[int, dt.date]:
     """The earliest due date of each SIF's full proof test plans; ``sif_of`` (plan id to
-    SIF id, from the loaded plans) saves reading it again."""
-    from register.schedule.due import compute_statuses
+    SIF id, from the loaded plans) saves reading it again. The set-based door to the rule
+    (``current_statuses``: one query of values for plans with one version and no
+    deferral, the whole rule for the others)."""
+    from register.schedule.due import current_statuses
 
     plans = TestPlan.objects.filter(sif__in=sif_queryset.values("pk"),
                                     kind=choices.TestKind.FULL)
-    statuses = compute_statuses(plans, as_of)
+    statuses = current_statuses(plans, as_of, many=len(sif_of or ()) > 200)
     if sif_of is None or not statuses.keys() <= sif_of.keys():
         sif_of = dict(plans.values_list("pk", "sif_id"))
     out: dict[int, dt.date] = {}
