@@ -71,6 +71,26 @@ def _pages(pdf: bytes, tmp_path, first=1) -> list[str]:
     return [re.sub(r"\s+", " ", page).strip() for page in out.split("\f")[:-1]]
 
 
+def same_pack(one: dict[str, bytes], one_pk: int, other: dict[str, bytes], other_pk: int,
+              tmp_path) -> tuple[list[str], list[str]]:
+    """Assert two unzipped packs of the same facts hold the same files, the same tables
+    and charts byte for byte, and report pages after the cover that say the same (the
+    pack's number and the chain head it was built at aside); returns those pages."""
+    assert set(one) == set(other)
+    for name in one:
+        if name.endswith(".csv") or name.startswith("charts/"):
+            assert one[name] == other[name], name
+
+    def plain(pages, pk):
+        return [re.sub(r"chain head [0-9a-f]{16}", "chain head H",
+                       text.replace(f"pack {pk} ", "pack N ")) for text in pages]
+
+    a = plain(_pages(one["report.pdf"], tmp_path, 2), one_pk)
+    c = plain(_pages(other["report.pdf"], tmp_path, 2), other_pk)
+    assert a == c
+    return a, c
+
+
 def _built(pack, size: int) -> tuple[bytes, int]:
     plan = b.begin(pack, size)
     for index, ids in enumerate(plan):
@@ -131,20 +151,8 @@ def test_the_pack_task_builds_it_through_a_group_of_sections(pack, settings, tmp
                                         period_end=pack.period_end)
     alone.started_at = pack.started_at  # the facts of the same moment, in one section
     single = _unzip(b.build(alone, size=1000).read_bytes())
-    assert set(grouped) == set(single)
-    for name in grouped:
-        if name.endswith(".csv") or name.startswith("charts/"):
-            assert grouped[name] == single[name], name
-    # The report's pages after the cover say the same (the pack's number and the chain
-    # head it was built at aside).
-    def plain(pages, pk):
-        return [re.sub(r"chain head [0-9a-f]{16}", "chain head H",
-                       text.replace(f"pack {pk} ", "pack N ")) for text in pages]
-
-    a = plain(_pages(grouped["report.pdf"], tmp_path, 2), pack.pk)
-    c = plain(_pages(single["report.pdf"], tmp_path, 2), alone.pk)
+    a, c = same_pack(grouped, pack.pk, single, alone.pk, tmp_path)
     assert len(a) == len(c) > SIFS
-    assert a == c
 
 
 def test_a_failing_section_marks_the_pack_failed_and_nothing_is_assembled(pack, tmp_path):
