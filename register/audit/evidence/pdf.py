@@ -92,6 +92,7 @@ def _kit() -> SimpleNamespace:
     def P(text, style=small):
         return Paragraph(_esc(text), style)
 
+    from reportlab.lib.utils import simpleSplit
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
     pad = 2.5
@@ -100,10 +101,18 @@ def _kit() -> SimpleNamespace:
         # A text that fits its column on one line is drawn as a plain string in the cell
         # (the same font, size and leading as the paragraph it would be): laying out a
         # paragraph per cell was most of the time of writing a SIF's pages.
+        # A longer one is broken into lines at its spaces here (reportlab's simpleSplit,
+        # the same greedy rule as a paragraph's) and drawn as lines of plain text; only a
+        # word wider than its column still goes through a paragraph (which splits words).
         text = "" if text is None else str(text)
         font = "DejaVu-Bold" if bold else style.fontName
-        if "\n" not in text and stringWidth(text, font, style.fontSize) <= room:
+        if "\n" in text:
+            return Paragraph(f"<b>{_esc(text)}</b>", style) if bold else P(text, style)
+        if stringWidth(text, font, style.fontSize) <= room:
             return text
+        lines = simpleSplit(text, font, style.fontSize, room)
+        if all(stringWidth(line, font, style.fontSize) <= room for line in lines):
+            return "\n".join(lines)
         return Paragraph(f"<b>{_esc(text)}</b>", style) if bold else P(text, style)
 
     def table(header, rows, widths, empty="None in the period."):
