@@ -106,13 +106,12 @@ def _kit() -> SimpleNamespace:
         # word wider than its column still goes through a paragraph (which splits words).
         text = "" if text is None else str(text)
         font = "DejaVu-Bold" if bold else style.fontName
-        if "\n" in text:
-            return Paragraph(f"<b>{_esc(text)}</b>", style) if bold else P(text, style)
-        if stringWidth(text, font, style.fontSize) <= room:
-            return text
-        lines = simpleSplit(text, font, style.fontSize, room)
-        if all(stringWidth(line, font, style.fontSize) <= room for line in lines):
-            return "\n".join(lines)
+        if "\n" not in text:
+            if stringWidth(text, font, style.fontSize) <= room:
+                return text
+            lines = simpleSplit(text, font, style.fontSize, room)
+            if all(stringWidth(line, font, style.fontSize) <= room for line in lines):
+                return "\n".join(lines)
         return Paragraph(f"<b>{_esc(text)}</b>", style) if bold else P(text, style)
 
     def table(header, rows, widths, empty="None in the period."):
