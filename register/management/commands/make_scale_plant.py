@@ -25,6 +25,7 @@ from register.models import (
     TestPlan,
     TestRecord,
 )
+from register.schedule.due import refresh_plans
 
 
 class Command(BaseCommand):
@@ -115,5 +116,8 @@ class Command(BaseCommand):
         # Results go in while the records are drafts; then the records are signed (the
         # database refuses results added to a signed record).
         TestRecord.objects.filter(pk__in=[r.pk for r in records]).update(status="verified")
+        # Each plan's stored due date and state dates, as the register writes them when a
+        # plan is made or a record signed (the lists, the worklist and the scan read them).
+        refresh_plans(TestPlan.objects.filter(sif__unit__site=site), today, many=True)
         self.stdout.write(f"Created {n} SIFs, {len(comps)} components, {len(records)} test "
                           f"records, {len(results)} component results.")
