@@ -188,6 +188,7 @@ for _folder in ("queue", "control", "processed"):
 # overridable from the environment.
 SCAN_PERIOD_SECONDS = env_int("SCAN_PERIOD_SECONDS", 15 * 60)
 RECOMPUTE_HOUR_UTC = env_int("RECOMPUTE_HOUR_UTC", 2)
+JOB_SWEEP_SECONDS = env_int("JOB_SWEEP_SECONDS", 5 * 60)
 # The nightly recompute is spread over the workers in chunks of this many SIFs on the
 # queue "calcs" (start workers with -Q celery,calcs).
 CALCS_QUEUE = env_str("CALCS_QUEUE", "calcs")
@@ -215,6 +216,9 @@ CELERY_BEAT_SCHEDULE = {
     },
     "chain-anchor": {"task": "register.chain_anchor", "schedule": 3600,
                      "options": {"expires": 3000}},
+    # Exports, imports and packs left "running" by a worker that is gone are failed.
+    "stopped-jobs": {"task": "register.sweep_stopped_jobs", "schedule": JOB_SWEEP_SECONDS,
+                     "options": {"expires": max(JOB_SWEEP_SECONDS - 5, 1)}},
 }
 
 # --- REST framework ----------------------------------------------------------------

@@ -27,6 +27,7 @@ from django.shortcuts import render
 from django.urls import reverse
 from django.utils import timezone
 
+from register import job_lease
 from register.lead import export
 from register.lead.filters import SifFilter
 from register.models import ExportJob, SafetyFunction
@@ -114,12 +115,15 @@ def exports_dir() -> Path:
 
 
 def run_export_job(job_id: int) -> ExportJob:
-    """Write a queued job's file, keeping the SIFs written and the outcome on the row.
-    A job not queued (already run) is left alone."""
-    if not ExportJob.objects.filter(pk=job_id, status=ExportJob.Status.QUEUED).update(
-            status=ExportJob.Status.RUNNING, started_at=timezone.now(),
-            message="Writing the file"):
-        return ExportJob.objects.get(pk=job_id)
+    """Write a queued job's file, keeping the SIFs written and the outcome on the row,
+    under the job's lease (``register.job_lease``). A job finished, or being written by
+    another worker, is left alone; one left "running" by a worker that is gone is written
+    again."""
+    return job_lease.run_claimed("export", ExportJob, job_id, _write_export_job,
+                                 message="Writing the file")
+
+
+def _write_export_job(job_id: int) -> ExportJob:
     job = ExportJob.objects.select_related("user").get(pk=job_id)
     path = exports_dir() / f"export-{job.pk}.{job.fmt}"
     part = path.with_suffix(".part")

@@ -31,7 +31,7 @@ from django.utils import timezone
 from openpyxl import load_workbook
 from openpyxl.utils import get_column_letter
 
-from register import choices, services
+from register import choices, job_lease, services
 from register.calculations import calculations
 from register.days import check_plausible
 from register.lead import export as writers
@@ -1010,11 +1010,14 @@ def _finish(job: ImportJob, **fields) -> ImportJob:
 
 def run_import_job(job_id: int) -> ImportJob:
     """Write a queued job's file with :func:`apply_import`, all or nothing, keeping its
-    progress and outcome on the row. A job not queued (already run) is left alone."""
-    if not ImportJob.objects.filter(pk=job_id, status=ImportJob.Status.QUEUED).update(
-            status=ImportJob.Status.RUNNING, started_at=timezone.now(),
-            message="Writing the rows"):
-        return ImportJob.objects.get(pk=job_id)
+    progress and outcome on the row, under the job's lease (``register.job_lease``). A
+    job finished, or being written by another worker, is left alone; one left "running"
+    by a worker that is gone is written again (its writing was rolled back)."""
+    return job_lease.run_claimed("import", ImportJob, job_id, _write_import_job,
+                                 rows_done=0, message="Writing the rows")
+
+
+def _write_import_job(job_id: int) -> ImportJob:
     job = ImportJob.objects.select_related("site", "user").get(pk=job_id)
     try:
         rows = read_table(job.file_name, bytes(job.file_data))

@@ -21,3 +21,12 @@ def write_export_job(job_id: int) -> dict:
 
     job = run_export_job(job_id)
     return {"job": job.pk, "status": job.status, "sifs_done": job.sifs_done}
+
+
+@shared_task(name="register.sweep_stopped_jobs", acks_late=True)
+def sweep_stopped_jobs() -> dict:
+    """Periodic: fail the background jobs that read "running" with no worker left on them
+    (``register.job_lease.sweep``); returns their ids by kind."""
+    from register.job_lease import sweep
+
+    return sweep()

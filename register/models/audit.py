@@ -152,6 +152,17 @@ class ChainCheckpoint(models.Model):
         return f"chain verified up to #{self.seq}"
 
 
+class EvidencePackQuerySet(SiteScopedQuerySet):
+    def fail(self, error: str, stage: str = "Failed") -> int:
+        """Mark these packs failed with ``error`` and ``stage`` (the pack page shows
+        them), those finished excepted; returns the rows changed."""
+        from django.utils import timezone
+
+        return self.exclude(status=EvidencePack.Status.DONE).update(
+            status=EvidencePack.Status.FAILED, error=error, stage=stage,
+            finished_at=timezone.now())
+
+
 class EvidencePack(models.Model):
     """A request for an evidence pack (one SIF, a unit or a site, over a period)."""
 
@@ -194,7 +205,7 @@ class EvidencePack(models.Model):
     finished_at = models.DateTimeField(_("finished at"), null=True, blank=True)
 
     site_path = "site"
-    objects = SiteScopedQuerySet.as_manager()
+    objects = EvidencePackQuerySet.as_manager()
 
     class Meta:
         ordering = ["-created_at", "-id"]

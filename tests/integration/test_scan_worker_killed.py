@@ -81,6 +81,15 @@ def _wait(condition, seconds, what, log=None):
                          (log.read_text()[-3000:] if log else ""))
 
 
+def _kill(proc, backends: list[int]):
+    """SIGKILL the worker ``proc`` and wait for its database sessions ``backends`` to end."""
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=30)
+    assert proc.returncode == -signal.SIGKILL
+    _wait(lambda: not any(_backend_alive(pid) for pid in backends), 30,
+          "the killed worker's database session to end")
+
+
 def _scans_done(log: Path) -> int:
     return sum(1 for line in log.read_text().splitlines()
                if "register.scan[" in line and "succeeded" in line)
@@ -140,12 +149,7 @@ def test_a_worker_killed_mid_scan_leaves_nothing_half_done_and_the_next_run_comp
         # The scan is inside its transaction (refreshing the plans): kill the worker there.
         _wait(lambda: _other_backends_in_a_transaction(0.3), 60, "the scan's transaction",
               log)
-        backends = _other_backends_in_a_transaction(0.3)
-        os.kill(first.pid, signal.SIGKILL)
-        first.wait(timeout=30)
-        assert first.returncode == -signal.SIGKILL
-        _wait(lambda: not any(_backend_alive(pid) for pid in backends), 30,
-              "the killed worker's database session to end")
+        _kill(first, _other_backends_in_a_transaction(0.3))
     finally:
         _stop(first, out)
     assert _scans_done(log) == 0  # killed before the scan finished

@@ -232,10 +232,7 @@ def mark_failed(pack_id: int, error: str, stage: str = "Failed") -> int:
 
     for attempt in (1, 2):
         try:
-            return EvidencePack.objects.filter(pk=pack_id).exclude(
-                status=EvidencePack.Status.DONE).update(
-                status=EvidencePack.Status.FAILED, error=error, stage=stage,
-                finished_at=timezone.now())
+            return EvidencePack.objects.filter(pk=pack_id).fail(error, stage)
         except (DatabaseError, InterfaceError):
             if attempt == 2 or connection.in_atomic_block:
                 raise
