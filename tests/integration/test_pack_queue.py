@@ -46,6 +46,7 @@ from tests.integration.test_scan_worker_killed import (
 )
 
 SIFS = 60  # a pack of this plant builds for a good many seconds
+LONG_SECTION = 100  # SIFs: its pages take about 3 s on an idle machine, its facts 1 s
 
 pytestmark = [pytest.mark.services, pytest.mark.django_db(transaction=True)]
 
@@ -147,16 +148,18 @@ def test_a_pack_waits_on_its_own_queue_and_never_delays_the_scan(tmp_path, broke
 
 def test_a_pack_over_its_time_limit_is_marked_failed_with_a_plain_message(
         tmp_path, broker_tasks, client):
-    # One section of all the SIFs, so long that the soft limit comes in the middle of a
-    # task however fast the machine (a few short sections can each end below the limit,
-    # and the pack's own check at the next step stops it instead).
-    site, auditor = _plant(sifs=4 * SIFS)
+    # One section of all the SIFs, so that the worker's soft limit comes in the middle of
+    # its pages (where the pack's own check, from the pack's start, does not look): on a
+    # fast machine short sections each end below the limit and the pack's own check at
+    # the next step stops the build instead, and so it does on a slow one when the
+    # section's first steps (facts and figures, where it looks) last past the limit.
+    site, auditor = _plant(sifs=LONG_SECTION)
     client.force_login(auditor)
 
     # The soft limit interrupts the build, which records the failure and its reason.
     worker, out, log = _worker(tmp_path, "soft", settings.PACKS_QUEUE,
                                PACK_TIME_LIMIT_SECONDS="2", PACK_HARD_TIME_LIMIT_SECONDS="60",
-                               PACK_SECTION_SIFS=str(4 * SIFS))
+                               PACK_SECTION_SIFS=str(LONG_SECTION))
     try:
         pack = _ask(site, auditor)
         _wait(lambda: _status(pack) == "failed", 60, "the pack to stop", log)
