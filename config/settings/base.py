@@ -145,6 +145,8 @@ IMPORT_BACKGROUND_ROWS = env_int("IMPORT_BACKGROUND_ROWS", 200)
 # Register exports of more SIFs than this are written by a background job with a progress
 # page and offered for download to the person who asked (README, "Exports").
 EXPORT_BACKGROUND_SIFS = env_int("EXPORT_BACKGROUND_SIFS", 2000)
+# A background export's file is removed this many days after it was written.
+EXPORT_KEEP_DAYS = env_int("EXPORT_KEEP_DAYS", 7)
 
 EMAIL_BACKEND = env_str("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
 DEFAULT_FROM_EMAIL = env_str("DEFAULT_FROM_EMAIL", "sif-ledger@localhost")
@@ -216,6 +218,8 @@ CELERY_BEAT_SCHEDULE = {
     },
     "chain-anchor": {"task": "register.chain_anchor", "schedule": 3600,
                      "options": {"expires": 3000}},
+    "old-export-files": {"task": "register.remove_old_exports", "schedule": 6 * 3600,
+                         "options": {"expires": 3600}},
     # Exports, imports and packs left "running" by a worker that is gone are failed.
     "stopped-jobs": {"task": "register.sweep_stopped_jobs", "schedule": JOB_SWEEP_SECONDS,
                      "options": {"expires": max(JOB_SWEEP_SECONDS - 5, 1)}},

@@ -12,6 +12,7 @@ again when it is downloaded.
 
 from __future__ import annotations
 
+import datetime as dt
 import logging
 import shutil
 from collections.abc import Callable, Iterable, Iterator
@@ -165,6 +166,27 @@ def _write_export_job(job_id: int) -> ExportJob:
         message=f"{job.sifs_total} SIF{'s' if job.sifs_total != 1 else ''} written")
     job.refresh_from_db()
     return job
+
+
+def remove_old_files(now=None) -> list[int]:
+    """Remove the files of the jobs written more than ``EXPORT_KEEP_DAYS`` ago (an
+    export is a copy of the register on one day, not a record to keep); each such job
+    then reads "file removed", with a message saying when and what to do. Returns their
+    ids."""
+    now = now or timezone.now()
+    cutoff = now - dt.timedelta(days=settings.EXPORT_KEEP_DAYS)
+    removed = []
+    for job in ExportJob.objects.filter(status=ExportJob.Status.DONE, finished_at__lt=cutoff):
+        path = job_file(job)
+        if path is not None:
+            path.unlink(missing_ok=True)
+        if ExportJob.objects.filter(pk=job.pk, status=ExportJob.Status.DONE).update(
+                status=ExportJob.Status.REMOVED, result_path="",
+                message=f"The file was removed {settings.EXPORT_KEEP_DAYS} days after it "
+                        f"was written ({timezone.localtime(now):%Y-%m-%d}). Ask for the "
+                        "export again for today's register."):
+            removed.append(job.pk)
+    return removed
 
 
 def job_file(job: ExportJob) -> Path | None:

@@ -30,3 +30,12 @@ def sweep_stopped_jobs() -> dict:
     from register.job_lease import sweep
 
     return sweep()
+
+
+@shared_task(name="register.remove_old_exports", acks_late=True)
+def remove_old_exports() -> list[int]:
+    """Periodic: remove the background exports' files older than ``EXPORT_KEEP_DAYS``
+    (``export_jobs.remove_old_files``); returns the jobs' ids."""
+    from register.lead.export_jobs import remove_old_files
+
+    return remove_old_files()

@@ -16,6 +16,8 @@ class ExportJob(models.Model):
         RUNNING = "running", _("Being written")
         DONE = "done", _("Ready")
         FAILED = "failed", _("Failed")
+        #: Done, and its file since removed (``EXPORT_KEEP_DAYS`` after it was written).
+        REMOVED = "removed", _("File removed")
 
     class Kind(models.TextChoices):
         REGISTER = "register", _("Register table (import format)")
@@ -57,7 +59,7 @@ class ExportJob(models.Model):
 
     @property
     def is_finished(self) -> bool:
-        return self.status in (self.Status.DONE, self.Status.FAILED)
+        return self.status in (self.Status.DONE, self.Status.FAILED, self.Status.REMOVED)
 
     @property
     def percent(self) -> int:
