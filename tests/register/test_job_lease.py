@@ -10,6 +10,7 @@ session taking the lock (as the worker's session would) and ending.
 from __future__ import annotations
 
 import datetime as dt
+import time
 
 import pytest
 from django.db import DEFAULT_DB_ALIAS, connection, connections
@@ -55,6 +56,9 @@ class _OtherWorker:
 
     def __init__(self):
         self.conn = connections.create_connection(DEFAULT_DB_ALIAS)
+        with self.conn.cursor() as cur:
+            cur.execute("SELECT pg_backend_pid()")
+            self.pid = cur.fetchone()[0]
 
     def take(self, kind: str, job_id: int) -> bool:
         with self.conn.cursor() as cur:
@@ -63,7 +67,17 @@ class _OtherWorker:
             return cur.fetchone()[0]
 
     def end(self):
-        self.conn.close()  # the session ends, and its locks with it
+        """The session ends, and its locks with it (once its server process is gone)."""
+        self.conn.close()
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline:
+            with connection.cursor() as cur:
+                cur.execute("SELECT count(*) FROM pg_stat_activity WHERE pid = %s",
+                            [self.pid])
+                if not cur.fetchone()[0]:
+                    return
+            time.sleep(0.02)
+        raise AssertionError("the other session did not end")
 
 
 def test_a_running_job_is_kept_while_its_lease_is_held_and_failed_once_its_holder_is_gone(
