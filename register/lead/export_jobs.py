@@ -182,9 +182,10 @@ def remove_old_files(now=None) -> list[int]:
             path.unlink(missing_ok=True)
         if ExportJob.objects.filter(pk=job.pk, status=ExportJob.Status.DONE).update(
                 status=ExportJob.Status.REMOVED, result_path="",
-                message=f"The file was removed {settings.EXPORT_KEEP_DAYS} days after it "
-                        f"was written ({timezone.localtime(now):%Y-%m-%d}). Ask for the "
-                        "export again for today's register."):
+                message=f"The file written on {timezone.localtime(job.finished_at):%Y-%m-%d} "
+                        f"was removed on {timezone.localtime(now):%Y-%m-%d}: files are kept "
+                        f"for {settings.EXPORT_KEEP_DAYS} days. Ask for the export again "
+                        "for today's register."):
             removed.append(job.pk)
     return removed
 

@@ -45,7 +45,10 @@ def test_old_files_are_removed_and_their_jobs_say_so(client, settings, tmp_path)
     young.refresh_from_db()
     assert not old_path.exists() and job_file(old) is None
     assert old.status == ExportJob.Status.REMOVED and old.is_finished
-    assert old.result_path == "" and "removed 7 days after it was written" in old.message
+    written = timezone.localtime(timezone.now() - dt.timedelta(days=7.5)).date()
+    assert old.result_path == "" and old.message.startswith(
+        f"The file written on {written:%Y-%m-%d} was removed on "
+        f"{timezone.localdate():%Y-%m-%d}: files are kept for 7 days.")
     assert job_file(young) is not None and young.status == ExportJob.Status.DONE
 
     client.force_login(lead)
