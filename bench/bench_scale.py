@@ -45,6 +45,12 @@ LATEST = ("SELECT DISTINCT ON (a.sif_id) a.sif_id, a.meets_target, a.flags, a.de
           "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
           "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs} "
           "ORDER BY a.sif_id, a.computed_at DESC, a.id DESC")
+#: The same rows read through the flag on the newest (its partial index, one row per SIF):
+#: no sort over the history, as the pages read them.
+LATEST_FLAGGED = ("SELECT a.sif_id, a.meets_target, a.flags, a.detail "
+                  "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
+                  "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs} AND a.latest "
+                  "ORDER BY s.tag")
 #: The scan's floor: every device's last credit event per kind of test (what a plan's due
 #: date is computed from), one grouped read.
 LAST_CREDIT = ("SELECT r.component_id, t.kind, max(t.performed_at) FROM "
@@ -97,8 +103,7 @@ def prepare_plant(sifs: int, history_days: int) -> dict:
     with connection.cursor() as cur:  # the newest per SIF: by its flag where there is one
         cur.execute("SELECT 1 FROM information_schema.columns WHERE "
                     "table_name = 'calcs_assessment' AND column_name = 'latest'")
-        latest = (LATEST.replace("{sifs}", "{sifs} AND a.latest") if cur.fetchall()
-                  else LATEST)
+        latest = LATEST_FLAGGED if cur.fetchall() else LATEST
     return {"site": site, "qs": qs, "sif": sif, "lead": lead, "tech": tech,
             "latest": latest}
 
