@@ -191,6 +191,8 @@ for _folder in ("queue", "control", "processed"):
 SCAN_PERIOD_SECONDS = env_int("SCAN_PERIOD_SECONDS", 15 * 60)
 RECOMPUTE_HOUR_UTC = env_int("RECOMPUTE_HOUR_UTC", 2)
 JOB_SWEEP_SECONDS = env_int("JOB_SWEEP_SECONDS", 5 * 60)
+# An import or export job still queued this long after it was asked for is sent again.
+JOB_RESEND_MINUTES = env_int("JOB_RESEND_MINUTES", 15)
 # The nightly recompute is spread over the workers in chunks of this many SIFs on the
 # queue "calcs" (start workers with -Q celery,calcs).
 CALCS_QUEUE = env_str("CALCS_QUEUE", "calcs")

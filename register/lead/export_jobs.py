@@ -101,9 +101,9 @@ def queue_export(user, kind: str, fmt: str, query: str) -> ExportJob:
     job = ExportJob.objects.create(user=user, kind=kind, fmt=fmt, query=query)
 
     def start():
-        from register.lead.tasks import write_export_job
+        from register.lead.tasks import send_export_job
 
-        write_export_job.apply_async((job.pk,), queue=settings.PACKS_QUEUE)
+        send_export_job(job.pk)
 
     transaction.on_commit(start)
     return job

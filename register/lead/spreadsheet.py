@@ -960,9 +960,9 @@ def queue_import(site: Site, name: str, data: bytes, user, reference: str,
                                    file_name=name, file_data=data, rows_total=len(rows))
 
     def start():
-        from register.lead.tasks import apply_import_job
+        from register.lead.tasks import send_import_job
 
-        apply_import_job.delay(job.pk)
+        send_import_job(job.pk)
 
     transaction.on_commit(start)
     return job

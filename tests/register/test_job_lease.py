@@ -18,7 +18,7 @@ from django.utils import timezone
 
 from register import choices, job_lease
 from register.lead import spreadsheet
-from register.lead.tasks import sweep_stopped_jobs
+from register.lead.tasks import resend_queued, sweep_stopped_jobs
 from register.models import EvidencePack, ExportJob, ImportJob, SafetyFunction
 from tests import factories as f
 from tests.conftest import need
@@ -87,14 +87,15 @@ def test_a_running_job_is_kept_while_its_lease_is_held_and_failed_once_its_holde
     other = _OtherWorker()
     try:
         assert other.take("import", imp.pk) and other.take("export", exp.pk)
-        assert sweep_stopped_jobs() == {"import": [], "export": [], "pack": []}
+        assert job_lease.sweep() == {"import": [], "export": [], "pack": []}
         imp.refresh_from_db()
         exp.refresh_from_db()
         assert (imp.status, exp.status) == ("running", "running")
     finally:
         other.end()
 
-    assert sweep_stopped_jobs() == {"import": [imp.pk], "export": [exp.pk], "pack": []}
+    assert sweep_stopped_jobs()["failed"] == {"import": [imp.pk], "export": [exp.pk],
+                                              "pack": []}
     imp.refresh_from_db()
     exp.refresh_from_db()
     assert imp.status == ImportJob.Status.FAILED and imp.is_finished
@@ -107,7 +108,7 @@ def test_a_running_job_is_kept_while_its_lease_is_held_and_failed_once_its_holde
         assert again.take("import", imp.pk) and again.take("export", exp.pk)
     finally:
         again.end()
-    assert sweep_stopped_jobs() == {"import": [], "export": [], "pack": []}
+    assert job_lease.sweep() == {"import": [], "export": [], "pack": []}
 
 
 def test_a_job_held_by_another_worker_is_not_run_and_one_left_running_is_run_again(plant):
@@ -144,12 +145,32 @@ def test_a_pack_running_past_the_hard_time_limit_is_failed_and_a_younger_one_is_
             started_at=now - dt.timedelta(minutes=started_minutes_ago))
 
     old, young = pack(10 + 6), pack(10 + 4)  # the limit, plus five minutes' grace
-    assert sweep_stopped_jobs()["pack"] == [old.pk]
+    assert sweep_stopped_jobs()["failed"]["pack"] == [old.pk]
     old.refresh_from_db()
     young.refresh_from_db()
     assert old.status == EvidencePack.Status.FAILED
     assert (old.error, old.stage) == (job_lease.GONE["pack"], job_lease.GONE_STAGE)
     assert young.status == EvidencePack.Status.RUNNING
+
+
+def test_a_job_still_queued_long_after_it_was_asked_for_is_sent_again_and_written_once(
+        plant, settings):
+    settings.JOB_RESEND_MINUTES = 15
+    lost, young = (_import_job(plant, status=ImportJob.Status.QUEUED) for _ in range(2))
+    now = timezone.now()
+    ImportJob.objects.filter(pk=lost.pk).update(created_at=now - dt.timedelta(minutes=16))
+    ImportJob.objects.filter(pk=young.pk).update(created_at=now - dt.timedelta(minutes=14))
+    # its message lost: sent again, and written (tasks run in this process here)
+    assert sweep_stopped_jobs()["resent"] == {"import": [lost.pk], "export": []}
+    lost.refresh_from_db()
+    young.refresh_from_db()
+    assert lost.status == ImportJob.Status.DONE, lost.message
+    assert young.status == ImportJob.Status.QUEUED
+    assert SafetyFunction.objects.filter(unit__site=plant["site"]).count() == 3
+    # a second message of the same job writes nothing more
+    assert spreadsheet.run_import_job(lost.pk).finished_at == lost.finished_at
+    assert resend_queued(now) == {"import": [], "export": []}
+    assert SafetyFunction.objects.filter(unit__site=plant["site"]).count() == 3
 
 
 def test_beat_runs_the_sweep(settings):
