@@ -235,7 +235,7 @@ def main(argv: list[str] | None = None) -> int:
         "scan": ("due-date scan", lambda: scan(timezone.localdate(), notify=False), None,
                  lambda: floor(PLANS, LAST_CREDIT, where=plant)),
         "overview": ("plant overview", page(lead_client, "/"), None,
-                     lambda: floor(latest, PLANS, where=plant)),
+                     lambda: floor(p["overview_latest"], PLANS, where=plant)),
         "list": ("register list SIL 2 overdue",
                  page(lead_client, "/sifs/?target_sil=2&overdue=true"), None,
                  lambda: floor(latest + " LIMIT 50", PLANS + overdue,

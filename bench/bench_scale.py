@@ -51,6 +51,9 @@ LATEST_FLAGGED = ("SELECT a.sif_id, a.meets_target, a.flags, a.detail "
                   "FROM calcs_assessment a JOIN register_safetyfunction s ON s.id = a.sif_id "
                   "JOIN register_plantunit u ON u.id = s.unit_id WHERE {sifs} AND a.latest "
                   "ORDER BY s.tag")
+#: What the overview reads of each SIF's newest assessment: its verdict, flags and rates
+#: (not the whole detail, whose parsing alone is most of a read of it).
+OVERVIEW_LATEST = LATEST_FLAGGED.replace("a.detail ", "a.detail -> 'rates' AS rates ")
 #: The scan's floor: every device's last credit event per kind of test (what a plan's due
 #: date is computed from), one grouped read.
 LAST_CREDIT = ("SELECT r.component_id, t.kind, max(t.performed_at) FROM "
@@ -105,7 +108,8 @@ def prepare_plant(sifs: int, history_days: int) -> dict:
                     "table_name = 'calcs_assessment' AND column_name = 'latest'")
         latest = LATEST_FLAGGED if cur.fetchall() else LATEST
     return {"site": site, "qs": qs, "sif": sif, "lead": lead, "tech": tech,
-            "latest": latest}
+            "latest": latest,
+            "overview_latest": OVERVIEW_LATEST if latest is LATEST_FLAGGED else latest}
 
 
 def age_plant(site, days: int) -> None:
