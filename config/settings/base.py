@@ -222,7 +222,8 @@ CELERY_BEAT_SCHEDULE = {
                      "options": {"expires": 3000}},
     "old-export-files": {"task": "register.remove_old_exports", "schedule": 6 * 3600,
                          "options": {"expires": 3600}},
-    # Exports, imports and packs left "running" by a worker that is gone are failed.
+    # Exports, imports and packs left "running" by a worker that is gone are failed;
+    # exports and imports still queued long after they were asked for are sent again.
     "stopped-jobs": {"task": "register.sweep_stopped_jobs", "schedule": JOB_SWEEP_SECONDS,
                      "options": {"expires": max(JOB_SWEEP_SECONDS - 5, 1)}},
 }

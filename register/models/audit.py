@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from django.conf import settings
 from django.db import models
+from django.utils import timezone
 from django.utils.translation import gettext_lazy as _
 
 from register.dbwrap import flush_pending
@@ -156,8 +157,6 @@ class EvidencePackQuerySet(SiteScopedQuerySet):
     def fail(self, error: str, stage: str = "Failed") -> int:
         """Mark these packs failed with ``error`` and ``stage`` (the pack page shows
         them), those finished excepted; returns the rows changed."""
-        from django.utils import timezone
-
         return self.exclude(status=EvidencePack.Status.DONE).update(
             status=EvidencePack.Status.FAILED, error=error, stage=stage,
             finished_at=timezone.now())
